@@ -1,0 +1,433 @@
+"""Put a series on a regular grid and remove its seasonal profile.
+
+Two pure steps:
+
+- :func:`regularize` turns raw ``(timestamp, value)`` pairs into a
+  :class:`~omegascan.tasks.types.RegularSeries` (sorted, duplicates resolved,
+  gaps as NaN, spacing inferred) or raises a :class:`SeriesError` that names the
+  series and the problem.
+- :func:`decompose` chooses seasonal periods and removes a robust seasonal
+  profile, leaving the trend (and therefore every level shift) in what the
+  ARIMA model sees.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+
+import numpy as np
+import pandas as pd
+
+from omegascan.tasks.errors import (
+    AllMissingError,
+    ConstantSeriesError,
+    NonFiniteError,
+    NonNumericError,
+    SeriesError,
+    TimestampError,
+    TooShortError,
+)
+from omegascan.tasks.types import Decomposition, RegularSeries
+from omegascan.tasks.wrappers import TaskSpec, lazy_task
+
+MIN_POINTS = 24
+"""Fewest observed points the engine analyses (an ARIMA with a few terms and a
+test statistic per point needs a couple of dozen; common practice, not a law)."""
+
+MAX_GRID_RATIO = 50
+"""A grid may hold at most this many slots per observed point (else the
+timestamps are too irregular to have a spacing)."""
+
+MIN_CYCLES_AUTO = 3
+"""Full cycles of history needed before a period is chosen automatically."""
+
+MIN_CYCLES_GIVEN = 2
+"""Full cycles needed for a period the user asks for."""
+
+MIN_SHARE = 0.10
+"""Share of the detrended variance a profile must explain to be kept when
+chosen automatically (our own threshold).  It must also be at least twice the
+share a profile of pure noise reaches: a per-phase median of k cycles has
+variance about (pi/2)/k of the noise's, so that share is 1.57/k."""
+
+MAX_PERIOD = 10_080
+"""Longest period considered (a week of minute data)."""
+
+_DAY = 86_400.0
+_CYCLES = (_DAY, 7 * _DAY, 365.25 * _DAY)
+
+
+def regularize(series_id: str, timestamps, values) -> RegularSeries:
+    """Put raw observations of one series on a regular grid.
+
+    Parameters
+    ----------
+    series_id : str
+        Name used in results and error messages.
+    timestamps : array-like of shape (nobs,)
+        Datetimes, ISO strings, or numbers (a unitless numeric grid).
+    values : array-like of shape (nobs,)
+        Numbers; missing values (None, NaN) are allowed.
+
+    Returns
+    -------
+    RegularSeries
+
+    Raises
+    ------
+    NonNumericError, NonFiniteError, TimestampError, AllMissingError,
+    TooShortError, ConstantSeriesError
+        Each names the series and says what to do.
+
+    Notes
+    -----
+    1. Values must be numbers or missing; infinities are rejected.
+    2. Timestamps must all parse (datetimes, ISO text, or plain numbers).
+    3. Sort by time.  4. The spacing is the median gap between distinct
+    timestamps, rounded to a clean unit so small jitter snaps to the grid;
+    monthly, quarterly and yearly data use calendar months.  5. Each timestamp
+    goes to its nearest grid slot; observations that share a slot are resolved
+    by their median (the first one's timestamp text is kept).
+    6. Slots with no observation are missing values.
+    """
+    # Step 1: values.
+    raw_values = pd.Series(np.asarray(values, dtype=object) if not _is_numeric(values) else values)
+    if len(raw_values) != len(timestamps):
+        raise SeriesError(series_id, "timestamps and values have different lengths")
+    numeric = pd.to_numeric(raw_values, errors="coerce").astype(float)
+    bad = numeric.isna() & raw_values.notna() & ~_is_nan_like(raw_values)
+    if bad.any():
+        first = raw_values[bad].iloc[0]
+        raise NonNumericError(
+            series_id,
+            f"{int(bad.sum())} value(s) are not numbers (first: {first!r}); "
+            "clean the value column or mark missing samples as empty",
+        )
+    vals = numeric.to_numpy(dtype=float)
+    if np.isinf(vals).any():
+        where = int(np.flatnonzero(np.isinf(vals))[0])
+        raise NonFiniteError(
+            series_id,
+            f"{int(np.isinf(vals).sum())} value(s) are infinite (first at {timestamps[where]!r}); "
+            "leave a missing sample empty instead of writing inf",
+        )
+
+    # Step 2: timestamps.
+    stamps, labels, tz = _parse_timestamps(series_id, timestamps)
+
+    # Step 3: sort.
+    order = np.argsort(stamps, kind="stable")
+    stamps, vals, labels = stamps[order], vals[order], [labels[i] for i in order]
+    is_time = stamps.dtype.kind == "M"
+    ticks = stamps.view("i8").astype(float) if is_time else stamps.astype(np.float64)
+
+    # Step 4: spacing.
+    distinct = np.unique(ticks)
+    if distinct.size < 2:
+        raise TimestampError(series_id, "needs at least two distinct timestamps to infer a spacing")
+    step = float(np.median(np.diff(distinct)))
+    months = _calendar_months(step) if is_time else 0
+    if months:
+        stamp_index = pd.DatetimeIndex(stamps)
+        month_no = stamp_index.year * 12 + stamp_index.month - 1
+        slot = np.asarray((month_no - month_no[0]) // months, dtype=np.int64)
+        step = months * _MONTH_NS
+    else:
+        step = _nice_step(step, is_time)
+        if step <= 0:
+            raise TimestampError(series_id, "timestamps have no positive spacing")
+        # Step 5: snap each timestamp to its nearest grid slot.
+        slot = np.rint((ticks - ticks[0]) / step).astype(np.int64)
+    size = int(slot[-1]) + 1
+    if size > MAX_GRID_RATIO * max(distinct.size, 1) and size > 10_000:
+        raise TimestampError(
+            series_id,
+            f"timestamps are too irregular for a grid (median spacing {step:g} would need "
+            f"{size} slots for {distinct.size} timestamps); resample the series first",
+        )
+    # Observations sharing a slot are resolved by their median.
+    frame = pd.DataFrame({"slot": slot, "value": vals})
+    grouped = frame.groupby("slot", sort=True)["value"]
+    medians = grouped.median()
+    counts = grouped.size()
+    n_duplicates = int((counts - 1).sum())
+    grid = np.full(size, np.nan)
+    grid[medians.index.to_numpy()] = medians.to_numpy()
+    grid_labels: list[str | None] = [None] * size
+    for s, lab in zip(slot[::-1], labels[::-1], strict=True):  # first occurrence wins
+        grid_labels[s] = lab
+
+    # Step 6: the regular index.
+    if is_time:
+        start = pd.Timestamp(stamps[0])
+        delta = pd.Timedelta(round(step), unit="ns")
+        if months:
+            start = start.normalize().replace(day=1)
+            index: pd.Index = pd.date_range(start, periods=size, freq=pd.DateOffset(months=months))
+        else:
+            index = pd.DatetimeIndex(start + delta * np.arange(size))
+        if tz is not None:
+            index = index.tz_localize("UTC").tz_convert(tz)
+        step_value: pd.Timedelta | float = delta
+    else:
+        index = pd.Index(float(stamps[0]) + step * np.arange(size))
+        step_value = step
+
+    series = RegularSeries(series_id, index, grid, step_value, tuple(grid_labels), n_duplicates)
+    check_series(series)
+    return series
+
+
+def check_series(series: RegularSeries) -> None:
+    """Raise if a regular series is unusable: all missing, too short or constant."""
+    observed = series.values[~np.isnan(series.values)]
+    if observed.size == 0:
+        raise AllMissingError(series.series_id, "every value is missing; check the value column")
+    if observed.size < MIN_POINTS:
+        raise TooShortError(
+            series.series_id,
+            f"only {observed.size} observed point(s); at least {MIN_POINTS} are needed for any "
+            "model (wait for more history)",
+        )
+    if np.ptp(observed) == 0:
+        raise ConstantSeriesError(
+            series.series_id,
+            f"every observed value equals {observed[0]:g}; a constant series has nothing to detect",
+        )
+
+
+def natural_periods(step_seconds: float) -> tuple[int, ...]:
+    """Whole-number periods of the day, week and year for a grid spacing.
+
+    Monthly and quarterly grids (spacing of 28–31 or 89–92 days) give 12 and 4.
+    """
+    if step_seconds <= 0:
+        return ()
+    days = step_seconds / _DAY
+    if 28 <= days <= 31:
+        return (12,)
+    if 89 <= days <= 92:
+        return (4,)
+    out = []
+    for cycle in _CYCLES:
+        ratio = cycle / step_seconds
+        period = round(ratio)
+        if 2 <= period <= MAX_PERIOD and abs(ratio - period) <= 0.01 * ratio:
+            out.append(period)
+    return tuple(out)
+
+
+def decompose(
+    series: RegularSeries,
+    *,
+    periods: Sequence[int] | None = None,
+    extra_periods: Sequence[int] = (),
+) -> Decomposition:
+    """Remove a robust seasonal profile, keeping trend and level shifts.
+
+    Parameters
+    ----------
+    series : RegularSeries
+    periods : sequence of int, optional
+        Seasonal periods in grid points, chosen by the user.  Each must have at
+        least two full cycles of history.  ``None`` (default) chooses them from
+        the spacing: day, week and year cycles with at least three full cycles
+        whose profile explains at least 10 % of the detrended variance, and twice
+        what noise alone would (see ``MIN_SHARE``).  An empty
+        sequence means no seasonal adjustment.
+    extra_periods : sequence of int, default=()
+        Periods found in the data (recurring spikes), kept without the variance
+        test.
+
+    Returns
+    -------
+    Decomposition
+
+    Notes
+    -----
+    Classical decomposition with medians in place of means, one period at a
+    time, shortest first:
+
+    1. trend = centred rolling median over one period (it follows a level shift
+       within half a period and is *not* removed from the series);
+    2. profile[j] = median over cycles of (series - trend) at phase j, centred to
+       mean zero;
+    3. subtract the profile and continue with the next period.
+    """
+    n = series.nobs
+    if periods is None:
+        candidates = [p for p in natural_periods(series.step_seconds) if n >= MIN_CYCLES_AUTO * p]
+        automatic = True
+    else:
+        candidates = [int(p) for p in periods]
+        automatic = False
+        for p in candidates:
+            if p < 2:
+                raise SeriesError(series.series_id, f"season {p} must be at least 2 points")
+            if n < MIN_CYCLES_GIVEN * p:
+                raise SeriesError(
+                    series.series_id,
+                    f"season {p} needs at least {MIN_CYCLES_GIVEN * p} points "
+                    f"({MIN_CYCLES_GIVEN} full cycles); the series has {n}",
+                )
+    work = [(p, automatic) for p in candidates] + [(int(p), False) for p in extra_periods]
+    work = sorted(dict(work).items())  # unique periods, shortest first
+
+    remainder = series.values.astype(float).copy()
+    seasonal = np.zeros(n)
+    kept: list[int] = []
+    profiles: list[np.ndarray] = []
+    phase_base = np.arange(n)
+    for period, must_earn in work:
+        profile, share = seasonal_profile(remainder, period)
+        cycles = n // period
+        if must_earn and share < max(MIN_SHARE, 2 * (math.pi / 2) / cycles):
+            continue
+        component = profile[phase_base % period]
+        remainder = remainder - component
+        seasonal += component
+        kept.append(period)
+        profiles.append(profile)
+    return Decomposition(
+        series=series,
+        periods=tuple(kept),
+        profiles=tuple(profiles),
+        seasonal=seasonal,
+        adjusted=series.values - seasonal,
+    )
+
+
+def seasonal_profile(y: np.ndarray, period: int) -> tuple[np.ndarray, float]:
+    """Robust zero-mean profile of ``y`` at ``period`` and the variance share it explains.
+
+    Parameters
+    ----------
+    y : ndarray of shape (nobs,)
+        May hold NaN.
+    period : int
+
+    Returns
+    -------
+    profile : ndarray of shape (period,)
+    share : float
+        var(profile at each point) / var(y - trend), over observed points.
+    """
+    window = period if period % 2 == 1 else period + 1
+    trend = (
+        pd.Series(y)
+        .rolling(window, center=True, min_periods=max(2, window // 2))
+        .median()
+        .to_numpy()
+    )
+    dev = y - trend
+    phases = np.arange(y.size) % period
+    ok = ~np.isnan(dev)
+    frame = pd.DataFrame({"phase": phases[ok], "dev": dev[ok]})
+    med = frame.groupby("phase")["dev"].median().reindex(range(period))
+    profile = med.to_numpy(dtype=float)
+    if np.isnan(profile).any():  # a phase never observed: carry a neighbour
+        profile = pd.Series(profile).interpolate(limit_direction="both").to_numpy()
+        profile = np.nan_to_num(profile)
+    profile = profile - profile.mean()
+    total = float(np.var(dev[ok])) if ok.any() else 0.0
+    explained = float(np.var(profile[phases[ok]])) if ok.any() else 0.0
+    share = explained / total if total > 0 else 0.0
+    return profile, share
+
+
+def profile_at(
+    profiles: Sequence[Sequence[float]], periods: Sequence[int], offsets: np.ndarray
+) -> np.ndarray:
+    """Seasonal value at grid offsets (points since the profiles' anchor)."""
+    out = np.zeros(offsets.size)
+    for period, profile in zip(periods, profiles, strict=True):
+        out += np.asarray(profile, dtype=float)[np.mod(offsets, period)]
+    return out
+
+
+_MONTH_NS = 365.2425 / 12 * 86_400e9
+_UNITS_NS = (86_400e9, 3_600e9, 60e9, 1e9, 1e6, 1e3, 1.0)
+
+
+def _calendar_months(step_ns: float) -> int:
+    """Months per step for monthly, quarterly and yearly spacing, else 0."""
+    days = step_ns / 86_400e9
+    for months, low, high in ((1, 27.5, 31.5), (3, 88.5, 92.5), (12, 364.5, 366.5)):
+        if low <= days <= high:
+            return months
+    return 0
+
+
+def _nice_step(step: float, is_time: bool) -> float:
+    """Round a median spacing so sub-percent jitter snaps to a clean value.
+
+    Datetime spacings (in ns) go to a whole number of the largest unit (day,
+    hour, minute, second, ms, µs, ns) at most 1 % of the step; numeric ones to
+    three significant digits.
+    """
+    if not is_time:
+        return float(f"{step:.3g}")
+    unit = next((u for u in _UNITS_NS if u <= 0.01 * step), 1.0)
+    return max(round(step / unit), 1) * unit
+
+
+def _is_numeric(values) -> bool:
+    dtype = getattr(values, "dtype", None)
+    return dtype is not None and np.issubdtype(dtype, np.number)
+
+
+def _is_nan_like(values: pd.Series) -> pd.Series:
+    """True where a value is an empty or NaN-like text (counted as missing)."""
+    text = values.astype(str).str.strip().str.lower()
+    return text.isin(["", "nan", "na", "null", "none"])
+
+
+def _parse_timestamps(series_id: str, timestamps) -> tuple[np.ndarray, list[str], object]:
+    """Parse timestamps to UTC-naive datetime64[ns] (float for numeric grids).
+
+    Returns the parsed stamps, their text as given, and the time zone (or None).
+    """
+    raw = pd.Series(timestamps).reset_index(drop=True)
+    if raw.isna().any():
+        raise TimestampError(
+            series_id, f"{int(raw.isna().sum())} timestamp(s) are missing; every row needs one"
+        )
+    if raw.dtype.kind in "iuf":
+        stamps = raw.to_numpy(dtype=float)
+        if not np.isfinite(stamps).all():
+            raise TimestampError(series_id, "numeric timestamps must be finite")
+        labels = [f"{int(v)}" if float(v).is_integer() else repr(float(v)) for v in stamps]
+        return stamps, labels, None
+    if raw.dtype.kind == "M" or isinstance(raw.dtype, pd.DatetimeTZDtype):
+        parsed = raw
+        labels = [ts.isoformat() for ts in parsed]
+    else:
+        text = raw.astype(str)
+        parsed = pd.to_datetime(text, errors="coerce", format="ISO8601", utc=False)
+        if parsed.isna().any():
+            parsed = pd.to_datetime(text, errors="coerce", format="mixed")
+        if parsed.isna().any():
+            bad = text[parsed.isna()].iloc[0]
+            raise TimestampError(
+                series_id,
+                f"{int(parsed.isna().sum())} timestamp(s) cannot be parsed (first: {bad!r}); "
+                "use ISO 8601 such as 2026-01-31T14:05:00",
+            )
+        labels = list(raw.astype(str))
+    tz = None
+    if isinstance(parsed.dtype, pd.DatetimeTZDtype):
+        tz = parsed.dt.tz
+        parsed = parsed.dt.tz_convert("UTC").dt.tz_localize(None)
+    stamps = parsed.to_numpy(dtype="datetime64[ns]")
+    return stamps, labels, tz
+
+
+_TASKS: dict[str, TaskSpec] = {
+    "regularize_task": (regularize, {"name": "regularize"}),
+    "decompose_task": (decompose, {"name": "decompose"}),
+}
+
+
+def __getattr__(name: str):
+    return lazy_task(__name__, name, _TASKS)

@@ -1,0 +1,68 @@
+"""Errors raised by omegascan's steps.
+
+One base class; narrow subclasses that are also ``ValueError`` where bad input
+is what they are.  Every message names the series (or source) and says what to
+do about it.
+"""
+
+from __future__ import annotations
+
+
+class OmegascanError(Exception):
+    """Base class of every error omegascan raises on purpose."""
+
+
+class SeriesError(OmegascanError, ValueError):
+    """A series cannot be analysed as given.
+
+    Parameters
+    ----------
+    series_id : str
+        The series the problem belongs to.
+    problem : str
+        What is wrong and what to do, in words for the person running the tool.
+    """
+
+    def __init__(self, series_id: str, problem: str) -> None:
+        self.series_id = series_id
+        self.problem = problem
+        super().__init__(f"series {series_id!r}: {problem}")
+
+    def __reduce__(self):  # keep the two-argument form picklable (process pools)
+        return (type(self), (self.series_id, self.problem))
+
+
+class TooShortError(SeriesError):
+    """Fewer observed points than any model needs."""
+
+
+class ConstantSeriesError(SeriesError):
+    """Every observed value is the same; there is nothing to model."""
+
+
+class AllMissingError(SeriesError):
+    """No observed value at all."""
+
+
+class NonNumericError(SeriesError):
+    """Values that are not numbers."""
+
+
+class NonFiniteError(SeriesError):
+    """Infinite values (missing values are allowed; infinities are not)."""
+
+
+class TimestampError(SeriesError):
+    """Timestamps that cannot be parsed or put on a regular grid."""
+
+
+class ModelError(OmegascanError, ValueError):
+    """A fitted-model value is malformed (for example a damaged cache row)."""
+
+
+class SourceError(OmegascanError):
+    """A data source is missing, unreadable or has the wrong columns."""
+
+
+class ConfigError(OmegascanError, ValueError):
+    """A setting or parameter is out of range or inconsistent."""

@@ -1,0 +1,589 @@
+"""Choose and estimate an ARIMA model for a seasonally adjusted series.
+
+The public function is :func:`fit_model`; :func:`estimate` is the single place
+where statsmodels' state-space estimator is called, and :func:`innovations`,
+:func:`pi_weights`, :func:`psi_weights` turn a fitted model into what the
+detection step needs.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+import warnings
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.signal import lfilter
+
+from omegascan.tasks.types import Decomposition, FittedModel
+from omegascan.tasks.wrappers import TaskSpec, lazy_task
+
+MAX_SEASONAL_LAG = 52
+"""Longest season given seasonal ARIMA terms automatically.  A seasonal term at
+lag s makes the state vector s long; longer seasons (288 five-minute points a
+day, 1,440 minute points) are left to the deterministic profile of
+decompose()."""
+
+MAX_ITER = 60
+"""Optimizer iterations per estimate (bounded; the result says if it converged)."""
+
+MAX_ROOT = 0.99
+"""Largest modulus allowed for an inverse MA root (nearly non-invertible MA
+polynomials produce spurious start-up effects in filtered residuals)."""
+
+OUTLIER_Z = 4.0
+"""Robust z above which a point is set aside for the first, robust estimate."""
+
+Order = tuple[int, int, int]
+SeasonalOrder = tuple[int, int, int, int]
+
+
+@dataclass(frozen=True, slots=True)
+class Estimate:
+    """One maximum-likelihood estimate with intervention regressors.
+
+    ``params`` are the ARMA parameters named as statsmodels names them (with
+    ``const`` for the mean and ``sigma2``); ``beta`` and ``beta_se`` are the
+    regressors' coefficients and standard errors (observed-information based).
+    """
+
+    order: Order
+    seasonal_order: SeasonalOrder
+    trend: str
+    params: tuple[tuple[str, float], ...]
+    sigma2: float
+    beta: np.ndarray
+    beta_se: np.ndarray
+    llf: float
+    aicc: float
+    nobs: int
+    converged: bool
+    n_iter: int
+
+
+class EstimationError(RuntimeError):
+    """statsmodels could not produce a usable estimate (internal; triggers a fallback)."""
+
+
+def fit_model(
+    decomp: Decomposition,
+    *,
+    order: Order | None = None,
+    seasonal_order: SeasonalOrder | None = None,
+    max_p: int = 3,
+    max_q: int = 2,
+    robust: bool = True,
+    y: np.ndarray | None = None,
+) -> FittedModel:
+    """Choose and estimate an ARIMA model for the seasonally adjusted series.
+
+    Parameters
+    ----------
+    decomp : Decomposition
+        Its ``adjusted`` series is modelled (unless ``y`` is given).
+    order, seasonal_order : tuple, optional
+        Fixed orders ``(p, d, q)`` and ``(P, D, Q, s)``; skips the selection.
+    max_p, max_q : int, default=3, 2
+        Largest non-seasonal orders tried.
+    robust : bool, default=True
+        Set points with a robust residual z above 4 aside (as missing) for the
+        estimate, so one spike does not distort the coefficients.
+    y : ndarray of shape (nobs,), optional
+        A version of the adjusted series to model instead (for example with
+        detected effects removed).
+
+    Returns
+    -------
+    FittedModel
+        Always usable; ``fallback`` says if a simpler model had to be taken.
+
+    Notes
+    -----
+    1. Robust first pass: long-autoregression residuals of the differenced
+       series, points with |z| > 4 (median/MAD scale) set aside.
+    2. d in {0, 1}: differenced when the KPSS test rejects level stationarity
+       at 5 % and the augmented Dickey-Fuller test does not reject a unit root.
+    3. Orders by BIC over p <= max_p, q <= max_q (and a seasonal AR term at the
+       longest season up to 52 points) using Hannan-Rissanen regressions, which
+       cost microseconds, so only the chosen model is estimated by maximum
+       likelihood.
+    4. Exact Gaussian likelihood (statsmodels SARIMAX, Kalman filter, missing
+       values allowed).  On failure, non-convergence or an MA root of modulus
+       >= 0.99: the same with q = 0, then (1, d, 0), then (0, d, 0); last, a
+       robust baseline (median and MAD), which needs no optimizer.
+
+    References
+    ----------
+    Hannan, E. J. and Rissanen, J. (1982). Recursive estimation of mixed
+    autoregressive-moving average order. Biometrika 69(1).
+    """
+    values = decomp.adjusted if y is None else np.asarray(y, dtype=float)
+    series_id = decomp.series.series_id
+    # Step 1: robust first pass.
+    clean = values.copy()
+    d_given = None if order is None else order[1]
+    if robust:
+        d0 = d_given if d_given is not None else choose_d(values)
+        clean[_outlying(values, d0)] = np.nan
+
+    # Steps 2-3: orders.
+    if order is not None:
+        chosen: Order = tuple(order)  # type: ignore[assignment]
+        seasonal: SeasonalOrder = tuple(seasonal_order) if seasonal_order else (0, 0, 0, 0)  # type: ignore[assignment]
+        method = "given"
+    else:
+        d = choose_d(clean)
+        seasons = [p for p in decomp.periods if p <= MAX_SEASONAL_LAG] or [
+            p for p in _natural_lags(decomp) if p <= MAX_SEASONAL_LAG
+        ]
+        chosen, seasonal, _ = select_orders(
+            clean, d, season=max(seasons) if seasons else 0, max_p=max_p, max_q=max_q
+        )
+        method = "mle"
+    trend = "c" if chosen[1] + seasonal[1] == 0 else "n"
+
+    # Step 4: estimate, with the fallback chain.
+    reasons: list[str] = []
+    for candidate, cand_seasonal in _fallbacks(chosen, seasonal):
+        try:
+            est = estimate(clean, candidate, cand_seasonal, trend=trend)
+        except EstimationError as exc:
+            reasons.append(f"{_name(candidate, cand_seasonal)}: {exc}")
+            continue
+        if not est.converged and (candidate, cand_seasonal) != _fallbacks(chosen, seasonal)[-1]:
+            reasons.append(f"{_name(candidate, cand_seasonal)}: did not converge")
+            continue
+        fallback = None
+        if reasons:
+            fallback = f"simpler model ({'; '.join(reasons)})"
+        return _to_model(series_id, decomp, est, method, fallback, values)
+    return robust_baseline(decomp, chosen[1], values, reason="; ".join(reasons))
+
+
+def estimate(
+    y: np.ndarray,
+    order: Order,
+    seasonal_order: SeasonalOrder,
+    *,
+    trend: str,
+    exog: np.ndarray | None = None,
+    start_params: Sequence[float] | None = None,
+    with_se: bool = False,
+) -> Estimate:
+    """Exact maximum-likelihood estimate of a regression with ARIMA errors.
+
+    Parameters
+    ----------
+    y : ndarray of shape (nobs,)
+        May hold NaN (the Kalman filter skips them).
+    order, seasonal_order : tuple
+    trend : {"c", "n"}
+        ``"c"`` estimates a mean (a constant regressor), ``"n"`` none.
+    exog : ndarray of shape (nobs, k), optional
+        Intervention regressors in series space.
+    start_params : sequence of float, optional
+        ARMA starting values (warm start from an earlier estimate).
+    with_se : bool, default=False
+        Compute standard errors of the regressors from the approximate
+        (numerical) Hessian of the log-likelihood.  The outer-product-of-gradients
+        default understates t statistics of pulse regressors badly.
+
+    Raises
+    ------
+    EstimationError
+        statsmodels failed or returned non-finite values.
+    """
+    from statsmodels.tsa.statespace.sarimax import SARIMAX
+
+    n = y.size
+    columns = []
+    if trend == "c":
+        columns.append(np.ones(n))
+    if exog is not None and exog.size:
+        columns.extend(np.asarray(exog, dtype=float).T)
+    X = np.column_stack(columns) if columns else None
+    k_exog = 0 if X is None else X.shape[1]
+    model_kw = dict(
+        order=order,
+        seasonal_order=seasonal_order,
+        trend="n",
+        concentrate_scale=True,
+        enforce_stationarity=True,
+        enforce_invertibility=True,
+    )
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            model = SARIMAX(y, exog=X, **model_kw)
+            start = None
+            if start_params is not None and k_exog:
+                start = model.start_params
+                arma = np.asarray(start_params, dtype=float)
+                if arma.size == start.size - k_exog:
+                    start[k_exog:] = arma
+            res = model.fit(
+                start_params=start,
+                disp=False,
+                cov_type="approx" if with_se else "none",
+                maxiter=MAX_ITER,
+            )
+    except (ValueError, np.linalg.LinAlgError, IndexError, OverflowError) as exc:
+        raise EstimationError(str(exc) or type(exc).__name__) from exc
+    params = np.asarray(res.params, dtype=float)
+    if not np.all(np.isfinite(params)) or not np.isfinite(res.llf):
+        raise EstimationError("non-finite estimate")
+    sigma2 = float(res.scale)
+    if not sigma2 > 0:
+        raise EstimationError("zero innovation variance")
+    names = list(model.param_names)
+    arma_names = names[k_exog:]
+    named: list[tuple[str, float]] = []
+    offset = 0
+    if trend == "c":
+        named.append(("const", float(params[0])))
+        offset = 1
+    named.extend((name, float(v)) for name, v in zip(arma_names, params[k_exog:], strict=True))
+    named.append(("sigma2", sigma2))
+    beta = params[offset:k_exog]
+    if with_se:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            se = np.asarray(res.bse, dtype=float)[offset:k_exog]
+    else:
+        se = np.full(beta.size, np.nan)
+    retvals = res.mle_retvals or {}
+    nobs = int(np.sum(~np.isnan(y)))
+    k = len(params) + 1
+    aicc = -2 * res.llf + 2 * k + (2 * k * (k + 1) / max(nobs - k - 1, 1))
+    est = Estimate(
+        order=tuple(order),  # type: ignore[arg-type]
+        seasonal_order=tuple(seasonal_order),  # type: ignore[arg-type]
+        trend=trend,
+        params=tuple(named),
+        sigma2=sigma2,
+        beta=beta,
+        beta_se=se,
+        llf=float(res.llf),
+        aicc=float(aicc),
+        nobs=nobs,
+        converged=bool(retvals.get("converged", True)),
+        n_iter=int(retvals.get("iterations", 0)),
+    )
+    if max_ma_root(est.params) >= MAX_ROOT and order[2] + seasonal_order[2] > 0:
+        raise EstimationError("MA root on the unit circle")
+    return est
+
+
+def choose_d(y: np.ndarray) -> int:
+    """Differencing order in {0, 1} from KPSS and augmented Dickey-Fuller tests.
+
+    Differenced when KPSS rejects level stationarity at 5 % and ADF does not
+    reject a unit root at 5 %.
+    """
+    from statsmodels.tsa.stattools import adfuller, kpss
+
+    z = _interpolate(y)
+    if z.size < 12 or np.ptp(z) == 0:
+        return 0
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        try:
+            kpss_p = kpss(z, regression="c", nlags="auto")[1]
+            adf_p = adfuller(z, maxlag=min(12, z.size // 4), autolag="AIC")[1]
+        except (ValueError, np.linalg.LinAlgError):
+            return 0
+    return 1 if (kpss_p < 0.05 and adf_p > 0.05) else 0
+
+
+def select_orders(
+    y: np.ndarray, d: int, *, season: int = 0, max_p: int = 3, max_q: int = 2
+) -> tuple[Order, SeasonalOrder, float]:
+    """Orders by BIC from Hannan-Rissanen regressions on the differenced series.
+
+    BIC rather than AIC: it prefers the parsimonious model, and an over-fitted
+    ARMA absorbs part of an event's signature.  Returns the order, the seasonal
+    order and the chosen regression's BIC (comparable only within one call).
+    """
+    z = _interpolate(y)
+    if d:
+        z = np.diff(z, n=d)
+    z = z - z.mean()
+    n = z.size
+    m = int(min(max(10 * math.log10(max(n, 10)), max_p + max_q + 2), n // 4))
+    resid = _long_ar_resid(z, m)
+    seasonal_options = [0, 1] if season >= 2 and n >= 4 * season else [0]
+    start = m + max(max_p, max_q) + (season + max_p if 1 in seasonal_options else 0)
+    N = n - start
+    if N < 10:
+        return (0, d, 0), (0, 0, 0, 0), float("nan")
+    target = z[start:]
+    best: tuple[float, Order, SeasonalOrder] | None = None
+    for P in seasonal_options:
+        for p in range(max_p + 1):
+            for q in range(max_q + 1):
+                cols = [z[start - i : n - i] for i in range(1, p + 1)]
+                if P:
+                    cols += [z[start - season - i : n - season - i] for i in range(0, p + 1)]
+                cols += [resid[start - j : n - j] for j in range(1, q + 1)]
+                if cols:
+                    X = np.column_stack(cols)
+                    coef, *_ = np.linalg.lstsq(X, target, rcond=None)
+                    rss = float(np.sum((target - X @ coef) ** 2))
+                else:
+                    rss = float(np.sum(target**2))
+                k = len(cols) + 1 + (1 if d == 0 else 0)
+                bic = N * math.log(max(rss, 1e-300) / N) + k * math.log(N)
+                if best is None or bic < best[0] - 1e-9:
+                    best = (bic, (p, d, q), (P, 0, 0, season) if P else (0, 0, 0, 0))
+    assert best is not None
+    return best[1], best[2], best[0]
+
+
+def robust_baseline(
+    decomp: Decomposition, d: int, values: np.ndarray, *, reason: str
+) -> FittedModel:
+    """The last fallback: white noise around the median (d=0) or a random walk (d=1).
+
+    Location and scale are the median and the normalized MAD, so no optimizer
+    is involved and the result always exists.
+    """
+    z = values[~np.isnan(values)]
+    if d:
+        z = np.diff(z)
+    scale = 1.4826 * float(np.median(np.abs(z - np.median(z))))
+    if not scale > 0:
+        scale = float(np.std(z)) or 1e-12
+    params: list[tuple[str, float]] = []
+    if d == 0:
+        params.append(("const", float(np.median(z))))
+    params.append(("sigma2", scale**2))
+    est = Estimate(
+        order=(0, d, 0),
+        seasonal_order=(0, 0, 0, 0),
+        trend="c" if d == 0 else "n",
+        params=tuple(params),
+        sigma2=scale**2,
+        beta=np.empty(0),
+        beta_se=np.empty(0),
+        llf=float("nan"),
+        aicc=float("nan"),
+        nobs=int(z.size),
+        converged=True,
+        n_iter=0,
+    )
+    return _to_model(
+        decomp.series.series_id,
+        decomp,
+        est,
+        "baseline",
+        f"robust baseline ({reason or 'no model could be estimated'})",
+        values,
+    )
+
+
+def polynomials(model: FittedModel | Estimate) -> tuple[np.ndarray, np.ndarray]:
+    """Full AR polynomial (with differencing) and MA polynomial, lag-0 first.
+
+    statsmodels' sign convention: phi(B) = 1 - phi_1 B - ..., theta(B) = 1 + theta_1 B + ...
+    """
+    params = dict(model.params)
+    p, d, q = model.order
+    P, D, Q, s = model.seasonal_order
+    ar = np.r_[1.0, [-params.get(f"ar.L{i}", 0.0) for i in range(1, p + 1)]]
+    ma = np.r_[1.0, [params.get(f"ma.L{i}", 0.0) for i in range(1, q + 1)]]
+    if s:
+        sar = np.zeros(s * P + 1)
+        sar[0] = 1.0
+        for i in range(1, P + 1):
+            sar[i * s] = -params.get(f"ar.S.L{i * s}", 0.0)
+        sma = np.zeros(s * Q + 1)
+        sma[0] = 1.0
+        for i in range(1, Q + 1):
+            sma[i * s] = params.get(f"ma.S.L{i * s}", 0.0)
+        ar = np.convolve(ar, sar)
+        ma = np.convolve(ma, sma)
+        for _ in range(D):
+            seas_diff = np.zeros(s + 1)
+            seas_diff[0], seas_diff[s] = 1.0, -1.0
+            ar = np.convolve(ar, seas_diff)
+    for _ in range(d):
+        ar = np.convolve(ar, [1.0, -1.0])
+    return ar, ma
+
+
+def pi_weights(model: FittedModel | Estimate, n: int) -> np.ndarray:
+    """Coefficients of pi(B) = phi(B) alpha(B) / theta(B), lag 0 first (pi_0 = 1)."""
+    ar, ma = polynomials(model)
+    impulse = np.zeros(n)
+    impulse[0] = 1.0
+    return lfilter(ar, ma, impulse)
+
+
+def psi_weights(model: FittedModel | Estimate, n: int) -> np.ndarray:
+    """Coefficients of psi(B) = theta(B) / (phi(B) alpha(B)), lag 0 first."""
+    ar, ma = polynomials(model)
+    impulse = np.zeros(n)
+    impulse[0] = 1.0
+    return lfilter(ma, ar, impulse)
+
+
+def max_ma_root(params: Sequence[tuple[str, float]]) -> float:
+    """Largest modulus of the inverse roots of the non-seasonal MA polynomial."""
+    named = dict(params)
+    coefs = [named[k] for k in sorted(named, key=_lag_key) if k.startswith("ma.L")]
+    if not coefs:
+        return 0.0
+    roots = np.roots(np.r_[1.0, coefs])
+    return float(np.max(np.abs(roots))) if roots.size else 0.0
+
+
+def innovations(y: np.ndarray, model: FittedModel | Estimate) -> np.ndarray:
+    """One-step prediction errors of ``y`` under ``model``, scaled to variance sigma2.
+
+    Kalman-filter innovations standardized by their own variance and multiplied
+    by sigma, so start-up points (where the prediction is uncertain) do not look
+    like large shocks.  NaN where ``y`` is missing.
+    """
+    from statsmodels.tsa.statespace.sarimax import SARIMAX
+
+    params = dict(model.params)
+    dev = np.asarray(y, dtype=float) - params.get("const", 0.0)
+    arma = [v for k, v in model.params if k not in ("const", "sigma2")]
+    sigma2 = params["sigma2"]
+    if not arma and model.order[1] == 0 and model.seasonal_order[1] == 0:
+        return dev
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        mod = SARIMAX(
+            dev,
+            order=model.order,
+            seasonal_order=model.seasonal_order,
+            trend="n",
+            enforce_stationarity=False,
+            enforce_invertibility=False,
+        )
+        res = mod.filter(np.r_[arma, sigma2])
+    err = np.asarray(res.forecasts_error[0], dtype=float)
+    var = np.asarray(res.forecasts_error_cov[0, 0], dtype=float)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out = err / np.sqrt(var) * math.sqrt(sigma2)
+    out[np.isnan(y)] = np.nan
+    return out
+
+
+def fingerprint(values: np.ndarray) -> str:
+    """Short stable hash of a series' values (NaN-aware), to tell if data changed."""
+    arr = np.ascontiguousarray(np.round(np.asarray(values, dtype=float), 10))
+    return hashlib.blake2b(arr.tobytes(), digest_size=8).hexdigest()
+
+
+# -- helpers -----------------------------------------------------------------
+
+
+def _to_model(
+    series_id: str,
+    decomp: Decomposition,
+    est: Estimate,
+    method: str,
+    fallback: str | None,
+    values: np.ndarray,
+) -> FittedModel:
+    series = decomp.series
+    return FittedModel(
+        series_id=series_id,
+        order=est.order,
+        seasonal_order=est.seasonal_order,
+        trend=est.trend,
+        params=est.params,
+        sigma2=est.sigma2,
+        nobs=est.nobs,
+        method=method,
+        converged=est.converged,
+        fallback=fallback,
+        aicc=None if not math.isfinite(est.aicc) else est.aicc,
+        periods=decomp.periods,
+        profiles=tuple(tuple(float(v) for v in prof) for prof in decomp.profiles),
+        anchor=series.label(0) if series.nobs else None,
+        step_seconds=series.step_seconds,
+        fitted_through=series.label(series.nobs - 1) if series.nobs else None,
+        fingerprint=fingerprint(values),
+    )
+
+
+def _fallbacks(order: Order, seasonal: SeasonalOrder) -> list[tuple[Order, SeasonalOrder]]:
+    p, d, _ = order
+    chain = [(order, seasonal)]
+    if seasonal != (0, 0, 0, 0) and seasonal[1] == 0:
+        chain.append((order, (0, 0, 0, 0)))
+    for alt in ((p, d, 0), (min(p, 1), d, 0), (0, d, 0)):
+        nxt = (alt, seasonal if seasonal[1] else (0, 0, 0, 0))
+        if nxt not in chain:
+            chain.append(nxt)
+    return chain
+
+
+def _name(order: Order, seasonal: SeasonalOrder) -> str:
+    p, d, q = order
+    P, D, Q, s = seasonal
+    return f"ARIMA({p},{d},{q})" + (f"({P},{D},{Q}){s}" if s else "")
+
+
+def _lag_key(name: str) -> int:
+    digits = "".join(ch for ch in name if ch.isdigit())
+    return int(digits) if digits else 0
+
+
+def _interpolate(y: np.ndarray) -> np.ndarray:
+    """Linear interpolation over missing values (for tests and selection only)."""
+    y = np.asarray(y, dtype=float)
+    ok = ~np.isnan(y)
+    if ok.all():
+        return y
+    idx = np.arange(y.size)
+    return np.interp(idx, idx[ok], y[ok])
+
+
+def _long_ar_resid(z: np.ndarray, m: int) -> np.ndarray:
+    """Residuals of a long autoregression AR(m) by least squares (zeros for t < m)."""
+    n = z.size
+    resid = np.zeros(n)
+    if m < 1 or n <= 2 * m:
+        resid[:] = z
+        return resid
+    X = np.column_stack([z[m - i : n - i] for i in range(1, m + 1)])
+    coef, *_ = np.linalg.lstsq(X, z[m:], rcond=None)
+    resid[m:] = z[m:] - X @ coef
+    return resid
+
+
+def _outlying(y: np.ndarray, d: int) -> np.ndarray:
+    """Positions whose long-AR residual has a robust |z| above OUTLIER_Z."""
+    z = _interpolate(y)
+    base = np.diff(z, n=d) if d else z - np.median(z)
+    m = int(min(max(10 * math.log10(max(base.size, 10)), 4), base.size // 4))
+    resid = _long_ar_resid(base - base.mean(), m)
+    core = resid[m:]
+    scale = 1.4826 * float(np.median(np.abs(core - np.median(core)))) if core.size else 0.0
+    mask = np.zeros(y.size, dtype=bool)
+    if not scale > 0:
+        return mask
+    flagged = np.flatnonzero(np.abs(resid) > OUTLIER_Z * scale) + d
+    flagged = flagged[flagged < y.size]
+    mask[flagged] = True
+    return mask & ~np.isnan(y)
+
+
+def _natural_lags(decomp: Decomposition) -> tuple[int, ...]:
+    from omegascan.tasks.decompose import natural_periods
+
+    n = decomp.series.nobs
+    return tuple(p for p in natural_periods(decomp.series.step_seconds) if n >= 4 * p)
+
+
+_TASKS: dict[str, TaskSpec] = {"fit_task": (fit_model, {"name": "fit"})}
+
+
+def __getattr__(name: str):
+    return lazy_task(__name__, name, _TASKS)
