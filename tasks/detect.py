@@ -229,7 +229,7 @@ def detect_events(
             converged = True
             break
         seen.append(key)
-        if not found and model is not None and n_iter == 1:
+        if not found:  # nothing to remove: re-estimating would change nothing
             converged = True
             break
         adjusted = y - _total_effect(n, found, psi_weights(current, n))
@@ -462,11 +462,11 @@ def _joint(
     cands = list(cands)
     while cands:
         X = _design(cands, pi, e.size) * w[:, None]
-        coef, *_ = np.linalg.lstsq(X, e * w, rcond=None)
         try:
             inv = np.linalg.inv(X.T @ X)
         except np.linalg.LinAlgError:
             inv = np.linalg.pinv(X.T @ X)
+        coef = inv @ (X.T @ (e * w))
         se = sigma * np.sqrt(np.clip(np.diag(inv), 1e-300, None))
         t = coef / se
         weakest = int(np.argmin(np.abs(t)))

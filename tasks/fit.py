@@ -102,17 +102,20 @@ def fit_model(
     Notes
     -----
     1. Robust first pass: long-autoregression residuals of the differenced
-       series, points with |z| > 4 (median/MAD scale) set aside.
+       series, points with |z| > 4 (median/MAD scale) set aside; for d = 0 the
+       largest single step in mean is removed as well when BIC prefers it (an
+       unmodelled level shift inflates the AR coefficients and invites MA
+       terms).
     2. d in {0, 1}: differenced when the KPSS test rejects level stationarity
        at 5 % and the augmented Dickey-Fuller test does not reject a unit root.
     3. Orders by BIC over p <= max_p, q <= max_q (and a seasonal AR term at the
        longest season up to 52 points) using Hannan-Rissanen regressions, which
        cost microseconds, so only the chosen model is estimated by maximum
        likelihood.
-    4. Exact Gaussian likelihood (statsmodels SARIMAX, Kalman filter, missing
-       values allowed).  On failure, non-convergence or an MA root of modulus
-       >= 0.99: the same with q = 0, then (1, d, 0), then (0, d, 0); last, a
-       robust baseline (median and MAD), which needs no optimizer.
+    4. Exact Gaussian likelihood of the differenced series (SARIMAX with
+       simple differencing, Kalman filter, missing values allowed).  On
+       failure, non-convergence or an MA root of modulus >= 0.99: the same
+       with q = 0, then (1, d, 0), then (0, d, 0); last, a robust baseline (median and MAD), which needs no optimizer.
 
     References
     ----------
@@ -126,7 +129,9 @@ def fit_model(
     d_given = None if order is None else order[1]
     if robust:
         d0 = d_given if d_given is not None else choose_d(values)
-        clean[_outlying(values, d0)] = np.nan
+        if d0 == 0 and order is None:
+            clean = _without_step(clean)
+        clean[_outlying(clean, d0)] = np.nan
 
     # Steps 2-3: orders.
     if order is not None:
@@ -209,6 +214,7 @@ def estimate(
         order=order,
         seasonal_order=seasonal_order,
         trend="n",
+        simple_differencing=True,
         concentrate_scale=True,
         enforce_stationarity=True,
         enforce_invertibility=True,
@@ -280,18 +286,57 @@ def choose_d(y: np.ndarray) -> int:
     """Differencing order in {0, 1} from KPSS and augmented Dickey-Fuller tests.
 
     Differenced when KPSS rejects level stationarity at 5 % and ADF does not
-    reject a unit root at 5 %.
+    reject a unit root at 5 %, both on the series and on the series with its
+    largest single step removed: one level shift makes a stationary series
+    look integrated to both tests, a random walk stays integrated either way.
     """
-    from statsmodels.tsa.stattools import adfuller, kpss
-
     z = _interpolate(y)
     if z.size < 12 or np.ptp(z) == 0:
         return 0
+    return min(_unit_root(z), _unit_root(_remove_step(z)))
+
+
+def _remove_step(z: np.ndarray) -> np.ndarray:
+    """``z`` minus its best single break in mean (least squares, by cumulative sums)."""
+    n = z.size
+    c = np.cumsum(z)
+    c2 = np.cumsum(z * z)
+    k = np.arange(1, n)  # split after k points
+    left = c2[k - 1] - c[k - 1] ** 2 / k
+    right = (c2[-1] - c2[k - 1]) - (c[-1] - c[k - 1]) ** 2 / (n - k)
+    split = int(k[np.argmin(left + right)])
+    out = z.copy()
+    out[:split] -= z[:split].mean()
+    out[split:] -= z[split:].mean()
+    return out
+
+
+def _without_step(y: np.ndarray) -> np.ndarray:
+    """``y`` with its largest step in mean removed when BIC prefers the step."""
+    ok = ~np.isnan(y)
+    z = y[ok]
+    n = z.size
+    if n < 20:
+        return y
+    stepped = _remove_step(z)
+    flat = z - z.mean()
+    sse0, sse1 = float(flat @ flat), float(stepped @ stepped)
+    if sse1 <= 0 or n * math.log(sse1 / sse0) + 2 * math.log(n) >= 0:
+        return y
+    out = y.copy()
+    out[ok] = stepped + z.mean()
+    return out
+
+
+def _unit_root(z: np.ndarray) -> int:
+    from statsmodels.tsa.stattools import adfuller, kpss
+
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         try:
             kpss_p = kpss(z, regression="c", nlags="auto")[1]
-            adf_p = adfuller(z, maxlag=min(12, z.size // 4), autolag="AIC")[1]
+            lags = int(min(12 * (z.size / 100) ** 0.25, z.size // 4))  # Schwert's rule
+            adf_p = adfuller(z, maxlag=lags, autolag=None)[1]
         except (ValueError, np.linalg.LinAlgError):
             return 0
     return 1 if (kpss_p < 0.05 and adf_p > 0.05) else 0
@@ -329,8 +374,7 @@ def select_orders(
                 cols += [resid[start - j : n - j] for j in range(1, q + 1)]
                 if cols:
                     X = np.column_stack(cols)
-                    coef, *_ = np.linalg.lstsq(X, target, rcond=None)
-                    rss = float(np.sum((target - X @ coef) ** 2))
+                    rss = float(np.sum((target - X @ ols(X, target)) ** 2))
                 else:
                     rss = float(np.sum(target**2))
                 k = len(cols) + 1 + (1 if d == 0 else 0)
@@ -442,9 +486,10 @@ def max_ma_root(params: Sequence[tuple[str, float]]) -> float:
 def innovations(y: np.ndarray, model: FittedModel | Estimate) -> np.ndarray:
     """One-step prediction errors of ``y`` under ``model``, scaled to variance sigma2.
 
-    Kalman-filter innovations standardized by their own variance and multiplied
-    by sigma, so start-up points (where the prediction is uncertain) do not look
-    like large shocks.  NaN where ``y`` is missing.
+    Kalman-filter innovations of the differenced series, standardized by their
+    own variance and multiplied by sigma, so start-up points (where the
+    prediction is uncertain) do not look like large shocks.  NaN where ``y`` is
+    missing and for the first d + sD points (lost to differencing).
     """
     from statsmodels.tsa.statespace.sarimax import SARIMAX
 
@@ -461,14 +506,16 @@ def innovations(y: np.ndarray, model: FittedModel | Estimate) -> np.ndarray:
             order=model.order,
             seasonal_order=model.seasonal_order,
             trend="n",
+            simple_differencing=True,
             enforce_stationarity=False,
             enforce_invertibility=False,
         )
         res = mod.filter(np.r_[arma, sigma2])
     err = np.asarray(res.forecasts_error[0], dtype=float)
     var = np.asarray(res.forecasts_error_cov[0, 0], dtype=float)
+    out = np.full(dev.size, np.nan)
     with np.errstate(invalid="ignore", divide="ignore"):
-        out = err / np.sqrt(var) * math.sqrt(sigma2)
+        out[dev.size - err.size :] = err / np.sqrt(var) * math.sqrt(sigma2)
     out[np.isnan(y)] = np.nan
     return out
 
@@ -553,9 +600,20 @@ def _long_ar_resid(z: np.ndarray, m: int) -> np.ndarray:
         resid[:] = z
         return resid
     X = np.column_stack([z[m - i : n - i] for i in range(1, m + 1)])
-    coef, *_ = np.linalg.lstsq(X, z[m:], rcond=None)
-    resid[m:] = z[m:] - X @ coef
+    resid[m:] = z[m:] - X @ ols(X, z[m:])
     return resid
+
+
+def ols(X: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """Least-squares coefficients by the normal equations (SVD-based lstsq as fallback).
+
+    The regressions here are small and well conditioned; the normal equations
+    cost a fraction of LAPACK's SVD solver.
+    """
+    try:
+        return np.linalg.solve(X.T @ X, X.T @ y)
+    except np.linalg.LinAlgError:
+        return np.linalg.lstsq(X, y, rcond=None)[0]
 
 
 def _outlying(y: np.ndarray, d: int) -> np.ndarray:
