@@ -115,7 +115,8 @@ def fit_model(
     4. Exact Gaussian likelihood of the differenced series (SARIMAX with
        simple differencing, Kalman filter, missing values allowed).  On
        failure, non-convergence or an MA root of modulus >= 0.99: the same
-       with q = 0, then (1, d, 0), then (0, d, 0); last, a robust baseline (median and MAD), which needs no optimizer.
+       with q = 0, then (1, d, 0), then (0, d, 0); last, a robust baseline
+       (median and MAD), which needs no optimizer.
 
     References
     ----------
