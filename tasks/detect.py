@@ -40,6 +40,7 @@ from omegascan.tasks.fit import (
     polynomials,
     psi_weights,
 )
+from omegascan.tasks.threads import single_blas_thread
 from omegascan.tasks.types import (
     EVENT_TYPES,
     Decomposition,
@@ -102,6 +103,7 @@ def default_critical(n: int, *, alpha: float = ALPHA) -> float:
     return max(MIN_CRITICAL, float(norm.isf(alpha / (2.0 * n))))
 
 
+@single_blas_thread
 def analyse_series(
     series_id: str,
     timestamps,
@@ -119,6 +121,7 @@ def analyse_series(
     return detect_events(decompose(series, periods=periods), critical=critical)
 
 
+@single_blas_thread
 def detect_events(
     decomp: Decomposition,
     *,
@@ -233,7 +236,7 @@ def detect_events(
             converged = True
             break
         adjusted = y - _total_effect(n, found, psi_weights(current, n))
-        if n_iter == 1 or isinstance(current, FittedModel):
+        if len(seen) == 1:  # orders and differencing chosen again once, without the effects
             current = fit_model(decomp, y=adjusted)
         else:
             current = _refit(adjusted, current)
@@ -264,6 +267,7 @@ def detect_events(
     )
 
 
+@single_blas_thread
 def screen_new_points(
     model: FittedModel,
     series: RegularSeries,
@@ -562,7 +566,7 @@ def _n_start(model: FittedModel | Estimate) -> int:
     return d + s * D + p + s * P
 
 
-def _refit(y: np.ndarray, current: Estimate) -> Estimate | FittedModel:
+def _refit(y: np.ndarray, current: FittedModel | Estimate) -> FittedModel | Estimate:
     arma = [v for k, v in current.params if k not in ("const", "sigma2")]
     try:
         return estimate(

@@ -1046,7 +1046,8 @@ class _ArrowReader:
 
     def _id_expr(self) -> ds.Expression:
         field = ds.field(self.spec.columns.series_id)
-        if pa.types.is_string(self.types["series_id"]):
+        dtype = self.types["series_id"]
+        if pa.types.is_string(dtype) or pa.types.is_large_string(dtype):
             return field
         return field.cast(pa.string())
 
@@ -1062,9 +1063,9 @@ class _ArrowReader:
                 return ds.scalar(False)
             guard = (field >= min(numbers)) & (field <= max(numbers))
             return guard & field.isin(pa.array(numbers, type=pa.int64()))
-        if pa.types.is_string(dtype):
+        if pa.types.is_string(dtype) or pa.types.is_large_string(dtype):
             guard = (field >= min(ids)) & (field <= max(ids))
-            return guard & field.isin(pa.array(list(ids), type=pa.string()))
+            return guard & field.isin(pa.array(list(ids), type=dtype))
         return self._id_expr().isin(pa.array(list(ids), type=pa.string()))
 
     def _time_scalar(self, key: Any, axis: _Axis, *, upper: bool) -> pa.Scalar | None:
