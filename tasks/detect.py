@@ -273,6 +273,7 @@ def screen_new_points(
     series: RegularSeries,
     n_new: int,
     *,
+    known: Sequence[Event] = (),
     critical: float | None = None,
 ) -> DetectionResult:
     """Test only the newest points of a series against a cached model.
@@ -286,6 +287,10 @@ def screen_new_points(
         grid must match the model's (same spacing, profiles anchored by time).
     n_new : int
         How many of the last points are new and may carry events.
+    known : sequence of Event, default=()
+        Events already reported for this series (at any earlier time, inside
+        the context or before it); their effects are removed first, so a level
+        shift found last week is not found again today.
     critical : float, optional
         Default: :func:`default_critical` of the model's estimation length.
 
@@ -305,7 +310,7 @@ def screen_new_points(
     if not 0 < n_new <= n:
         raise ValueError(f"n_new must be in 1..{n}")
     crit = default_critical(model.nobs) if critical is None else float(critical)
-    y = series.values - _seasonal_for(model, series)
+    y = series.values - _seasonal_for(model, series) - known_effects(model, series, known)
     params = model.param_dict
     dev = y - params.get("const", 0.0)
     w = (~np.isnan(dev)).astype(float)
@@ -849,6 +854,67 @@ def _absorb_pattern(decomp: Decomposition, period: int) -> tuple[Decomposition, 
 
 
 # -- warm path helpers ---------------------------------------------------------------
+
+
+def known_effects(model: FittedModel, series: RegularSeries, known: Sequence[Event]) -> np.ndarray:
+    """Series-space effect of earlier events on a series' grid (by time, not position)."""
+    n = series.nobs
+    total = np.zeros(n)
+    if not known:
+        return total
+    offsets_of = _grid_offsets(series, model.step_seconds)
+    psi = None
+    for ev in known:
+        k = offsets_of(ev.event_time)
+        if k is None:
+            continue
+        first = max(0, -k)  # first grid point at or after the event
+        if first >= n:
+            continue
+        lags = np.arange(first + k, n + k)
+        if ev.event_type == "IO":
+            if psi is None:
+                psi = psi_weights(model, int(max(lags.max() + 1, n)))
+            if lags.max() >= psi.size:
+                psi = psi_weights(model, int(lags.max() + 1))
+            shape = psi[lags]
+        elif ev.event_type == "AO":
+            shape = (lags == 0).astype(float)
+        elif ev.event_type == "LS":
+            shape = np.ones(lags.size)
+        else:
+            shape = (ev.decay if ev.decay is not None else 0.7) ** lags
+        total[first:] += ev.effect * shape
+    return total
+
+
+def _grid_offsets(series: RegularSeries, step_seconds: float | None):
+    """A function: event time text -> offset (in grid steps) of series point 0 from it."""
+    step = step_seconds or series.step_seconds
+    if series.is_datetime:
+        first = series.index[0]
+
+        def offset(label: str) -> int | None:
+            try:
+                when = pd.Timestamp(label)
+            except (ValueError, TypeError):
+                return None
+            if when.tz is None and first.tz is not None:
+                when = when.tz_localize(first.tz)
+            elif when.tz is not None and first.tz is None:
+                when = when.tz_convert("UTC").tz_localize(None)
+            return round((first - when).total_seconds() / step)
+
+        return offset
+    first_value = float(series.index[0])
+
+    def numeric_offset(label: str) -> int | None:
+        try:
+            return round((first_value - float(label)) / step)
+        except (ValueError, TypeError):
+            return None
+
+    return numeric_offset
 
 
 def _seasonal_for(model: FittedModel, series: RegularSeries) -> np.ndarray:
