@@ -211,6 +211,8 @@ def natural_periods(step_seconds: float) -> tuple[int, ...]:
         return (4,)
     out = []
     for cycle in _CYCLES:
+        if cycle > 300 * _DAY and step_seconds < _DAY:
+            continue  # a yearly profile only for daily or coarser data
         ratio = cycle / step_seconds
         period = round(ratio)
         if 2 <= period <= MAX_PERIOD and abs(ratio - period) <= 0.01 * ratio:
@@ -362,14 +364,18 @@ def _calendar_months(step_ns: float) -> int:
 def _nice_step(step: float, is_time: bool) -> float:
     """Round a median spacing so sub-percent jitter snaps to a clean value.
 
-    Datetime spacings (in ns) go to a whole number of the largest unit (day,
-    hour, minute, second, ms, µs, ns) at most 1 % of the step; numeric ones to
-    three significant digits.
+    Datetime spacings (in ns) go to a whole number of the coarsest unit (day,
+    hour, minute, second, ms, µs, ns) that lands within 2 % of the median;
+    numeric ones to three significant digits.
     """
     if not is_time:
         return float(f"{step:.3g}")
-    unit = next((u for u in _UNITS_NS if u <= 0.01 * step), 1.0)
-    return max(round(step / unit), 1) * unit
+    for unit in _UNITS_NS:
+        if unit <= 1.02 * step:
+            rounded = round(step / unit) * unit
+            if abs(rounded - step) <= 0.02 * step:
+                return rounded
+    return max(round(step), 1)
 
 
 def _is_numeric(values) -> bool:

@@ -937,7 +937,7 @@ class _ArrowReader:
     def __init__(self, spec: SourceSpec, *, check: bool = False) -> None:
         self.spec = spec
         cols = spec.columns
-        self.dataset = self._open(check=check)
+        self.dataset, self.files = self._open()
         names = self.dataset.schema.names
         for role in LONG_COLUMNS:
             name = getattr(cols, role)
@@ -950,8 +950,10 @@ class _ArrowReader:
             role: self.dataset.schema.field(getattr(cols, role)).type for role in LONG_COLUMNS
         }
         self._check_types()
+        if check:
+            self._check_files()
 
-    def _open(self, *, check: bool) -> ds.Dataset:
+    def _open(self) -> tuple[ds.Dataset, list[str]]:
         spec = self.spec
         suffixes = PARQUET_SUFFIXES if spec.kind == "parquet" else CSV_SUFFIXES
         if spec.kind == "parquet":
@@ -996,36 +998,54 @@ class _ArrowReader:
             else:
                 files = [str(root)]
                 dataset = ds.dataset(str(root), format=fmt)
-            if check:
-                self._check_files(dataset, files)
         except (pa.ArrowInvalid, pa.ArrowTypeError, pa.ArrowNotImplementedError) as exc:
-            raise SourceError(
-                f"{spec.describe} cannot be read as {spec.kind}: {_arrow_message(exc)}; "
-                "check that the files are complete and of that format"
-            ) from None
-        return dataset
+            raise self._unreadable(exc) from None
+        return dataset, files
 
-    def _check_files(self, dataset: ds.Dataset, files: list[str]) -> None:
+    def _unreadable(self, exc: Exception) -> SourceError:
+        spec = self.spec
+        message = _arrow_message(exc)
+        if "conversion error to double" in message:
+            detail = (
+                message[message.find("In CSV column") :] if "In CSV column" in message else message
+            )
+            return SourceError(
+                f"{spec.describe}: value column {spec.columns.value!r} holds something that is not "
+                f"a number ({detail}); fix those rows or pass {_OPTION['value']} to choose the "
+                "right column"
+            )
+        return SourceError(
+            f"{spec.describe} cannot be read as {spec.kind}: {message}; check that the files "
+            "are complete and of that format"
+        )
+
+    def _check_files(self) -> None:
         """Every file must hold the mapped columns (a file without one reads as nulls)."""
         spec = self.spec
+        dataset = self.dataset
         partition_names = set(dataset.partitioning.schema.names) if dataset.partitioning else set()
-        for fragment in dataset.get_fragments():
-            present = set(fragment.physical_schema.names) | partition_names
+        try:
+            fragments = list(dataset.get_fragments())
+            schemas = [(f.path, f.physical_schema) for f in fragments]
+        except (pa.ArrowInvalid, pa.ArrowTypeError) as exc:
+            raise self._unreadable(exc) from None
+        for path, schema in schemas:
+            present = set(schema.names) | partition_names
             for role in LONG_COLUMNS:
                 name = getattr(spec.columns, role)
                 if name not in present:
                     raise SourceError(
-                        f"{spec.describe}: file {fragment.path!r} has no column {name!r} "
-                        f"(columns: {', '.join(fragment.physical_schema.names)}); rewrite the "
+                        f"{spec.describe}: file {path!r} has no column {name!r} "
+                        f"(columns: {', '.join(schema.names)}); rewrite the "
                         f"file or pass {_OPTION[role]} if the column is named differently"
                     )
-            if spec.columns.value not in fragment.physical_schema.names:
-                continue  # a partition field: typed by the partitioning, checked below
-            value_type = fragment.physical_schema.field(spec.columns.value).type
+            if spec.columns.value not in schema.names:
+                continue  # a partition field: typed by the partitioning
+            value_type = schema.field(spec.columns.value).type
             if _arrow_category(value_type) not in ("integer", "float", "null"):
                 raise SourceError(
                     f"{spec.describe}: value column {spec.columns.value!r} in file "
-                    f"{fragment.path!r} has type {value_type}, not numbers; store numbers or "
+                    f"{path!r} has type {value_type}, not numbers; store numbers or "
                     f"pass {_OPTION['value']} to choose the right column"
                 )
 
@@ -1062,9 +1082,7 @@ class _ArrowReader:
                 SAMPLE_ROWS, columns=[name], filter=ds.field(name).is_valid()
             ).column(0)
         except (pa.ArrowInvalid, pa.ArrowTypeError) as exc:
-            raise SourceError(
-                f"{self.spec.describe} cannot be read: {_arrow_message(exc)}"
-            ) from None
+            raise self._unreadable(exc) from None
         return _time_kind_of_text(pd.Series(sample.to_pylist(), dtype=object), self.spec)
 
     def _id_expr(self) -> ds.Expression:
@@ -1091,29 +1109,24 @@ class _ArrowReader:
             return guard & field.isin(pa.array(list(ids), type=dtype))
         return self._id_expr().isin(pa.array(list(ids), type=pa.string()))
 
-    def _time_scalar(self, key: Any, axis: _Axis, *, upper: bool) -> pa.Scalar | None:
-        """A scalar of the stored type bounding ``key`` (a superset if inexact)."""
+    def _time_scalar(self, key: Any, axis: _Axis) -> pa.Scalar | None:
+        """``key`` as a scalar of the stored type (see :func:`_stored_bound`)."""
         dtype = self.types["timestamp"]
         if pa.types.is_timestamp(dtype):
             # A scalar in the column's own unit: a finer one makes Arrow cast
             # every stored value (30 ms vs 5 ms per batch in bench_fetch.py).
-            unit = dtype.unit
-            stamp = key if unit == "ns" else (key.ceil(unit) if upper else key.floor(unit))
-            if dtype.tz is None:
-                stamp = stamp.tz_convert(axis.tz).tz_localize(None)
-            else:
-                stamp = stamp.tz_convert(dtype.tz)
-            return pa.scalar(stamp.as_unit(unit), type=dtype)
+            stamp = _stored_bound(key, axis, "timestamp", unit=dtype.unit, tz=dtype.tz)
+            return pa.scalar(stamp.as_unit(dtype.unit), type=dtype)
         if pa.types.is_date(dtype):
-            day = key.tz_convert(axis.tz).tz_localize(None)
-            return pa.scalar((day.ceil("D") if upper else day.floor("D")).date(), type=pa.date32())
+            return pa.scalar(_stored_bound(key, axis, "date"), type=dtype)
         category = _arrow_category(dtype)
-        if category not in ("integer", "float"):
-            return None  # text: filtered in memory
-        number = _epoch_number(key, self.spec.timestamp_unit) if axis.temporal else key
         if category == "integer":
-            return pa.scalar(math.ceil(number) if upper else math.floor(number), type=pa.int64())
-        return pa.scalar(float(number), type=pa.float64())
+            number = _stored_bound(key, axis, "integer", unit=self.spec.timestamp_unit)
+            return pa.scalar(number, type=pa.int64())
+        if category == "float":
+            number = _stored_bound(key, axis, "float", unit=self.spec.timestamp_unit)
+            return pa.scalar(number, type=pa.float64())
+        return None  # text: filtered in memory
 
     def _filter(self, groups: Sequence[_Group], axis: _Axis) -> ds.Expression:
         field = ds.field(self.spec.columns.timestamp)
@@ -1121,13 +1134,13 @@ class _ArrowReader:
         for group in groups:
             cond = self._id_filter(group.ids)
             if group.start is not None:
-                lo = self._time_scalar(group.start, axis, upper=False)
+                lo = self._time_scalar(group.start, axis)
                 if lo is not None:
                     cond = cond & (field >= lo)
             if group.end is not None:
-                hi = self._time_scalar(group.end, axis, upper=True)
+                hi = self._time_scalar(group.end, axis)
                 if hi is not None:
-                    cond = cond & (field <= hi)
+                    cond = cond & (field < hi)
             expr = cond if expr is None else expr | cond
         assert expr is not None
         return expr
@@ -1142,10 +1155,7 @@ class _ArrowReader:
         try:
             table = self.dataset.to_table(columns=projection, filter=self._filter(groups, axis))
         except (pa.ArrowInvalid, pa.ArrowTypeError) as exc:
-            raise SourceError(
-                f"{self.spec.describe} cannot be read: {_arrow_message(exc)}; fix or remove the "
-                "damaged file"
-            ) from None
+            raise self._unreadable(exc) from None
         return table.to_pandas(date_as_object=False)
 
     def distinct_ids(self) -> list[str]:
@@ -1158,9 +1168,7 @@ class _ArrowReader:
             for batch in scanner.to_batches():
                 seen.update(pc.unique(batch.column(0)).to_pylist())
         except (pa.ArrowInvalid, pa.ArrowTypeError) as exc:
-            raise SourceError(
-                f"{self.spec.describe} cannot be read: {_arrow_message(exc)}"
-            ) from None
+            raise self._unreadable(exc) from None
         return sorted(seen)
 
     def close(self) -> None:
@@ -1172,10 +1180,38 @@ def _arrow_message(exc: Exception) -> str:
     return text[0] if text else type(exc).__name__
 
 
-def _epoch_number(key: pd.Timestamp, unit: str | None) -> float:
-    per_second = {"s": 1, "ms": 1_000, "us": 1_000_000, "ns": 1_000_000_000}[unit or "s"]
-    delta = key - pd.Timestamp(0, tz="UTC")
-    return delta.value / 1e9 * per_second
+_NS_PER_UNIT = {"s": 1_000_000_000, "ms": 1_000_000, "us": 1_000, "ns": 1}
+
+
+def _stored_bound(
+    key: Any, axis: _Axis, stored: str, *, unit: str | None = None, tz: str | None = None
+) -> Any:
+    """The least value of a stored type that is >= ``key``.
+
+    Stored values are whole units (of a timestamp unit, a day, an integer), so
+    for that bound ``b``, ``v >= key`` iff ``v >= b`` and ``v < key`` iff
+    ``v < b``: the pushed-down filter is exact.
+
+    Parameters
+    ----------
+    key : pandas.Timestamp (UTC) or float
+        A time key from :meth:`_Axis.bound`.
+    stored : {"timestamp", "date", "integer", "float"}
+    unit : str, optional
+        Timestamp unit of the column, or epoch unit of numbers (temporal axis).
+    tz : str, optional
+        Zone of an aware timestamp column; None for naive columns (read in
+        ``axis.tz``).
+    """
+    if stored == "timestamp":
+        stamp = key if unit in (None, "ns") else key.ceil(unit)
+        return stamp.tz_convert(tz) if tz else stamp.tz_convert(axis.tz).tz_localize(None)
+    if stored == "date":
+        return key.tz_convert(axis.tz).tz_localize(None).ceil("D").date()
+    per = _NS_PER_UNIT[unit or "s"]
+    if stored == "integer":
+        return -(-key.value // per) if axis.temporal else math.ceil(key)
+    return key.value / per if axis.temporal else float(key)
 
 
 # ---------------------------------------------------------------------------
@@ -1366,18 +1402,17 @@ class _SqlReader:
         return list(ids)
 
     def _time_value(self, key: Any, axis: _Axis) -> Any:
+        """``key`` as a bound parameter of the stored type (see :func:`_stored_bound`)."""
         category = self._category("timestamp")
         if category == "datetime":
             sample = next((v for v in self.probe["timestamp"] if v is not None), None)
-            aware = isinstance(sample, datetime) and sample.tzinfo is not None
-            if aware:
-                return key.to_pydatetime()
-            naive = key.tz_convert(axis.tz).tz_localize(None).to_pydatetime()
             if isinstance(sample, date) and not isinstance(sample, datetime):
-                return naive.date()
-            return naive
+                return _stored_bound(key, axis, "date")
+            aware = isinstance(sample, datetime) and sample.tzinfo is not None
+            stamp = _stored_bound(key, axis, "timestamp", unit="us", tz="UTC" if aware else None)
+            return stamp.to_pydatetime()
         if category in ("integer", "float"):
-            return _epoch_number(key, self.spec.timestamp_unit) if axis.temporal else key
+            return _stored_bound(key, axis, category, unit=self.spec.timestamp_unit)
         return None  # text or unknown: filtered in memory
 
     def scan(self, groups: Sequence[_Group], axis: _Axis) -> pd.DataFrame:
@@ -1391,9 +1426,7 @@ class _SqlReader:
                 value = self._time_value(key, axis)
                 if value is None:
                     continue
-                if isinstance(value, date) and not isinstance(value, datetime) and upper:
-                    cond.append(ts <= value)
-                elif upper:
+                if upper:
                     cond.append(ts < value)
                 else:
                     cond.append(ts >= value)

@@ -1,0 +1,120 @@
+"""regularize() and decompose(): the grid, the duplicate rule, the seasonal profile."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+from numpy.testing import assert_allclose
+
+from omegascan.tasks.decompose import MIN_POINTS, decompose, natural_periods, regularize
+from omegascan.tasks.errors import (
+    AllMissingError,
+    ConstantSeriesError,
+    NonFiniteError,
+    NonNumericError,
+    SeriesError,
+    TimestampError,
+    TooShortError,
+)
+
+
+def test_regularize_sorts_fills_gaps_and_keeps_input_text():
+    stamps = ["2026-05-01 00:10", "2026-05-01 00:00", "2026-05-01 00:05", "2026-05-01 00:25"]
+    stamps += [f"2026-05-01 {h:02d}:{m:02d}" for h in (1, 2) for m in range(0, 60, 5)]
+    values = np.arange(len(stamps), dtype=float)
+    s = regularize("disk-1", stamps, values)
+    assert s.step == pd.Timedelta("5min")
+    assert s.labels[0] == "2026-05-01 00:00"  # the text as given, not a reformatted time
+    assert s.values[0] == 1.0 and s.values[2] == 0.0
+    # 00:15 and 00:20 were never reported: gaps on the grid
+    assert np.isnan(s.values[3]) and np.isnan(s.values[4])
+    assert s.labels[3] is None and s.label(3) == "2026-05-01T00:15:00"
+    assert s.nobs == 12 * 3  # 00:00 .. 02:55 on a five-minute grid
+
+
+def test_duplicates_resolved_by_median_and_jitter_snaps_to_grid():
+    base = pd.date_range("2026-05-01", periods=40, freq="1s")
+    jitter = pd.to_timedelta(np.random.default_rng(0).uniform(-0.2, 0.2, 40), unit="s")
+    stamps = [*list(base + jitter), base[10], base[10]]
+    values = [*list(np.ones(40)), 7.0, 10.0]
+    values[0] = 2.0
+    s = regularize("fan", pd.Series(stamps), values)
+    assert s.step == pd.Timedelta("1s")
+    assert s.nobs == 40 and s.n_duplicates == 2
+    assert s.values[10] == 7.0  # median of 1, 7, 10
+
+
+def test_monthly_data_uses_calendar_months():
+    stamps = pd.date_range("1949-01-01", periods=144, freq="MS")
+    s = regularize("m", stamps, np.arange(144.0))
+    assert s.nobs == 144 and s.n_missing == 0
+    assert s.index[-1] == pd.Timestamp("1960-12-01")
+    assert natural_periods(s.step_seconds) == (12,)
+
+
+def test_numeric_timestamps_are_a_unitless_grid():
+    s = regularize("years", np.arange(1871, 1971), np.arange(100.0) % 7)
+    assert s.step == 1.0 and s.label(28) == "1899"
+    assert not s.is_datetime
+
+
+def test_natural_periods_follow_the_spacing():
+    assert natural_periods(3600) == (24, 168)
+    assert natural_periods(300) == (288, 2016)
+    assert natural_periods(60) == (1440, 10080)
+    assert natural_periods(86400) == (7, 365)
+    assert natural_periods(0.001) == ()
+
+
+@pytest.mark.parametrize(
+    ("timestamps", "values", "error", "match"),
+    [
+        (range(30), ["1.0"] * 29 + ["fast"], NonNumericError, "not numbers.*'fast'"),
+        (range(30), [1.0] * 29 + [np.inf], NonFiniteError, "infinite"),
+        (range(30), [np.nan] * 30, AllMissingError, "every value is missing"),
+        (range(10), np.arange(10.0), TooShortError, f"at least {MIN_POINTS}"),
+        (range(30), [4.2] * 30, ConstantSeriesError, "every observed value equals 4.2"),
+        (["2026-01-01"] * 29 + ["yesterday"], np.arange(30.0), TimestampError, "cannot be parsed"),
+        ([5] * 30, np.arange(30.0), TimestampError, "two distinct timestamps"),
+        ([0, 1, 2, 10 ** 7, *list(range(3, 29))], np.arange(30.0), TimestampError, "too irregular"),
+    ],
+)
+def test_bad_input_names_the_series_and_the_problem(timestamps, values, error, match):
+    with pytest.raises(error, match=match) as info:
+        regularize("ctl-7/latency", list(timestamps), values)
+    assert "ctl-7/latency" in str(info.value)
+    assert isinstance(info.value, SeriesError) and isinstance(info.value, ValueError)
+
+
+def test_missing_timestamps_are_rejected():
+    stamps = pd.Series(pd.date_range("2026-01-01", periods=30, freq="h"))
+    stamps[3] = pd.NaT
+    with pytest.raises(TimestampError, match="missing"):
+        regularize("x", stamps, np.arange(30.0))
+
+
+def test_profile_recovered_and_level_shift_left_in_the_adjusted_series():
+    rng = np.random.default_rng(1)
+    n = 24 * 21
+    phase = np.arange(n) % 24
+    daily = 3.0 * np.sin(2 * np.pi * phase / 24)
+    y = 100 + daily + rng.normal(scale=0.5, size=n)
+    y[300:] += 8.0  # a level shift must not end up in the seasonal part
+    s = regularize("h", pd.date_range("2026-01-01", periods=n, freq="h"), y)
+    d = decompose(s)
+    assert d.periods == (24,)  # the weekly profile of noise does not earn its keep
+    error = d.profiles[0] - (daily[:24] - daily[:24].mean())
+    assert np.sqrt(np.mean(error**2)) < 0.2 and np.abs(error).max() < 0.5
+    before = d.adjusted[200:290].mean()
+    after = d.adjusted[310:400].mean()
+    assert_allclose(after - before, 8.0, atol=0.4)
+    assert_allclose(d.recompose(), y)
+
+
+def test_user_periods_need_two_cycles():
+    s = regularize("x", np.arange(100), np.random.default_rng(2).normal(size=100))
+    assert decompose(s, periods=[10]).periods == (10,)
+    with pytest.raises(SeriesError, match="season 60 needs at least 120 points"):
+        decompose(s, periods=[60])
+    assert decompose(s, periods=[]).periods == ()
