@@ -242,7 +242,7 @@ def detect_events(
             break
         adjusted = y - _total_effect(n, found, psi_weights(current, n))
         if len(seen) == 1:  # orders and differencing chosen again once, without the effects
-            current = fit_model(decomp, y=adjusted)
+            current = fit_model(decomp, y=adjusted, start=current)
         else:
             current = _refit(adjusted, current)
     else:

@@ -75,10 +75,12 @@ MAX_FILTER_GROUPS = 1
 
 Above this, a batch becomes at most two conditions (windows with an open start,
 and the rest from their earliest start), trimmed per series in memory.
-Measured with tests/benchmarks/bench_fetch.py (1,000 series x 720 points,
-batches of 100): one condition per series took 1.4-2.7 s against 0.19-0.42 s
-for the earliest start and trim; with only 4 distinct watermarks, 0.44-0.46 s
-against 0.28-0.34 s.  So distinct spans are merged unless they are all equal.
+Measured with tests/benchmarks/bench_fetch.py (1,000 series x 720 points in
+Parquet, batches of 100, windows sorted by start, best of 5 on a loaded 2-core
+machine): a different watermark per series took 0.99 s / 0.55 s (two file
+layouts) with one condition per series against 0.51 s / 0.25 s with the
+earliest start and trim; with 4 distinct watermarks, 0.47 s / 0.33 s against
+0.36 s / 0.36 s.  So distinct spans are merged unless they are all equal.
 """
 CONNECT_TIMEOUT_S = 10
 
@@ -411,7 +413,7 @@ def read_series(
         Columns ``series_id``, ``timestamp``, ``value``, sorted by series id
         and time.  Series with no rows in the span are absent.
     """
-    ids = _check_ids(series_ids, spec) if series_ids is not None else None
+    ids = _check_ids(series_ids) if series_ids is not None else None
     reader = _READERS[spec.kind](spec)
     try:
         if ids is None:
@@ -458,7 +460,8 @@ def iter_batches(
 
     Parameters are those of :func:`read_series`, plus ``batch_size`` (series
     per batch, >= 1).  Each batch is read by one pushed-down query when the
-    iterator reaches it.
+    iterator reaches it.  (A CSV source is scanned again for every batch, as
+    CSV has no index: convert large fleets to Parquet.)
 
     Yields
     ------
@@ -468,7 +471,7 @@ def iter_batches(
         the span).
     """
     size = _check_batch_size(batch_size)
-    ids = _check_ids(series_ids, spec) if series_ids is not None else None
+    ids = _check_ids(series_ids) if series_ids is not None else None
     return _iterate(spec, ids, size, lambda chunk: _span_windows(chunk, start, end, context))
 
 
@@ -487,7 +490,7 @@ def iter_window_batches(
     keys = {w.series_id: axis.bound(w.start, what="start") for w in wins}
     for w in wins:  # bad bounds fail here, before any reading
         axis.bound(w.end, what="end")
-    wins.sort(key=lambda w: (keys[w.series_id] is not None, keys[w.series_id] or 0))
+    wins.sort(key=lambda w: (0, 0) if keys[w.series_id] is None else (1, keys[w.series_id]))
     by_id = {w.series_id: w for w in wins}
     return _iterate(spec, list(by_id), size, lambda chunk: [by_id[s] for s in chunk])
 
@@ -646,7 +649,7 @@ def _shift(start: Bound, span: Span) -> Bound:
     return _to_timestamp(start, what="start") - _to_timedelta(span, what="context")
 
 
-def _check_ids(series_ids: Sequence[str], spec: SourceSpec) -> list[str]:
+def _check_ids(series_ids: Sequence[str]) -> list[str]:
     if isinstance(series_ids, str | bytes):
         raise ConfigError(
             f"series ids must be a list of ids, not the single text {series_ids!r}; "

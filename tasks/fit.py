@@ -78,6 +78,7 @@ def fit_model(
     max_q: int = 2,
     robust: bool = True,
     y: np.ndarray | None = None,
+    start: FittedModel | Estimate | None = None,
 ) -> FittedModel:
     """Choose and estimate an ARIMA model for the seasonally adjusted series.
 
@@ -95,6 +96,9 @@ def fit_model(
     y : ndarray of shape (nobs,), optional
         A version of the adjusted series to model instead (for example with
         detected effects removed).
+    start : FittedModel or Estimate, optional
+        An earlier estimate; when the chosen orders are its orders, its
+        parameters start the optimizer (fewer iterations).
 
     Returns
     -------
@@ -155,8 +159,11 @@ def fit_model(
     # Step 4: estimate, with the fallback chain.
     reasons: list[str] = []
     for candidate, cand_seasonal in _fallbacks(chosen, seasonal):
+        warm = None
+        if start is not None and (start.order, start.seasonal_order) == (candidate, cand_seasonal):
+            warm = [v for k, v in start.params if k not in ("const", "sigma2")] or None
         try:
-            est = estimate(clean, candidate, cand_seasonal, trend=trend)
+            est = estimate(clean, candidate, cand_seasonal, trend=trend, start_params=warm)
         except EstimationError as exc:
             reasons.append(f"{_name(candidate, cand_seasonal)}: {exc}")
             continue
@@ -227,11 +234,14 @@ def estimate(
             warnings.simplefilter("ignore")
             model = SARIMAX(y, exog=X, **model_kw)
             start = None
-            if start_params is not None and k_exog:
-                start = model.start_params
+            if start_params is not None:
                 arma = np.asarray(start_params, dtype=float)
-                if arma.size == start.size - k_exog:
-                    start[k_exog:] = arma
+                if k_exog == 0:
+                    start = arma if arma.size == len(model.param_names) else None
+                else:
+                    start = model.start_params
+                    if arma.size == start.size - k_exog:
+                        start[k_exog:] = arma
             res = model.fit(
                 start_params=start,
                 disp=False,
