@@ -55,9 +55,9 @@ import pyarrow.compute as pc
 import pyarrow.csv as pacsv
 import pyarrow.dataset as ds
 import sqlalchemy as sa
-from prefect import task
 
 from omegascan.tasks.errors import ConfigError, SourceError
+from omegascan.tasks.wrappers import TaskSpec, lazy_task
 
 SourceKind = Literal["parquet", "csv", "sql"]
 TimeKind = Literal["datetime", "numeric", "text"]
@@ -1516,10 +1516,18 @@ _IO = {
     "retries": 3,
     "retry_delay_seconds": [1, 2, 4],
     "retry_condition_fn": _retry_transient,
+    # Cannot interrupt a blocking read in a worker thread; the database
+    # connection timeout (CONNECT_TIMEOUT_S) is the real guard.
     "timeout_seconds": 900,
 }
 
-open_source_task = task(name="open-source", **_IO)(open_source)
-list_series_task = task(name="list-series", **_IO)(list_series)
-read_series_task = task(name="read-series", **_IO)(read_series)
-read_windows_task = task(name="read-windows", **_IO)(read_windows)
+_TASKS: dict[str, TaskSpec] = {
+    "open_source_task": (open_source, {"name": "open-source", **_IO}),
+    "list_series_task": (list_series, {"name": "list-series", **_IO}),
+    "read_series_task": (read_series, {"name": "read-series", **_IO}),
+    "read_windows_task": (read_windows, {"name": "read-windows", **_IO}),
+}
+
+
+def __getattr__(name: str):
+    return lazy_task(__name__, name, _TASKS)

@@ -30,7 +30,7 @@ import math
 import re
 import warnings
 from collections.abc import Iterator, Mapping, Sequence
-from contextlib import contextmanager
+from contextlib import AbstractContextManager, contextmanager, nullcontext
 from dataclasses import dataclass, fields
 from datetime import UTC, datetime
 from pathlib import Path
@@ -50,6 +50,7 @@ from omegascan.tasks.errors import ConfigError, ModelError, SourceError
 from omegascan.tasks.types import EVENT_TYPES, Event, FittedModel
 
 __all__ = [
+    "BOOKKEEPING_COLUMNS",
     "DEFAULT_URL",
     "EVENT_COLUMNS",
     "EVENT_EXTRA_COLUMNS",
@@ -59,9 +60,11 @@ __all__ = [
     "VERSION_TABLE",
     "WriteSummary",
     "connect",
+    "content_snapshot",
     "event_revisions",
     "finish_run",
     "init_db",
+    "load_known_events",
     "load_models",
     "load_watermarks",
     "metadata",
@@ -78,6 +81,7 @@ __all__ = [
     "start_run",
     "table_snapshot",
     "update_watermarks",
+    "write_batch",
     "write_events",
 ]
 
@@ -101,7 +105,7 @@ RUN_STATUSES: tuple[str, ...] = ("running", "completed", "failed")
 
 RunKind = Literal["scan", "backfill", "refit"]
 TriageState = Literal["acknowledged", "dismissed", "explained"]
-Database = Engine | str | URL
+Database = Engine | Connection | str | URL
 
 _CHUNK = 500  # rows per IN (...) list when reading back a batch
 
@@ -541,11 +545,31 @@ def connect(url: str | URL = DEFAULT_URL, *, timeout: float = CONNECT_TIMEOUT_SE
     return engine
 
 
+class _InTransaction:
+    """A connection already in a transaction, standing in for an engine.
+
+    ``begin()`` and ``connect()`` hand the same connection back, so the public
+    writers can run inside one caller's transaction (see :func:`write_batch`).
+    """
+
+    def __init__(self, conn: Connection) -> None:
+        self._conn = conn
+
+    def begin(self) -> AbstractContextManager[Connection]:
+        return nullcontext(self._conn)
+
+    def connect(self) -> AbstractContextManager[Connection]:
+        return nullcontext(self._conn)
+
+
 @contextmanager
 def _engine(db: Database) -> Iterator[Engine]:
     """The caller's engine as is, or one made from a URL and disposed afterwards."""
     if isinstance(db, Engine):
         yield db
+        return
+    if isinstance(db, Connection):
+        yield _InTransaction(db)  # type: ignore[misc]
         return
     engine = connect(db)
     try:
@@ -926,6 +950,49 @@ def read_events(
     return _events_frame(records)
 
 
+def load_known_events(
+    db: Database, series_ids: Sequence[str] | None = None
+) -> dict[str, tuple[Event, ...]]:
+    """Stored events that are not retracted, as Event values grouped by series.
+
+    What a scan hands the engine so earlier effects are removed before new
+    points are tested and provisional events can be revisited.  ``position``
+    is -1 (positions belong to one analysed grid; stored events are placed by
+    time).
+    """
+    frame = read_events(db, series_ids=series_ids)
+    out: dict[str, list[Event]] = {}
+    for row in frame.itertuples(index=False):
+        rec = row._asdict()
+        out.setdefault(rec["series_id"], []).append(
+            Event(
+                series_id=rec["series_id"],
+                position=-1,
+                event_time=rec["event_time"],
+                event_type=rec["event_type"],
+                effect=float(rec["effect"]),
+                effect_pct=_nan_to_none(rec["effect_pct"]),
+                t_stat=float(rec["t_stat"]),
+                se=float(rec["se"]),
+                type_weights=tuple((k, float(v)) for k, v in rec["type_weights"].items()),
+                status=rec["status"],
+                decay=_nan_to_none(rec["decay"]),
+                half_life=rec["half_life"],
+                level=float(rec["level"]),
+                model=rec["model"],
+                window_start=rec["window_start"],
+                window_end=rec["window_end"],
+            )
+        )
+    return {k: tuple(v) for k, v in out.items()}
+
+
+def _nan_to_none(value: Any) -> float | None:
+    return (
+        None if value is None or (isinstance(value, float) and math.isnan(value)) else float(value)
+    )
+
+
 def _events_frame(records: list[dict[str, Any]]) -> pd.DataFrame:
     data: dict[str, Any] = {}
     for name in (*EVENT_COLUMNS, *EVENT_EXTRA_COLUMNS):
@@ -1138,6 +1205,40 @@ def update_watermarks(db: Database, watermarks: Mapping[str, str]) -> int:
     return len(cached)
 
 
+def write_batch(
+    db: Database,
+    run_id: str,
+    *,
+    events: Sequence[Event] = (),
+    retract: Sequence[tuple[str, str]] = (),
+    models: Sequence[FittedModel] = (),
+    watermarks: Mapping[str, str] | None = None,
+    failures: Sequence[tuple[str, str, str]] = (),
+    at: datetime | None = None,
+) -> WriteSummary:
+    """Write everything one batch of series produced, in one transaction.
+
+    Events and retractions (:func:`write_events`), new models with their
+    watermarks (:func:`save_models`), watermarks of series whose model is
+    kept (:func:`update_watermarks`) and failures (:func:`record_failures`)
+    commit together or not at all, so a run killed mid-way leaves every series
+    either before or after its batch: a rerun continues from there and ends
+    with the tables an uninterrupted run leaves.
+    """
+    marks = dict(watermarks or {})
+    modelled = {m.series_id for m in models}
+    with _engine(db) as engine, engine.begin() as conn:
+        summary = write_events(conn, run_id, events, retract=retract, at=at)
+        if models:
+            save_models(conn, models, watermarks=marks, fitted_at=at)
+        rest = {k: v for k, v in marks.items() if k not in modelled}
+        if rest:
+            update_watermarks(conn, rest)
+        if failures:
+            record_failures(conn, run_id, failures, at=at)
+    return summary
+
+
 # --------------------------------------------------------------------------- runs
 
 
@@ -1320,6 +1421,46 @@ def table_snapshot(db: Database) -> dict[str, list[tuple[Any, ...]]]:
         }
 
 
+BOOKKEEPING_COLUMNS = frozenset(
+    {
+        "revision_id",
+        "run_id",
+        "first_run_id",
+        "last_run_id",
+        "first_seen",
+        "last_seen",
+        "changed_at",
+        "fitted_at",
+        "failed_at",
+        "triage_at",
+    }
+)
+"""Columns that record which run wrote a row and when (wall clock), not what."""
+
+
+def content_snapshot(db: Database) -> dict[str, list[tuple[Any, ...]]]:
+    """:func:`table_snapshot` without run bookkeeping, for comparing outcomes.
+
+    Two runs over the same data (a repeated scan, a backfill resumed after a
+    crash against one uninterrupted) must agree on what the tables say; they
+    differ, by design, in run ids and wall-clock times, which are left out
+    here, as is ``scan_runs`` (one row per run by definition).
+    """
+
+    def order(row: tuple[Any, ...]) -> tuple[tuple[bool, str], ...]:
+        return tuple((value is None, str(value)) for value in row)
+
+    out = {}
+    with _engine(db) as engine, engine.connect() as conn:
+        for table in metadata.sorted_tables:
+            if table.name == "scan_runs":
+                continue
+            cols = [c for c in table.columns if c.name not in BOOKKEEPING_COLUMNS]
+            rows = (tuple(r) for r in conn.execute(sa.select(*cols)))
+            out[table.name] = sorted(rows, key=order)
+    return out
+
+
 # --------------------------------------------------------------------------- Prefect
 
 
@@ -1343,6 +1484,7 @@ def _io_task(name: str, fn: Any) -> Any:
 
 
 write_events_task = _io_task("write-events", write_events)
+write_batch_task = _io_task("write-batch", write_batch)
 read_events_task = _io_task("read-events", read_events)
 save_models_task = _io_task("save-models", save_models)
 load_models_task = _io_task("load-models", load_models)

@@ -1,0 +1,65 @@
+-- omegascan's views for BI and on-call tools.
+--
+-- The migrations create these views (infra/migrations/versions/); this file is
+-- the readable copy of the current definitions, and a test checks that it
+-- matches what the migrations build, on SQLite and on PostgreSQL.
+--
+-- Each view starts at a line "-- view: NAME (DIALECTS)".  Where SQLite and
+-- PostgreSQL need different SQL the view appears once per dialect.
+-- Timestamps are UTC (SQLite keeps them as 'YYYY-MM-DD HH:MM:SS.ffffff' text).
+
+
+-- view: open_level_shifts (sqlite, postgresql)
+-- The level shift each series currently stands at: its latest confirmed LS
+-- that nobody dismissed (one row per series; 'explained' shifts stay open).
+CREATE VIEW open_level_shifts AS
+SELECT series_id, event_time, event_ts, effect, effect_pct, t_stat, level, model,
+       triage_state, triage_reason, first_seen, last_seen
+FROM (
+    SELECT e.*,
+           ROW_NUMBER() OVER (
+               PARTITION BY e.series_id
+               ORDER BY CASE WHEN e.event_ts IS NULL THEN 1 ELSE 0 END,
+                        e.event_ts DESC, e.event_time DESC
+           ) AS recency
+    FROM series_events e
+    WHERE e.event_type = 'LS'
+      AND e.status = 'confirmed'
+      AND (e.triage_state IS NULL OR e.triage_state <> 'dismissed')
+) ranked
+WHERE recency = 1;
+
+
+-- view: daily_event_counts (sqlite)
+-- Events per UTC day and type (retracted events and events without a
+-- date-time left out).
+CREATE VIEW daily_event_counts AS
+SELECT date(event_ts) AS day,
+       event_type,
+       COUNT(*) AS n_events,
+       SUM(CASE WHEN status = 'confirmed' THEN 1 ELSE 0 END) AS n_confirmed,
+       SUM(CASE WHEN status = 'provisional' THEN 1 ELSE 0 END) AS n_provisional
+FROM series_events
+WHERE status <> 'retracted' AND event_ts IS NOT NULL
+GROUP BY date(event_ts), event_type;
+
+
+-- view: daily_event_counts (postgresql)
+CREATE VIEW daily_event_counts AS
+SELECT CAST(event_ts AT TIME ZONE 'UTC' AS DATE) AS day,
+       event_type,
+       COUNT(*) AS n_events,
+       SUM(CASE WHEN status = 'confirmed' THEN 1 ELSE 0 END) AS n_confirmed,
+       SUM(CASE WHEN status = 'provisional' THEN 1 ELSE 0 END) AS n_provisional
+FROM series_events
+WHERE status <> 'retracted' AND event_ts IS NOT NULL
+GROUP BY CAST(event_ts AT TIME ZONE 'UTC' AS DATE), event_type;
+
+
+-- view: events_needing_triage (sqlite, postgresql)
+-- Confirmed events nobody has looked at yet.
+CREATE VIEW events_needing_triage AS
+SELECT series_id, event_time, event_ts, event_type, effect, effect_pct, t_stat,
+       level, model, first_seen, last_seen, last_run_id
+FROM series_events
+WHERE status = 'confirmed' AND triage_state IS NULL;

@@ -1,0 +1,1 @@
+"""omegascan test suite."""

@@ -1,0 +1,1 @@
+"""Benchmarks: simulated data, naive baselines and the Monte Carlo study."""

@@ -1,0 +1,81 @@
+"""Database fixtures shared by the tests.
+
+``sqlite_url``
+    A SQLite file in the test's ``tmp_path`` (created on first connection).
+``pg_url``
+    A fresh, empty schema on the real PostgreSQL server (default
+    ``postgresql+psycopg://postgres@127.0.0.1:5432/test``; set
+    ``OMEGASCAN_TEST_PG_URL`` to use another), reached through ``search_path``
+    and dropped after the test.  When the server cannot be reached the test is
+    skipped with the reason, except under ``CI=true``, where it fails: CI must
+    run the PostgreSQL tests.
+"""
+
+from __future__ import annotations
+
+import os
+import uuid
+from collections.abc import Iterator
+from pathlib import Path
+
+import pytest
+import sqlalchemy as sa
+from sqlalchemy.pool import NullPool
+
+PG_BASE_URL = os.environ.get(
+    "OMEGASCAN_TEST_PG_URL", "postgresql+psycopg://postgres@127.0.0.1:5432/test"
+)
+
+
+@pytest.fixture
+def sqlite_url(tmp_path: Path) -> str:
+    """URL of a SQLite database file in ``tmp_path``."""
+    return f"sqlite:///{tmp_path / 'omegascan.db'}"
+
+
+def _absent(reason: str) -> None:
+    if os.environ.get("CI", "").strip().lower() == "true":
+        pytest.fail(f"{reason} (CI=true: the PostgreSQL tests must run here)")
+    pytest.skip(reason)
+
+
+@pytest.fixture(scope="session")
+def _pg_server() -> Iterator[sa.Engine | str]:
+    """An engine on the PostgreSQL server, or the reason there is none."""
+    try:
+        import psycopg  # noqa: F401
+    except ImportError:
+        yield "psycopg (PostgreSQL driver) is not installed; pip install 'omegascan[dev]'"
+        return
+    url = sa.make_url(PG_BASE_URL)
+    engine = sa.create_engine(url, poolclass=NullPool, connect_args={"connect_timeout": 3})
+    try:
+        with engine.connect() as conn:
+            conn.execute(sa.text("SELECT 1"))
+    except sa.exc.OperationalError as exc:
+        engine.dispose()
+        first = str(exc.orig).splitlines()[0] if exc.orig else str(exc)
+        yield (
+            f"PostgreSQL is not reachable at {url.render_as_string(hide_password=True)} "
+            f"({first}); start it or set OMEGASCAN_TEST_PG_URL"
+        )
+        return
+    yield engine
+    engine.dispose()
+
+
+@pytest.fixture
+def pg_url(_pg_server: sa.Engine | str) -> Iterator[str]:
+    """URL of a fresh schema on the PostgreSQL server, dropped afterwards."""
+    if isinstance(_pg_server, str):
+        _absent(_pg_server)
+    assert isinstance(_pg_server, sa.Engine)
+    schema = f"omegascan_test_{uuid.uuid4().hex[:12]}"
+    with _pg_server.begin() as conn:
+        conn.execute(sa.text(f'CREATE SCHEMA "{schema}"'))
+    url = _pg_server.url.update_query_dict({"options": f"-csearch_path={schema}"})
+    try:
+        yield url.render_as_string(hide_password=False)
+    finally:
+        with _pg_server.begin() as conn:
+            conn.execute(sa.text(f'DROP SCHEMA IF EXISTS "{schema}" CASCADE'))
