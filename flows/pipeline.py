@@ -1,0 +1,309 @@
+"""What the scan, backfill and refit flows share: planning, fan-out, writing.
+
+A run is: plan a :class:`~omegascan.tasks.batch.SeriesWork` per series from
+the database's state, cut the work into batches of a few seconds each, submit
+the batches to the flow's task runner with a bounded number in flight (memory
+stays bounded however large the fleet), and write each finished batch in one
+transaction.  A batch that fails after its retries turns into failures of its
+series; it never fails the run.
+"""
+
+from __future__ import annotations
+
+import time
+import uuid
+from collections.abc import Callable, Mapping, Sequence
+from contextvars import ContextVar
+from dataclasses import dataclass, field
+
+import pandas as pd
+
+from omegascan.tasks import persist
+from omegascan.tasks.batch import (
+    AnalysisOptions,
+    BatchOutcome,
+    SeriesOutcome,
+    SeriesWork,
+    plan_batches,
+)
+from omegascan.tasks.fetch import SourceSpec
+from omegascan.tasks.types import EVENT_TYPES, Event, FittedModel
+
+Progress = Callable[[int, int, str], None]
+progress_hook: ContextVar[Progress | None] = ContextVar("omegascan_progress", default=None)
+"""Set by the CLI to draw a progress bar: called with (done, total, what)."""
+
+
+@dataclass(frozen=True, slots=True)
+class RunSummary:
+    """What a run did, returned by every flow."""
+
+    run_id: str
+    kind: str
+    series_total: int
+    series_ok: int
+    series_failed: int
+    deferred: int
+    events_new: int
+    events_changed: int
+    events_retracted: int
+    by_type: tuple[tuple[str, int], ...]
+    cold: int
+    warm: int
+    batches: int
+    seconds: float
+    failures: tuple[tuple[str, str, str], ...] = ()
+    top_events: tuple[Event, ...] = ()
+    timings: tuple[tuple[str, float], ...] = field(default=())
+
+
+def current_run_id() -> str:
+    """The Prefect flow-run id when inside a flow run, else a fresh UUID."""
+    try:
+        from prefect.runtime import flow_run
+
+        run = flow_run.id
+    except Exception:  # outside a flow run
+        run = None
+    return str(run) if run else str(uuid.uuid4())
+
+
+def make_task_runner(runner: str, *, workers: int, dask_address: str | None = None):
+    """The Prefect task runner for ``threads``, ``processes`` or ``dask``.
+
+    Threads suit I/O-bound sources (the numerics hold the GIL); processes use
+    every core of one machine; ``dask`` sends batches to a Dask cluster at
+    ``dask_address`` (a local cluster of ``workers`` processes when None).
+    """
+    if runner == "threads":
+        from prefect.task_runners import ThreadPoolTaskRunner
+
+        return ThreadPoolTaskRunner(max_workers=workers)
+    if runner == "processes":
+        from prefect.task_runners import ProcessPoolTaskRunner
+
+        return ProcessPoolTaskRunner(max_workers=workers)
+    if runner == "dask":
+        from prefect_dask import DaskTaskRunner
+
+        if dask_address:
+            return DaskTaskRunner(address=dask_address)
+        return DaskTaskRunner(
+            cluster_kwargs={"n_workers": workers, "threads_per_worker": 1, "processes": True}
+        )
+    raise ValueError(f"unknown runner {runner!r}; use threads, processes or dask")
+
+
+def plan_works(
+    series_ids: Sequence[str],
+    *,
+    models: Mapping[str, FittedModel],
+    watermarks: Mapping[str, str],
+    known: Mapping[str, tuple[Event, ...]],
+    options: AnalysisOptions,
+    time_kind: str,
+    end: object = None,
+    cold_start: object = None,
+    refit: bool = False,
+) -> list[SeriesWork]:
+    """One SeriesWork per series: warm after its watermark, or cold.
+
+    Parameters
+    ----------
+    end : timestamp or number, optional
+        Data at or after ``end`` is not read (a backfill's chunk end).
+    cold_start : timestamp or number, optional
+        Where a cold read starts (a backfill's warm-up); None reads all history.
+    refit : bool
+        Cold analysis of every series, whatever its cache.
+    """
+    works = []
+    end_bound = _bound(end, time_kind)
+    for sid in series_ids:
+        model = models.get(sid)
+        mark = watermarks.get(sid)
+        if model is not None and mark is not None and not refit:
+            mark_bound = _bound(mark, time_kind)
+            if (
+                end_bound is not None
+                and mark_bound is not None
+                and mark_bound >= _before(end_bound)
+            ):
+                continue  # nothing new before the end
+            step = pd.Timedelta(seconds=model.step_seconds or 1.0)
+            if time_kind == "numeric":
+                start = float(mark) - (options.context_points - 1) * (model.step_seconds or 1.0)
+            else:
+                start = mark_bound - (options.context_points - 1) * step
+            works.append(SeriesWork(sid, model, mark, known.get(sid, ()), start, end_bound))
+        else:
+            start = _bound(cold_start, time_kind)
+            works.append(
+                SeriesWork(sid, model, mark, known.get(sid, ()), start, end_bound, refit=True)
+            )
+    return works
+
+
+def execute(
+    spec: SourceSpec,
+    db: str,
+    run_id: str,
+    works: Sequence[SeriesWork],
+    options: AnalysisOptions,
+    *,
+    workers: int,
+    batch_seconds: float = 4.0,
+    logger=None,
+) -> tuple[list[SeriesOutcome], dict[str, float], int]:
+    """Submit the batches, write each as it finishes; return outcomes and timings.
+
+    At most ``2 * workers`` batches are in flight, so the data held in memory
+    is a few batches' worth.  Outcomes keep only what the summary needs.
+    """
+    from prefect.futures import as_completed
+
+    from omegascan.tasks.batch import run_batch_task
+
+    batches = plan_batches(works, target_seconds=batch_seconds)
+    hook = progress_hook.get()
+    total = len(works)
+    done = 0
+    results: list[SeriesOutcome] = []
+    timings = {"read": 0.0, "analyse": 0.0, "write": 0.0}
+    pending: dict = {}
+    queue = list(batches)
+    limit = max(2, 2 * workers)
+
+    def finish(future, batch: list[SeriesWork]) -> None:
+        nonlocal done
+        try:
+            outcome: BatchOutcome = future.result()
+            outs = list(outcome.outcomes)
+            timings["read"] += outcome.read_seconds
+            timings["analyse"] += outcome.analyse_seconds
+        except Exception as exc:  # the batch failed after its retries
+            message = f"{type(exc).__name__}: {exc}"
+            if logger is not None:
+                logger.error("batch of %d series failed: %s", len(batch), message)
+            outs = [SeriesOutcome(w.series_id, "failed", failure=("batch", message)) for w in batch]
+        t0 = time.perf_counter()
+        write_outcomes(db, run_id, outs)
+        timings["write"] += time.perf_counter() - t0
+        results.extend(_slim(o) for o in outs)
+        done += len(batch)
+        if hook is not None:
+            hook(done, total, "series")
+
+    while queue or pending:
+        while queue and len(pending) < limit:
+            batch = queue.pop(0)
+            pending[run_batch_task.submit(spec, batch, options)] = batch
+        future = next(as_completed(list(pending)))
+        finish(future, pending.pop(future))
+    return results, timings, len(batches)
+
+
+def write_outcomes(db: str, run_id: str, outcomes: Sequence[SeriesOutcome]):
+    """Write one batch's outcomes in one transaction (events, models, watermarks, failures)."""
+    events = [e for o in outcomes for e in o.events]
+    retract = [(o.series_id, t) for o in outcomes for t in o.retract]
+    models = [o.model for o in outcomes if o.model is not None]
+    marks = {o.series_id: o.watermark for o in outcomes if o.watermark is not None}
+    failures = [(o.series_id, *o.failure) for o in outcomes if o.failure is not None]
+    return persist.write_batch(
+        db,
+        run_id,
+        events=events,
+        retract=retract,
+        models=models,
+        watermarks=marks,
+        failures=failures,
+    )
+
+
+def summarize(
+    run_id: str,
+    kind: str,
+    outcomes: Sequence[SeriesOutcome],
+    before: Mapping[tuple[str, str], tuple[str, str]],
+    batches: int,
+    seconds: float,
+    timings: Mapping[str, float],
+) -> RunSummary:
+    """Counts for the run record and the run's summary.
+
+    ``before`` maps stored (series_id, event_time) to (type, status) as they
+    were before the run, so new, changed and retracted events are told apart.
+    """
+    new = changed = retracted = 0
+    by_type = dict.fromkeys(EVENT_TYPES, 0)
+    tops: list[Event] = []
+    for o in outcomes:
+        for e in o.events:
+            old = before.get((o.series_id, e.event_time))
+            if old is None:
+                new += 1
+                by_type[e.event_type] += 1
+            elif old != (e.event_type, e.status):
+                changed += 1
+            tops.append(e)
+        retracted += sum(1 for t in o.retract if (o.series_id, t) in before)
+    tops.sort(key=lambda e: -abs(e.t_stat))
+    failures = tuple((o.series_id, *o.failure) for o in outcomes if o.failure is not None)
+    return RunSummary(
+        run_id=run_id,
+        kind=kind,
+        series_total=len(outcomes),
+        series_ok=sum(o.mode in ("cold", "warm", "unchanged") for o in outcomes),
+        series_failed=len(failures),
+        deferred=sum(o.mode == "deferred" for o in outcomes),
+        events_new=new,
+        events_changed=changed,
+        events_retracted=retracted,
+        by_type=tuple(by_type.items()),
+        cold=sum(o.mode == "cold" for o in outcomes),
+        warm=sum(o.mode == "warm" for o in outcomes),
+        batches=batches,
+        seconds=seconds,
+        failures=failures,
+        top_events=tuple(tops[:10]),
+        timings=tuple(timings.items()),
+    )
+
+
+def stored_state(db: str, series_ids: Sequence[str] | None = None):
+    """Models, watermarks and known events of the series, and a (type, status) index."""
+    models = persist.load_models(db, series_ids)
+    marks = persist.load_watermarks(db, series_ids)
+    known = persist.load_known_events(db, series_ids)
+    index = {
+        (sid, e.event_time): (e.event_type, e.status) for sid, evs in known.items() for e in evs
+    }
+    return models, marks, known, index
+
+
+def _slim(outcome: SeriesOutcome) -> SeriesOutcome:
+    """Drop the model from a kept outcome (the summary needs only counts and events)."""
+    if outcome.model is None:
+        return outcome
+    from dataclasses import replace
+
+    return replace(outcome, model=None)
+
+
+def _bound(value: object, time_kind: str):
+    if value is None:
+        return None
+    if time_kind == "numeric":
+        return float(value)  # type: ignore[arg-type]
+    stamp = pd.Timestamp(value)  # type: ignore[arg-type]
+    if stamp.tz is not None:  # compared in UTC; the fetch step maps zones back
+        stamp = stamp.tz_convert("UTC").tz_localize(None)
+    return stamp
+
+
+def _before(bound):
+    """The largest value strictly before ``bound`` that a watermark can take."""
+    if isinstance(bound, pd.Timestamp):
+        return bound - pd.Timedelta(1, unit="ns")
+    return bound - 1e-9

@@ -1,0 +1,263 @@
+"""The fleet flows: hourly scan, historical backfill, refit.
+
+All three plan per-series work from the database's state and hand it to
+:func:`omegascan.flows.pipeline.execute`; they differ in what they read:
+
+- ``scan``: series with a cached model are tested on the points after their
+  watermark; series without one are fitted on the history they have (at least
+  ``min_points`` points) and every event in it is reported;
+- ``backfill``: a historical span cut into chunks, processed in order; each
+  chunk is a scan that stops at the chunk's end, so a rerun after a crash
+  continues from each series' watermark and ends with the tables an
+  uninterrupted run leaves;
+- ``refit``: models of all or some series estimated again on all their history.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Sequence
+
+import pandas as pd
+from prefect import flow, get_run_logger
+
+from omegascan.flows.pipeline import (
+    RunSummary,
+    current_run_id,
+    execute,
+    plan_works,
+    stored_state,
+    summarize,
+)
+from omegascan.flows.settings import DEFAULT_DB_URL, RunOptions
+from omegascan.tasks import persist
+from omegascan.tasks.errors import ConfigError
+from omegascan.tasks.fetch import ColumnMap, list_series, open_source
+
+
+def _columns(columns: dict[str, str] | None) -> ColumnMap | None:
+    return ColumnMap.coerce(columns) if columns else None
+
+
+def _run(
+    kind: str,
+    source: str,
+    db: str,
+    options: RunOptions,
+    *,
+    columns: dict[str, str] | None,
+    series: Sequence[str] | None,
+    chunks: Sequence[tuple[object, object]] = ((None, None),),
+    cold_start: object = None,
+    report_from: str | None = None,
+    refit: bool = False,
+) -> RunSummary:
+    logger = get_run_logger()
+    t0 = time.perf_counter()
+    run_id = current_run_id()
+    persist.migrate(db)
+    spec = open_source(source, columns=_columns(columns))
+    ids = list(series) if series else list_series(spec)
+    span = (chunks[0][0], chunks[-1][1])
+    persist.start_run(db, run_id, kind, _span_text(span[0]), _span_text(span[1]))
+    analysis = options.analysis(report_from=report_from)
+    outcomes_all = []
+    timings: dict[str, float] = {}
+    batches = 0
+    before: dict = {}
+    try:
+        for k, (_, chunk_end) in enumerate(chunks, start=1):
+            models, marks, known, index = stored_state(db, ids)
+            if k == 1:
+                before = index
+            works = plan_works(
+                ids,
+                models=models,
+                watermarks=marks,
+                known=known,
+                options=analysis,
+                time_kind=spec.time_kind,
+                end=chunk_end,
+                cold_start=cold_start,
+                refit=refit and k == 1,
+            )
+            logger.info(
+                "%s chunk %d/%d: %d of %d series have work",
+                kind,
+                k,
+                len(chunks),
+                len(works),
+                len(ids),
+            )
+            outcomes, chunk_timings, n_batches = execute(
+                spec,
+                db,
+                run_id,
+                works,
+                analysis,
+                workers=options.workers,
+                batch_seconds=options.batch_seconds,
+                logger=logger,
+            )
+            outcomes_all.extend(outcomes)
+            batches += n_batches
+            for key, value in chunk_timings.items():
+                timings[key] = timings.get(key, 0.0) + value
+    except BaseException as exc:
+        persist.finish_run(db, run_id, "failed", message=f"{type(exc).__name__}: {exc}")
+        raise
+    summary = summarize(
+        run_id,
+        kind,
+        _last_per_series(outcomes_all),
+        before,
+        batches,
+        time.perf_counter() - t0,
+        timings,
+    )
+    persist.finish_run(
+        db,
+        run_id,
+        "completed",
+        series_total=len(ids),
+        series_ok=summary.series_ok,
+        series_failed=summary.series_failed,
+        events_new=summary.events_new,
+        events_changed=summary.events_changed,
+        events_retracted=summary.events_retracted,
+    )
+    logger.info(
+        "%s %s: %d series (%d cold, %d warm, %d failed), %d new events, %d changed, %d retracted",
+        kind,
+        run_id,
+        len(ids),
+        summary.cold,
+        summary.warm,
+        summary.series_failed,
+        summary.events_new,
+        summary.events_changed,
+        summary.events_retracted,
+    )
+    return summary
+
+
+@flow(name="omegascan-scan", log_prints=False)
+def scan_flow(
+    source: str,
+    db: str = DEFAULT_DB_URL,
+    options: RunOptions = RunOptions(),  # noqa: B008 - pydantic model, immutable
+    columns: dict[str, str] | None = None,
+    series: list[str] | None = None,
+    until: str | None = None,
+) -> RunSummary:
+    """Hourly fleet scan: new points of every series against its cached model.
+
+    ``until`` stops reading at that time (exclusive); default all data.
+    """
+    return _run(
+        "scan", source, db, options, columns=columns, series=series, chunks=((None, until),)
+    )
+
+
+@flow(name="omegascan-backfill", log_prints=False)
+def backfill_flow(
+    source: str,
+    start: str,
+    end: str,
+    db: str = DEFAULT_DB_URL,
+    chunk: str = "7D",
+    warmup: str = "7D",
+    options: RunOptions = RunOptions(),  # noqa: B008
+    columns: dict[str, str] | None = None,
+    series: list[str] | None = None,
+) -> RunSummary:
+    """Analyse the span ``start <= t < end`` in chunks of ``chunk``, resumably.
+
+    Series without a model are fitted on the ``warmup`` before ``start`` plus
+    the first chunk; events are reported from ``start`` on.  Numeric sources
+    take numbers for start, end, chunk and warmup.
+    """
+    chunks, cold_start = split_span(start, end, chunk, warmup)
+    return _run(
+        "backfill",
+        source,
+        db,
+        options,
+        columns=columns,
+        series=series,
+        chunks=chunks,
+        cold_start=cold_start,
+        report_from=str(start),
+    )
+
+
+@flow(name="omegascan-refit", log_prints=False)
+def refit_flow(
+    source: str,
+    db: str = DEFAULT_DB_URL,
+    options: RunOptions = RunOptions(),  # noqa: B008
+    columns: dict[str, str] | None = None,
+    series: list[str] | None = None,
+) -> RunSummary:
+    """Estimate the models of all (or the given) series again on all their history."""
+    return _run("refit", source, db, options, columns=columns, series=series, refit=True)
+
+
+def split_span(start: str, end: str, chunk: str, warmup: str):
+    """Chunks ``[(s0, e0), ...]`` covering ``start <= t < end``, and the warm-up start."""
+    try:
+        a, b = float(start), float(end)
+        size, back = float(chunk), float(warmup)
+        numeric = True
+    except ValueError:
+        numeric = False
+    if numeric:
+        if not (b > a and size > 0 and back >= 0):
+            raise ConfigError("backfill needs start < end, a positive chunk and warm-up >= 0")
+        edges = [a]
+        while edges[-1] + size < b:
+            edges.append(edges[-1] + size)
+        edges.append(b)
+        return [(edges[i], edges[i + 1]) for i in range(len(edges) - 1)], a - back
+    try:
+        ta, tb = pd.Timestamp(start), pd.Timestamp(end)
+        size_td, back_td = pd.Timedelta(chunk), pd.Timedelta(warmup)
+    except ValueError as exc:
+        raise ConfigError(
+            f"backfill span {start!r}..{end!r} with chunk {chunk!r} and warm-up {warmup!r} "
+            f"is not understood ({exc}); use ISO times and durations such as 7D or 6h"
+        ) from None
+    if not (tb > ta and size_td > pd.Timedelta(0) and back_td >= pd.Timedelta(0)):
+        raise ConfigError("backfill needs start < end, a positive chunk and warm-up >= 0")
+    edges = [ta]
+    while edges[-1] + size_td < tb:
+        edges.append(edges[-1] + size_td)
+    edges.append(tb)
+    chunks = [(edges[i].isoformat(), edges[i + 1].isoformat()) for i in range(len(edges) - 1)]
+    return chunks, (ta - back_td).isoformat()
+
+
+def _span_text(value: object) -> str | None:
+    if value is None:
+        return None
+    try:
+        float(value)  # type: ignore[arg-type]
+        return None  # numeric spans have no date-time to record
+    except (TypeError, ValueError):
+        return str(value)
+
+
+def _last_per_series(outcomes):
+    """One outcome per series: its events over all chunks, its last mode."""
+    from dataclasses import replace
+
+    merged: dict[str, object] = {}
+    for o in outcomes:
+        prev = merged.get(o.series_id)
+        if prev is None:
+            merged[o.series_id] = o
+            continue
+        events = {e.event_time: e for e in (*prev.events, *o.events)}  # type: ignore[attr-defined]
+        retract = tuple(t for t in (*prev.retract, *o.retract) if t not in events)  # type: ignore[attr-defined]
+        merged[o.series_id] = replace(o, events=tuple(events.values()), retract=retract)
+    return list(merged.values())
