@@ -1,0 +1,266 @@
+"""The fleet flows end to end: scan, backfill, refit, idempotency, crash and resume."""
+
+from __future__ import annotations
+
+import os
+import signal
+import subprocess
+import sys
+import textwrap
+import time
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+from omegascan.flows.pipeline import plan_works
+from omegascan.flows.scan import backfill_flow, refit_flow, scan_flow, split_span
+from omegascan.flows.settings import RunOptions
+from omegascan.tasks import persist
+from omegascan.tasks.batch import AnalysisOptions, plan_batches
+from omegascan.tasks.errors import ConfigError
+from tests.flows.fleet import make_fleet, write_source
+
+OPTIONS = RunOptions(workers=2)
+
+
+def _events(db: str) -> pd.DataFrame:
+    return persist.read_events(db).sort_values(["series_id", "event_time"]).reset_index(drop=True)
+
+
+def _matches(events: pd.DataFrame, truth: pd.DataFrame, tolerance: str = "2h") -> int:
+    hits = 0
+    for row in truth.itertuples():
+        mine = events[events.series_id == row.series_id]
+        times = pd.to_datetime(mine.event_time)
+        near = mine[(times - row.event_time).abs() <= pd.Timedelta(tolerance)]
+        hits += int((near.event_type == row.event_type).any())
+    return hits
+
+
+# -- pure planning -------------------------------------------------------------------
+
+
+def test_split_span_into_chunks():
+    chunks, warm = split_span("2026-06-01", "2026-06-20", "7D", "2D")
+    assert chunks == [
+        ("2026-06-01T00:00:00", "2026-06-08T00:00:00"),
+        ("2026-06-08T00:00:00", "2026-06-15T00:00:00"),
+        ("2026-06-15T00:00:00", "2026-06-20T00:00:00"),
+    ]
+    assert warm == "2026-05-30T00:00:00"
+    assert split_span("0", "250", "100", "50") == ([(0, 100), (100, 200), (200, 250)], -50)
+    with pytest.raises(ConfigError, match="start < end"):
+        split_span("2026-06-10", "2026-06-01", "7D", "1D")
+    with pytest.raises(ConfigError, match="not understood"):
+        split_span("2026-06-01", "2026-06-10", "a week", "1D")
+
+
+def test_plan_batches_sizes_by_cost():
+    from omegascan.tasks.batch import SeriesWork
+    from omegascan.tasks.types import FittedModel
+
+    model = FittedModel(
+        "x", (1, 0, 0), (0, 0, 0, 0), "c", (("sigma2", 1.0),), 1.0, 100, "mle", True
+    )
+    cold = [SeriesWork(f"c{i}") for i in range(20)]
+    warm = [SeriesWork(f"w{i}", model, "2026-01-01") for i in range(450)]
+    batches = plan_batches(cold + warm, target_seconds=4.0)
+    sizes = [len(b) for b in batches]
+    assert sizes == [8, 8, 4, 200, 200, 50]
+
+
+def test_plan_works_warm_after_watermark_and_skip_when_done():
+    from omegascan.tasks.types import FittedModel
+
+    model = FittedModel(
+        "a",
+        (1, 0, 0),
+        (0, 0, 0, 0),
+        "c",
+        (("sigma2", 1.0),),
+        1.0,
+        100,
+        "mle",
+        True,
+        step_seconds=3600,
+    )
+    works = plan_works(
+        ["a", "b"],
+        models={"a": model},
+        watermarks={"a": "2026-06-10T00:00:00"},
+        known={},
+        options=AnalysisOptions(context_points=25),
+        time_kind="datetime",
+    )
+    assert [w.series_id for w in works] == ["a", "b"]
+    assert works[0].start == pd.Timestamp("2026-06-09T00:00:00") and not works[0].refit
+    assert works[1].model is None and works[1].refit
+    done = plan_works(
+        ["a"],
+        models={"a": model},
+        watermarks={"a": "2026-06-10T00:00:00"},
+        known={},
+        options=AnalysisOptions(),
+        time_kind="datetime",
+        end="2026-06-10T00:30:00",
+    )
+    assert [w.series_id for w in done] == ["a"]  # the 00:00 point is tested; 00:30 may hold more
+    past = plan_works(
+        ["a"],
+        models={"a": model},
+        watermarks={"a": "2026-06-10T00:00:00"},
+        known={},
+        options=AnalysisOptions(),
+        time_kind="datetime",
+        end="2026-06-10T00:00:00",
+    )
+    assert past == []
+
+
+# -- flows -----------------------------------------------------------------------------
+
+
+@pytest.fixture
+def fleet(tmp_path: Path):
+    data, truth = make_fleet(9)
+    return data, truth, tmp_path / "source"
+
+
+def _scan_twice(db: str, data, source: Path) -> None:
+    write_source(data, source, until="2026-06-19")
+    first = scan_flow(str(source), db, OPTIONS)
+    assert first.cold == first.series_total - first.series_failed - first.deferred
+    write_source(data, source)  # two more days arrive
+    second = scan_flow(str(source), db, OPTIONS)
+    assert second.warm >= 1
+    snap = persist.content_snapshot(db)
+    third = scan_flow(str(source), db, OPTIONS)  # nothing new: nothing changes
+    assert third.cold == third.warm == 0
+    assert third.events_new == third.events_changed == third.events_retracted == 0
+    assert persist.content_snapshot(db) == snap
+
+
+def test_scan_finds_events_and_a_repeated_scan_changes_nothing(prefect_server, fleet, tmp_path):
+    data, truth, source = fleet
+    db = f"sqlite:///{tmp_path / 'scan.db'}"
+    _scan_twice(db, data, source)
+    events = _events(db)
+    assert _matches(events, truth) >= len(truth) - 1
+    # The constant series landed in series_failures, not in a failed run.
+    with persist.connect(db).connect() as conn:
+        failures = conn.execute(persist.series_failures.select()).fetchall()
+        runs = conn.execute(persist.scan_runs.select()).fetchall()
+    assert {f.series_id for f in failures} == {"shelf-x/stuck"}
+    assert "constant" in failures[0].message
+    assert all(r.status == "completed" for r in runs) and len(runs) == 3
+
+
+@pytest.mark.postgres
+def test_repeated_scan_on_postgresql(prefect_server, fleet, pg_url):
+    data, truth, source = fleet
+    _scan_twice(pg_url, data, source)
+    assert _matches(_events(pg_url), truth) >= len(truth) - 1
+
+
+def test_overlapping_backfills_do_not_duplicate_or_lose_events(prefect_server, fleet, tmp_path):
+    data, truth, source = fleet
+    write_source(data, source)
+    db = f"sqlite:///{tmp_path / 'overlap.db'}"
+
+    def both() -> None:
+        backfill_flow(
+            str(source), "2026-06-05", "2026-06-15", db, chunk="5D", warmup="4D", options=OPTIONS
+        )
+        # Overlaps the first by five days.
+        backfill_flow(
+            str(source), "2026-06-10", "2026-06-22", db, chunk="5D", warmup="4D", options=OPTIONS
+        )
+
+    both()
+    first = persist.content_snapshot(db)
+    events = _events(db)
+    assert not events.duplicated(["series_id", "event_time"]).any()
+    assert (pd.to_datetime(events.event_time) >= pd.Timestamp("2026-06-05")).all()
+    inside = truth[truth.event_time >= pd.Timestamp("2026-06-05")]
+    assert _matches(events, inside) >= len(inside) - 1
+    both()  # the same two overlapping backfills again: nothing changes
+    assert persist.content_snapshot(db) == first
+    whole = backfill_flow(
+        str(source), "2026-06-05", "2026-06-22", db, chunk="5D", warmup="4D", options=OPTIONS
+    )
+    assert whole.events_new == whole.events_changed == whole.events_retracted == 0
+    assert persist.content_snapshot(db) == first
+
+
+def test_refit_reestimates_and_keeps_events(prefect_server, fleet, tmp_path):
+    data, truth, source = fleet
+    write_source(data, source)
+    db = f"sqlite:///{tmp_path / 'refit.db'}"
+    scan_flow(str(source), db, OPTIONS)
+    before = persist.load_models(db)
+    summary = refit_flow(str(source), db, OPTIONS, series=["shelf-0/disk-0", "shelf-0/disk-1"])
+    assert summary.cold == 2 and summary.series_total == 2
+    after = persist.load_models(db)
+    assert after["shelf-0/disk-0"].order == before["shelf-0/disk-0"].order
+    assert after.keys() == before.keys()
+    assert _matches(_events(db), truth) >= len(truth) - 1
+
+
+_BACKFILL = textwrap.dedent(
+    """
+    import sys
+    from omegascan.flows.scan import backfill_flow
+    from omegascan.flows.settings import RunOptions
+    backfill_flow(sys.argv[1], "2026-06-03", "2026-06-22", sys.argv[2], chunk="1D",
+                  warmup="2D", options=RunOptions(workers=1, batch_seconds=0.5))
+    """
+)
+
+
+def _backfill_process(source: Path, db: str, home: Path) -> subprocess.Popen:
+    env = {
+        **os.environ,
+        "PREFECT_HOME": str(home),
+        "PREFECT_SERVER_ANALYTICS_ENABLED": "false",
+        "PREFECT_LOGGING_LEVEL": "WARNING",
+        "PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS": "180",
+    }
+    env.pop("PREFECT_API_URL", None)
+    return subprocess.Popen(
+        [sys.executable, "-c", _BACKFILL, str(source), db],
+        env=env,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.STDOUT,
+        start_new_session=True,
+    )
+
+
+def test_backfill_killed_midway_then_rerun_matches_an_uninterrupted_run(fleet, tmp_path):
+    data, _, source = fleet
+    write_source(data, source)
+    home = tmp_path / "prefect-home"
+    whole = f"sqlite:///{tmp_path / 'whole.db'}"
+    crashed = f"sqlite:///{tmp_path / 'crashed.db'}"
+    assert _backfill_process(source, whole, home).wait(timeout=900) == 0
+    proc = _backfill_process(source, crashed, home)
+    # Kill it (SIGKILL: no clean-up of any kind) once a few batches are written.
+    deadline = time.monotonic() + 600
+    while time.monotonic() < deadline and proc.poll() is None:
+        try:
+            with persist.connect(crashed).connect() as conn:
+                written = conn.execute(persist.series_models.select()).fetchall()
+        except Exception:  # not created yet
+            written = []
+        if len(written) >= 4 and any(r.watermark and r.watermark > "2026-06-06" for r in written):
+            break
+        time.sleep(0.2)
+    assert proc.poll() is None, "the backfill finished before it could be killed"
+    os.killpg(proc.pid, signal.SIGKILL)
+    proc.wait(timeout=60)
+    with persist.connect(crashed).connect() as conn:
+        status = [r.status for r in conn.execute(persist.scan_runs.select())]
+    assert status == ["running"]  # it really died mid-way
+    assert persist.content_snapshot(crashed) != persist.content_snapshot(whole)
+    assert _backfill_process(source, crashed, home).wait(timeout=900) == 0
+    assert persist.content_snapshot(crashed) == persist.content_snapshot(whole)
