@@ -77,7 +77,7 @@ def test_natural_periods_follow_the_spacing():
         (range(30), [4.2] * 30, ConstantSeriesError, "every observed value equals 4.2"),
         (["2026-01-01"] * 29 + ["yesterday"], np.arange(30.0), TimestampError, "cannot be parsed"),
         ([5] * 30, np.arange(30.0), TimestampError, "two distinct timestamps"),
-        ([0, 1, 2, 10 ** 7, *list(range(3, 29))], np.arange(30.0), TimestampError, "too irregular"),
+        ([0, 1, 2, 10**7, *list(range(3, 29))], np.arange(30.0), TimestampError, "too irregular"),
     ],
 )
 def test_bad_input_names_the_series_and_the_problem(timestamps, values, error, match):

@@ -237,9 +237,7 @@ def test_screen_new_points_with_a_cached_model():
     new[30] += 8.0
     context = regularize("m", stamps[-300:].append(fresh), np.r_[x[-300:], new])
     warm = screen_new_points(cold.model, context, 60, known=cold.events)
-    assert [(e.event_time, e.event_type) for e in warm.events] == [
-        (fresh[30].isoformat(), "AO")
-    ]
+    assert [(e.event_time, e.event_type) for e in warm.events] == [(fresh[30].isoformat(), "AO")]
     assert abs(warm.events[0].effect - 8.0) < 3 * warm.events[0].se
     # Without the known shift the old level shift would be reported again.
     naive = screen_new_points(cold.model, context, 60)
