@@ -126,6 +126,12 @@ def _run(
         events_changed=summary.events_changed,
         events_retracted=summary.events_retracted,
     )
+    try:
+        from omegascan.flows.artifacts import publish_run_artifacts
+
+        publish_run_artifacts(summary, db=db)
+    except Exception as exc:  # the run's data is written; a missing page must not fail it
+        logger.warning("could not publish the run's artifacts: %s", exc)
     logger.info(
         "%s %s: %d series (%d cold, %d warm, %d failed), %d new events, %d changed, %d retracted",
         kind,

@@ -1,0 +1,212 @@
+"""Prefect artifacts of a fleet run: a summary in markdown and a table of its events.
+
+Call :func:`publish_run_artifacts` at the end of a scan, backfill or refit
+flow (inside the flow run, so the artifacts belong to it).  Two keyed
+artifacts are created, so the Prefect UI keeps their history across runs:
+
+- ``omegascan-<kind>-summary`` (markdown): series analysed and failed, events
+  new/changed/retracted, new events by type, the strongest events by |t|, and
+  the failures;
+- ``omegascan-<kind>-events`` (table): the run's events, strongest first --
+  those it wrote or changed (``last_run_id`` is the run) when the database is
+  given, else the summary's strongest events.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+from omegascan.flows.pipeline import RunSummary
+from omegascan.tasks.types import EVENT_NAMES, EVENT_TYPES, format_duration
+
+MAX_TABLE_ROWS = 1000
+"""Most rows in the events table (strongest first); the description says how many were left out."""
+
+MAX_FAILURES_SHOWN = 20
+MAX_TOP_SHOWN = 10
+MAX_MESSAGE_CHARS = 200
+
+_MD_SPECIAL = re.compile(r"([\\`*_{}\[\]<>()#+!|~])")
+
+
+def artifact_key(kind: str, what: str) -> str:
+    """``omegascan-<kind>-<what>`` in lowercase letters, digits and dashes (Prefect's rule)."""
+    raw = f"omegascan-{kind}-{what}".lower()
+    return re.sub(r"-{2,}", "-", re.sub(r"[^a-z0-9-]+", "-", raw)).strip("-")
+
+
+def _md(text: object) -> str:
+    """Text safe inside a markdown table cell: special characters escaped, one line."""
+    flat = " ".join(str(text).split())
+    return _MD_SPECIAL.sub(r"\\\1", flat)
+
+
+def _num(value: Any, fmt: str) -> str:
+    if value is None:
+        return "-"
+    try:
+        number = float(value)
+    except (TypeError, ValueError):
+        return "-"
+    return format(number, fmt) if math.isfinite(number) else "-"
+
+
+def run_markdown(summary: RunSummary, *, n_table_rows: int | None = None) -> str:
+    """The summary artifact's text.
+
+    Parameters
+    ----------
+    summary : RunSummary
+    n_table_rows : int, optional
+        Rows of the events table published beside it (mentioned when given).
+    """
+    s = summary
+    lines = [
+        f"# omegascan {_md(s.kind)} run",
+        "",
+        f"Run `{_md(s.run_id)}`, {format_duration(s.seconds)}, {s.batches} batch(es).",
+        "",
+        "| series | count |",
+        "|---|---:|",
+        f"| total | {s.series_total} |",
+        f"| analysed | {s.series_ok} |",
+        f"| first fit (cold) | {s.cold} |",
+        f"| new points only (warm) | {s.warm} |",
+        f"| deferred (too little history) | {s.deferred} |",
+        f"| failed | {s.series_failed} |",
+        "",
+        f"**Events:** {s.events_new} new, {s.events_changed} changed, "
+        f"{s.events_retracted} retracted.",
+        "",
+        "| type | meaning | new events |",
+        "|---|---|---:|",
+    ]
+    counts = dict(s.by_type)
+    lines += [f"| {k} | {EVENT_NAMES[k]} | {counts.get(k, 0)} |" for k in EVENT_TYPES]
+    lines += ["", f"## Strongest events (by |t|, at most {MAX_TOP_SHOWN})", ""]
+    if s.top_events:
+        lines += [
+            "| series | time | type | effect | effect % | t | status |",
+            "|---|---|---|---:|---:|---:|---|",
+        ]
+        for e in s.top_events[:MAX_TOP_SHOWN]:
+            lines.append(
+                f"| {_md(e.series_id)} | {_md(e.event_time)} | {e.event_type} | "
+                f"{_num(e.effect, '+.4g')} | {_num(e.effect_pct, '+.1f')} | "
+                f"{_num(e.t_stat, '+.2f')} | {e.status} |"
+            )
+    else:
+        lines.append("No event in this run.")
+    if n_table_rows is not None:
+        lines += ["", f"The events table of this run holds {n_table_rows} row(s)."]
+    lines += ["", "## Failures", ""]
+    if s.failures:
+        lines += ["| series | stage | message |", "|---|---|---|"]
+        for sid, stage, message in s.failures[:MAX_FAILURES_SHOWN]:
+            text = (
+                message if len(message) <= MAX_MESSAGE_CHARS else message[:MAX_MESSAGE_CHARS] + "…"
+            )
+            lines.append(f"| {_md(sid)} | {_md(stage)} | {_md(text)} |")
+        if len(s.failures) > MAX_FAILURES_SHOWN:
+            lines.append("")
+            lines.append(
+                f"{len(s.failures) - MAX_FAILURES_SHOWN} more failure(s): see the "
+                "series_failures table for this run."
+            )
+    else:
+        lines.append("No series failed.")
+    return "\n".join(lines) + "\n"
+
+
+def _row(values: Mapping[str, Any]) -> dict[str, Any]:
+    def number(x: Any) -> float | None:
+        try:
+            f = float(x)
+        except (TypeError, ValueError):
+            return None
+        return f if math.isfinite(f) else None
+
+    return {
+        "series": str(values["series_id"]),
+        "time": str(values["event_time"]),
+        "type": str(values["event_type"]),
+        "effect": number(values["effect"]),
+        "effect_pct": number(values.get("effect_pct")),
+        "t": number(values["t_stat"]),
+        "status": str(values["status"]),
+    }
+
+
+def run_event_rows(
+    summary: RunSummary, *, records: Sequence[Mapping[str, Any]] | None = None
+) -> list[dict[str, Any]]:
+    """The events table: one row per event, strongest |t| first.
+
+    ``records`` are rows of :func:`omegascan.tasks.persist.read_events`; those
+    whose ``last_run_id`` is the run are kept.  Without records, the summary's
+    strongest events.
+    """
+    if records is None:
+        rows = [_row(e.to_record()) for e in summary.top_events]
+    else:
+        rows = [_row(r) for r in records if r.get("last_run_id") == summary.run_id]
+    rows.sort(key=lambda r: (-(abs(r["t"]) if r["t"] is not None else -1.0), r["series"]))
+    return rows
+
+
+def publish_run_artifacts(
+    summary: RunSummary, *, db: str | None = None, max_rows: int = MAX_TABLE_ROWS
+) -> None:
+    """Create the run's markdown summary and events table as Prefect artifacts.
+
+    Parameters
+    ----------
+    summary : RunSummary
+        What the flow returns.
+    db : str, optional
+        The run's database URL: the table then lists every event the run
+        wrote, changed or retracted.  Without it, the summary's strongest events.
+    max_rows : int, default=1000
+        Most rows in the table (the strongest); the description says if more.
+
+    Notes
+    -----
+    Call it inside the flow run (the artifacts are attached to the current
+    flow run).  Artifact keys are :func:`artifact_key` of the run's kind.
+    """
+    from prefect.artifacts import create_markdown_artifact, create_table_artifact
+
+    records: list[dict[str, Any]] | None = None
+    if db is not None:
+        from omegascan.tasks import persist
+
+        frame = persist.read_events(db, include_retracted=True)
+        frame = frame[frame["last_run_id"] == summary.run_id]
+        records = frame.to_dict(orient="records")
+    rows = run_event_rows(summary, records=records)
+    shown = rows[:max_rows]
+    create_markdown_artifact(
+        markdown=run_markdown(summary, n_table_rows=len(shown)),
+        key=artifact_key(summary.kind, "summary"),
+        description=f"omegascan {summary.kind} {summary.run_id}: counts, strongest events, "
+        "failures",
+    )
+    what = "events written, changed or retracted" if db is not None else "strongest events"
+    more = f" (the {len(shown)} strongest of {len(rows)})" if len(rows) > len(shown) else ""
+    create_table_artifact(
+        table=shown,
+        key=artifact_key(summary.kind, "events"),
+        description=f"omegascan {summary.kind} {summary.run_id}: {what}{more}",
+    )
+
+
+__all__ = [
+    "MAX_TABLE_ROWS",
+    "artifact_key",
+    "publish_run_artifacts",
+    "run_event_rows",
+    "run_markdown",
+]
