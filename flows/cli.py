@@ -1,21 +1,21 @@
 """The ``omegascan`` command line.
 
-``omegascan detect`` and ``omegascan demo`` call the engine's pure functions
-directly, in a process pool over the machine's cores: no Prefect flow, so no
-Prefect import (it costs seconds).  Commands that need Prefect import it inside
-their own function.
+``omegascan detect`` calls the engine's pure functions directly, in a process
+pool over the machine's cores: no Prefect flow, so no Prefect import (it costs
+seconds).  Commands that need Prefect import it inside their own function.
 
-Other commands live in modules of their own and register themselves on
-:data:`app` (see DEVELOPERS.md).
+The fleet commands (scan, backfill, refit, events, triage, demo) live in
+:mod:`omegascan.flows.cli_fleet`, which registers them on :data:`app` when
+imported at the bottom of this module (see DEVELOPERS.md).
 """
 
 from __future__ import annotations
 
+import functools
 import json
 import math
 import os
 import sys
-import time
 import traceback
 from collections.abc import Callable, Sequence
 from concurrent.futures import ProcessPoolExecutor, as_completed
@@ -30,7 +30,6 @@ from rich.table import Table
 
 from omegascan.flows.inputs import SeriesInput, read_series_file
 from omegascan.tasks.errors import OmegascanError, SeriesError, SourceError
-from omegascan.tasks.types import EVENT_TYPES, format_duration
 
 if TYPE_CHECKING:
     from omegascan.tasks.types import DetectionResult, Event
@@ -119,6 +118,7 @@ def analyse_inputs(
     critical: float | None = None,
     max_workers: int | None = None,
     on_done: Callable[[SeriesOutcome], None] | None = None,
+    worker: Callable[..., SeriesOutcome] | None = None,
 ) -> list[SeriesOutcome]:
     """Analyse many series on the machine's cores, results in input order.
 
@@ -135,6 +135,9 @@ def analyse_inputs(
         worker, runs in this process.
     on_done : callable, optional
         Called with each outcome as it completes (for progress displays).
+    worker : callable, optional
+        ``worker(item, periods, critical) -> SeriesOutcome`` (picklable);
+        default :func:`analyse_one` (windowed mode passes its own).
 
     Returns
     -------
@@ -142,11 +145,12 @@ def analyse_inputs(
         Same order as ``items``.
     """
     period_tuple = None if periods is None else tuple(int(p) for p in periods)
+    run = worker or analyse_one
     workers = max_workers or os.cpu_count() or 1
     if len(items) <= 1 or workers <= 1:
         out = []
         for item in items:
-            outcome = analyse_one(item, period_tuple, critical)
+            outcome = run(item, period_tuple, critical)
             if on_done is not None:
                 on_done(outcome)
             out.append(outcome)
@@ -156,7 +160,7 @@ def analyse_inputs(
         # Submit everything (forking the workers) before the caller's progress
         # display starts any thread.
         futures = {
-            pool.submit(analyse_one, item, period_tuple, critical): i
+            pool.submit(run, item, period_tuple, critical): i
             for i, item in enumerate(items)
         }
         for future in as_completed(futures):
@@ -173,11 +177,12 @@ def _run_with_progress(
     periods: Sequence[int] | None,
     critical: float | None,
     label: str,
+    worker: Callable[..., SeriesOutcome] | None = None,
 ) -> list[SeriesOutcome]:
     """:func:`analyse_inputs` with a progress bar on stderr when it is a terminal."""
     err = _stderr()
     if len(items) < 2 or not err.is_terminal:
-        return analyse_inputs(items, periods=periods, critical=critical)
+        return analyse_inputs(items, periods=periods, critical=critical, worker=worker)
     progress = Progress(
         TextColumn(label),
         BarColumn(),
@@ -197,7 +202,9 @@ def _run_with_progress(
         progress.advance(task_id)
 
     try:
-        return analyse_inputs(items, periods=periods, critical=critical, on_done=tick)
+        return analyse_inputs(
+            items, periods=periods, critical=critical, on_done=tick, worker=worker
+        )
     finally:
         if started:
             progress.stop()
@@ -358,14 +365,36 @@ def detect(
         bool,
         typer.Option("--json", help="Print only a JSON array of events on stdout."),
     ] = False,
+    window: Annotated[
+        str | None,
+        typer.Option(
+            "--window",
+            metavar="SPAN",
+            help="Analyse window summaries instead of raw points (any pandas offset, "
+            "e.g. 10s, 1min): the window medians for AO/LS/TC/IO and the window "
+            "spreads for variance changes (VC).",
+            show_default=False,
+        ),
+    ] = None,
 ) -> None:
     """Find events in every series of INPUT and say what kind they are."""
+    worker = None
+    if window is not None:
+        from omegascan.tasks.window import parse_window
+
+        try:
+            parse_window(window)
+        except OmegascanError as exc:
+            raise _fail_usage(str(exc)) from None
+        worker = functools.partial(_windowed_worker, window=window)
     try:
         items = read_series_file(input)
     except SourceError as exc:
         raise _fail_usage(str(exc)) from None
     periods = tuple(season) if season else None
-    outcomes = _run_with_progress(items, periods=periods, critical=critical, label="analysing")
+    outcomes = _run_with_progress(
+        items, periods=periods, critical=critical, label="analysing", worker=worker
+    )
     if as_json:
         sys.stdout.write(json.dumps(event_records(outcomes), indent=2, allow_nan=False) + "\n")
         sys.stdout.flush()
@@ -378,109 +407,12 @@ def detect(
         raise typer.Exit(EXIT_SERIES_FAILED)
 
 
-# --------------------------------------------------------------------------- demo
+def _windowed_worker(
+    item: SeriesInput, periods: tuple[int, ...] | None, critical: float | None, *, window: str
+) -> SeriesOutcome:
+    from omegascan.flows.cli_window import analyse_windowed_one
 
-
-def _pct(x: float) -> str:
-    return "-" if not math.isfinite(x) else f"{100 * x:.0f} %"
-
-
-@app.command()
-def demo(
-    controllers: Annotated[
-        int, typer.Option(min=1, max=5000, help="Storage controllers (two series each).")
-    ] = 12,
-    days: Annotated[int, typer.Option(min=4, max=60, help="Days of 5-minute history.")] = 14,
-    seed: Annotated[int, typer.Option(min=0, help="Seed of the invented fleet.")] = 2031,
-    out: Annotated[
-        Path, typer.Option(help="Folder for fleet.parquet, truth.csv and events.json.")
-    ] = Path("omegascan-demo"),
-) -> None:
-    """Build an invented fleet with known events, run the engine on it, score it."""
-    import numpy as np
-
-    from omegascan.flows.demo import make_demo_fleet, score_against_truth
-
-    console = _stdout()
-    fleet = make_demo_fleet(np.random.default_rng(seed), n_controllers=controllers, days=days)
-    try:
-        out.mkdir(parents=True, exist_ok=True)
-        data_path = out / "fleet.parquet"
-        fleet.data.to_parquet(data_path, index=False)
-        truth_out = fleet.truth.assign(event_time=fleet.truth["event_time"].map(_iso))
-        truth_out.to_csv(out / "truth.csv", index=False)
-    except OSError as exc:
-        raise _fail_usage(f"cannot write to {out}: {exc.strerror or exc}") from None
-
-    items = read_series_file(data_path)
-    n_points = items[0].nobs if items else 0
-    console.print(
-        f"Invented fleet: {controllers} storage controllers, {len(items)} series of "
-        f"{n_points} points ({days} days every {format_duration(fleet.step.total_seconds())}), "
-        f"{len(fleet.truth)} injected events; written to {data_path}",
-        markup=False,
-    )
-    started = time.perf_counter()
-    outcomes = _run_with_progress(items, periods=None, critical=None, label="analysing")
-    elapsed = time.perf_counter() - started
-    records = event_records(outcomes)
-    (out / "events.json").write_text(json.dumps(records, indent=2, allow_nan=False) + "\n")
-    events = [e for o in outcomes if o.result is not None for e in _ordered_events(o.result)]
-    console.print(
-        f"Analysed in {format_duration(elapsed)} on {os.cpu_count()} core(s); "
-        f"{len(events)} events found.\n",
-        markup=False,
-    )
-
-    found = Table(title="Events found, by type", title_justify="left")
-    for name in ("type", "confirmed", "provisional", "total"):
-        found.add_column(name, justify="left" if name == "type" else "right")
-    for kind in EVENT_TYPES:
-        mine = [e for e in events if e.event_type == kind]
-        confirmed = sum(e.status == "confirmed" for e in mine)
-        found.add_row(kind, str(confirmed), str(len(mine) - confirmed), str(len(mine)))
-    console.print(found)
-
-    score = score_against_truth(events, fleet.truth, step=fleet.step, tolerance=2)
-    clean = set(fleet.data["series_id"]) - set(fleet.truth["series_id"])
-    on_clean = sum(e.series_id in clean for e in events)
-    per_type = Table(
-        title="Against the injected truth (found = detected within ±2 samples)",
-        title_justify="left",
-        caption=(
-            f"recall {_pct(score.recall)} ({score.n_matched}/{score.n_injected}), "
-            f"type accuracy {_pct(score.type_accuracy)} ({score.n_typed}/{score.n_matched}), "
-            f"{score.false_events} false events ({on_clean} on {len(clean)} clean series)"
-        ),
-        caption_justify="left",
-    )
-    columns = ("injected", "n", "found", "recall", "right type", *[f"as {k}" for k in EVENT_TYPES])
-    for name in columns:
-        per_type.add_column(name, justify="left" if name == "injected" else "right")
-    for kind, row in score.per_type.iterrows():
-        per_type.add_row(
-            str(kind),
-            str(int(row["injected"])),
-            str(int(row["found"])),
-            _pct(row["recall"]),
-            _pct(row["type_accuracy"]),
-            *[str(int(row[f"called_{k}"])) for k in EVENT_TYPES],
-        )
-    console.print(per_type)
-
-    failed = report_problems(outcomes)
-    console.print(
-        "\nEvents are statistical evidence for a person to judge, not verdicts.\n"
-        f"All events as JSON: {out / 'events.json'}; injected truth: {out / 'truth.csv'}.\n"
-        f"Query the results yourself:\n  omegascan detect {data_path} --json",
-        markup=False,
-    )
-    if failed:
-        raise typer.Exit(EXIT_SERIES_FAILED)
-
-
-def _iso(stamp: Any) -> str:
-    return stamp.isoformat() if hasattr(stamp, "isoformat") else str(stamp)
+    return analyse_windowed_one(item, window, periods, critical)
 
 
 def main() -> None:
@@ -488,5 +420,16 @@ def main() -> None:
     app()
 
 
+# The other commands register themselves on ``app`` when imported.
+from omegascan.flows import (  # noqa: E402
+    cli_fleet,  # noqa: F401
+    cli_report,  # noqa: F401
+    cli_window,  # noqa: F401
+)
+
 if __name__ == "__main__":
-    main()
+    # Run as ``python -m``, this file is ``__main__``; the commands registered
+    # themselves on the app of the importable module, so run that one.
+    from omegascan.flows.cli import main as _main
+
+    _main()

@@ -28,6 +28,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -51,6 +52,9 @@ small fleet has every kind of event and some clean controllers."""
 DEMO_START = pd.Timestamp("2031-03-03 00:00", tz="UTC")  # a Monday, invented
 
 TRUTH_COLUMNS = ("series_id", "event_time", "event_type", "effect", "note")
+
+DAY_FILE_GLOB = "day-*.parquet"
+"""The files :func:`write_day_files` writes (``day-2031-03-03.parquet`` ...)."""
 
 
 @dataclass(frozen=True, slots=True, eq=False)
@@ -261,6 +265,48 @@ def make_demo_fleet(
     truth = pd.DataFrame(truth_rows, columns=list(TRUTH_COLUMNS))
     truth["event_time"] = pd.to_datetime(truth["event_time"], utc=True)
     return DemoFleet(data=data, truth=truth, step=step_td)
+
+
+def write_day_files(
+    data: pd.DataFrame, folder: str | Path, *, first: int = 0, last: int | None = None
+) -> list[Path]:
+    """Write days ``first <= k < last`` of a fleet as one Parquet file per UTC day.
+
+    The folder becomes a Parquet dataset that grows by a file a day, as a
+    collector would leave it: ``day-2031-03-03.parquet``, ... (rows sorted by
+    series and time, so a read of some series skips the others' row groups).
+
+    Parameters
+    ----------
+    data : pandas.DataFrame
+        Long form ``series_id, timestamp, value`` (a :class:`DemoFleet`'s data).
+    folder : str or pathlib.Path
+        Created if missing; files of the same days are overwritten.
+    first, last : int
+        Day numbers counted from the first timestamp's day; ``last`` None
+        means through the last day.
+
+    Returns
+    -------
+    list of pathlib.Path
+        The files written, in day order.
+    """
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    stamps = pd.to_datetime(data["timestamp"], utc=True)
+    day = stamps.dt.floor("D")
+    number = ((day - day.min()) / pd.Timedelta(days=1)).astype(int)
+    end = int(number.max()) + 1 if last is None else last
+    written = []
+    for k in range(first, end):
+        part = data[number == k]
+        if part.empty:
+            continue
+        part = part.sort_values(["series_id", "timestamp"], kind="stable")
+        path = folder / f"day-{day[number == k].iloc[0]:%Y-%m-%d}.parquet"
+        part.to_parquet(path, index=False)
+        written.append(path)
+    return written
 
 
 # --------------------------------------------------------------------------- scoring

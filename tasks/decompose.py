@@ -397,6 +397,14 @@ def _nice_step(step: float, is_time: bool) -> float:
     return max(round(step), 1)
 
 
+def _to_datetime(text: pd.Series, fmt: str) -> pd.Series:
+    """Parse text times; mixed UTC offsets (a zone across a clock change) go to UTC."""
+    try:
+        return pd.to_datetime(text, errors="coerce", format=fmt, utc=False)
+    except ValueError:  # "Mixed timezones detected"
+        return pd.to_datetime(text, errors="coerce", format=fmt, utc=True)
+
+
 def _is_numeric(values) -> bool:
     dtype = getattr(values, "dtype", None)
     return dtype is not None and np.issubdtype(dtype, np.number)
@@ -429,9 +437,9 @@ def _parse_timestamps(series_id: str, timestamps) -> tuple[np.ndarray, list[str]
         labels = [ts.isoformat() for ts in parsed]
     else:
         text = raw.astype(str)
-        parsed = pd.to_datetime(text, errors="coerce", format="ISO8601", utc=False)
+        parsed = _to_datetime(text, "ISO8601")
         if parsed.isna().any():
-            parsed = pd.to_datetime(text, errors="coerce", format="mixed")
+            parsed = _to_datetime(text, "mixed")
         if parsed.isna().any():
             bad = text[parsed.isna()].iloc[0]
             raise TimestampError(

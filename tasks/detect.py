@@ -50,6 +50,7 @@ from omegascan.tasks.types import (
     Pattern,
     RegularSeries,
     format_duration,
+    round_sig,
 )
 from omegascan.tasks.wrappers import TaskSpec, lazy_task
 
@@ -76,6 +77,9 @@ for one parameter) when the types are compared."""
 SETTLE = 8
 """An event with fewer observations after it than this (or than two decay
 half-lives of a TC) is provisional: the types still look alike there."""
+
+LS_MARGIN = 2
+"""Points after the first testable one before a level shift may be placed."""
 
 MAX_OUTER = 4
 MAX_INNER = 60
@@ -327,10 +331,10 @@ def screen_new_points(
     start = n - n_new
     sigma = model.sigma
     pi = pi_weights(model, n)
-    found = _inner_loop(e, w, pi, sigma, crit, start)
+    found = _inner_loop(e, w, pi, sigma, crit, start, ls_from=start)
     found = _joint(e, w, pi, sigma, crit, found)
     e_clean = e - (_design(found, pi, n) @ np.array([c.omega for c in found])) * w if found else e
-    support = _weights_for(e_clean, w, pi, sigma, found)
+    support = _weights_for(e_clean, w, pi, sigma, found, ls_from=start)
     events = tuple(
         _to_event(series, model, c, weights, delta)
         for c, (weights, delta) in zip(found, support, strict=True)
@@ -436,16 +440,24 @@ def _inner_loop(
     crit: float,
     start: int,
     *,
+    ls_from: int | None = None,
     max_inner: int = MAX_INNER,
 ) -> list[_Candidate]:
-    """Detect effects one at a time, removing each from the residuals (step 2a)."""
+    """Detect effects one at a time, removing each from the residuals (step 2a).
+
+    ``ls_from`` is the first time a level shift may be placed (default two
+    points after ``start``): a step at the very start of the data is the mean
+    itself, and one a point later is an AO at the start.
+    """
     n = e.size
     pats = residual_patterns(pi)
     e = e.copy()
     allowed = (w > 0) & (np.arange(n) >= start)
+    ls_from = start + LS_MARGIN if ls_from is None else ls_from
     found: list[_Candidate] = []
     for _ in range(max_inner):
         taus = _tau(e, w, pats, sigma)
+        taus["LS"][1][:ls_from] = np.nan
         stacked = np.vstack([np.abs(np.nan_to_num(taus[k][1])) for k in EVENT_TYPES])
         best_abs = np.where(allowed, stacked.max(axis=0), 0.0)
         T = int(np.argmax(best_abs))
@@ -690,11 +702,20 @@ def _support(y: np.ndarray, model: FittedModel | Estimate, cands: Sequence[_Cand
     n = y.size
     psi = psi_weights(model, n)
     e, w, sigma = _residuals(y - _total_effect(n, cands, psi), model)
-    return _weights_for(e, w, pi_weights(model, n), sigma or model_sigma(model), cands)
+    ls_from = _n_start(model) + LS_MARGIN
+    return _weights_for(
+        e, w, pi_weights(model, n), sigma or model_sigma(model), cands, ls_from=ls_from
+    )
 
 
 def _weights_for(
-    e_clean: np.ndarray, w: np.ndarray, pi: np.ndarray, sigma: float, cands: Sequence[_Candidate]
+    e_clean: np.ndarray,
+    w: np.ndarray,
+    pi: np.ndarray,
+    sigma: float,
+    cands: Sequence[_Candidate],
+    *,
+    ls_from: int,
 ) -> Support:
     """Support of each type at each candidate, from residuals with every effect removed."""
     n = e_clean.size
@@ -702,7 +723,8 @@ def _weights_for(
     for c in cands:
         own = np.zeros(n)  # put this candidate's own effect back
         own[c.position :] = c.omega * _shape_resid(c, pi)[: n - c.position]
-        out.append(_weights_at(e_clean + own * w, w, pi, sigma, c.position))
+        ls_ok = c.position >= ls_from
+        out.append(_weights_at(e_clean + own * w, w, pi, sigma, c.position, ls_ok=ls_ok))
     return out
 
 
@@ -711,7 +733,7 @@ def model_sigma(model: FittedModel | Estimate) -> float:
 
 
 def _weights_at(
-    e: np.ndarray, w: np.ndarray, pi: np.ndarray, sigma: float, T: int
+    e: np.ndarray, w: np.ndarray, pi: np.ndarray, sigma: float, T: int, *, ls_ok: bool = True
 ) -> tuple[dict[str, float], float | None]:
     n = e.size
     seg_e = e[T:] * w[T:]
@@ -724,7 +746,7 @@ def _weights_at(
 
     taus = {
         "AO": tau_for(pi),
-        "LS": tau_for(np.cumsum(pi)),
+        "LS": tau_for(np.cumsum(pi)) if ls_ok else 0.0,
         "IO": float(seg_e[0]) / sigma,
     }
     res = minimize_scalar(
@@ -760,8 +782,8 @@ def _as_model(
         order=fitted.order,
         seasonal_order=fitted.seasonal_order,
         trend=fitted.trend,
-        params=fitted.params,
-        sigma2=fitted.sigma2,
+        params=tuple((k, round_sig(v)) for k, v in fitted.params),
+        sigma2=round_sig(fitted.sigma2),
         nobs=fitted.nobs,
         method="mle",
         converged=fitted.converged,
@@ -790,20 +812,21 @@ def _to_event(
     settle = max(SETTLE, 2 * half_steps if half_steps else 0)
     level = _local_level(series.values, c.position)
     pct = 100.0 * c.omega / level if abs(level) > 1e-9 * (1 + abs(c.omega)) else None
+    effect, t_stat = round_sig(c.omega), round_sig(c.t)
     return Event(
         series_id=series.series_id,
         position=c.position,
         event_time=series.label(c.position),
         event_type=c.kind,  # type: ignore[arg-type]
-        effect=c.omega,
-        effect_pct=pct,
-        t_stat=c.t,
-        se=abs(c.omega / c.t) if c.t else float("nan"),
+        effect=effect,
+        effect_pct=None if pct is None else round_sig(pct),
+        t_stat=t_stat,
+        se=round_sig(abs(effect / t_stat)) if t_stat else float("nan"),
         type_weights=tuple((k, round(weights[k], 4)) for k in EVENT_TYPES),
         status="provisional" if after < settle else "confirmed",
         decay=round(delta, 4) if c.kind == "TC" and delta is not None else None,
         half_life=_half_life(series, half_steps),
-        level=level,
+        level=round_sig(level),
         model=model.spec(),
     )
 

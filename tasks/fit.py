@@ -18,7 +18,7 @@ import numpy as np
 from scipy.signal import lfilter
 
 from omegascan.tasks.threads import single_blas_thread
-from omegascan.tasks.types import Decomposition, FittedModel
+from omegascan.tasks.types import Decomposition, FittedModel, round_sig
 from omegascan.tasks.wrappers import TaskSpec, lazy_task
 
 MAX_SEASONAL_LAG = 52
@@ -618,8 +618,8 @@ def _to_model(
         order=est.order,
         seasonal_order=est.seasonal_order,
         trend=est.trend,
-        params=est.params,
-        sigma2=est.sigma2,
+        params=tuple((k, round_sig(v)) for k, v in est.params),
+        sigma2=round_sig(est.sigma2),
         nobs=est.nobs,
         method=method,
         converged=est.converged,

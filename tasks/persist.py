@@ -745,8 +745,15 @@ def _stored_events(
 
 
 def _differs(a: Any, b: Any) -> bool:
+    """A real change: floats that agree to 1e-9 relative are the same value.
+
+    The same analysis run twice can differ in the last bits of a float; that
+    is not a change of the event and must not log a revision.
+    """
     if isinstance(a, float) and isinstance(b, float):
-        return not (a == b or (math.isnan(a) and math.isnan(b)))
+        if math.isnan(a) or math.isnan(b):
+            return not (math.isnan(a) and math.isnan(b))
+        return not math.isclose(a, b, rel_tol=1e-9, abs_tol=0.0)
     return a != b
 
 

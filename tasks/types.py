@@ -17,15 +17,33 @@ import pandas as pd
 
 from omegascan.tasks.errors import ModelError
 
-EventType = Literal["AO", "LS", "TC", "IO"]
+EventType = Literal["AO", "LS", "TC", "IO", "VC"]
 EVENT_TYPES: tuple[EventType, ...] = ("AO", "LS", "TC", "IO")
+"""The four intervention types the engine classifies.  ``"VC"`` (variance
+change) is not among them: windowed mode reports it from a step in the window
+spreads (omegascan.tasks.window)."""
 EVENT_NAMES: dict[str, str] = {
     "AO": "additive outlier",
     "LS": "level shift",
     "TC": "temporary change",
     "IO": "innovational outlier",
+    "VC": "variance change",
 }
 Status = Literal["provisional", "confirmed"]
+
+
+STORED_DIGITS = 10
+"""Significant digits kept in reported numbers.  The same analysis run twice can
+differ in the last bits of a float (BLAS kernels sum in an order that depends
+on memory alignment); rounding to 10 digits makes reruns store identical
+values, far below any precision the statistics have."""
+
+
+def round_sig(value: float, digits: int = STORED_DIGITS) -> float:
+    """``value`` rounded to ``digits`` significant digits (non-finite values unchanged)."""
+    if not math.isfinite(value) or value == 0:
+        return value
+    return float(f"{value:.{digits}g}")
 
 
 def format_duration(seconds: float) -> str:

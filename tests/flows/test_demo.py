@@ -281,31 +281,3 @@ def test_score_refuses_bad_inputs():
 # --------------------------------------------------------------------------- the command
 
 
-def test_demo_command_writes_the_fleet_and_scores_it(tmp_path):
-    import json
-    import re
-
-    from typer.testing import CliRunner
-
-    from omegascan.flows.cli import app
-
-    out = tmp_path / "demo"
-    args = ["demo", "--controllers", "3", "--days", "4", "--seed", "5", "--out", str(out)]
-    result = CliRunner().invoke(app, args)
-    assert result.exit_code == 0, result.stderr
-    # The files hold the fleet that make_demo_fleet builds from the same seed.
-    expected = make_demo_fleet(np.random.default_rng(5), n_controllers=3, days=4)
-    written = pd.read_parquet(out / "fleet.parquet")
-    pd.testing.assert_frame_equal(written, expected.data, check_dtype=False)
-    truth = pd.read_csv(out / "truth.csv")
-    assert truth["event_type"].tolist() == expected.truth["event_type"].tolist()
-    # The printed recall is score_against_truth on the written events and truth.
-    events = pd.DataFrame(json.loads((out / "events.json").read_text()))
-    if events.empty:
-        events = pd.DataFrame(columns=["series_id", "event_time", "event_type"])
-    score = score_against_truth(events, truth, step="5min")
-    printed = re.search(r"recall (\d+) % \((\d+)/(\d+)\)", result.stdout)
-    assert printed, result.stdout
-    assert (int(printed[2]), int(printed[3])) == (score.n_matched, score.n_injected)
-    assert f"{score.false_events} false events" in result.stdout
-    assert f"omegascan detect {out / 'fleet.parquet'} --json" in result.stdout

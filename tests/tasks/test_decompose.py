@@ -144,3 +144,11 @@ def test_long_profiles_are_smoothed_and_found_patterns_are_not():
     series = regularize("p", pd.date_range("2026-01-01", periods=n, freq="5min"), y + spikes)
     kept = decompose(series, periods=[], extra_periods=[288])
     assert kept.profiles[0][5] > 8.0  # a recurring spike is not smeared over its neighbours
+
+
+def test_local_times_across_a_clock_change_parse_to_one_grid():
+    stamps = pd.date_range("2026-03-29", periods=300, freq="min", tz="Europe/Paris")
+    text = [t.isoformat() for t in stamps]  # +01:00, then +02:00 after 02:00
+    s = regularize("dst", text, np.random.default_rng(0).normal(size=300))
+    assert s.nobs == 300 and s.n_missing == 0 and s.step == pd.Timedelta("1min")
+    assert s.labels[0] == "2026-03-29T00:00:00+01:00"

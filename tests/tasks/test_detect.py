@@ -242,3 +242,16 @@ def test_screen_new_points_with_a_cached_model():
     # Without the known shift the old level shift would be reported again.
     naive = screen_new_points(cold.model, context, 60)
     assert any(e.event_type == "LS" for e in naive.events)
+
+
+def test_no_level_shift_at_the_start_where_it_is_the_mean():
+    # A step at the first point is the mean itself: before the guard, white
+    # noise with one real shift produced an LS at position 0 of size ~1e12.
+    rng = np.random.default_rng(1)
+    n = 2000
+    y = 50 + 0.3 * rng.normal(size=n)
+    y[n // 2 :] += 3
+    result = analyse_series("w", pd.date_range("2026-03-02", periods=n, freq="min"), y)
+    assert [(e.position, e.event_type) for e in result.events] == [(1000, "LS")]
+    assert abs(result.events[0].effect - 3) < 3 * result.events[0].se
+    assert_allclose(result.model.param_dict["const"], 50, atol=0.1)
