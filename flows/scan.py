@@ -254,7 +254,7 @@ def _span_text(value: object) -> str | None:
 
 
 def _last_per_series(outcomes):
-    """One outcome per series: its events over all chunks, its last mode."""
+    """One outcome per series: its events over all chunks; cold if fitted in any chunk."""
     from dataclasses import replace
 
     merged: dict[str, object] = {}
@@ -265,5 +265,8 @@ def _last_per_series(outcomes):
             continue
         events = {e.event_time: e for e in (*prev.events, *o.events)}  # type: ignore[attr-defined]
         retract = tuple(t for t in (*prev.retract, *o.retract) if t not in events)  # type: ignore[attr-defined]
-        merged[o.series_id] = replace(o, events=tuple(events.values()), retract=retract)
+        mode = o.mode
+        if mode not in ("failed", "deferred") and "cold" in (prev.mode, o.mode):  # type: ignore[attr-defined]
+            mode = "cold"  # fitted in some chunk
+        merged[o.series_id] = replace(o, mode=mode, events=tuple(events.values()), retract=retract)
     return list(merged.values())
