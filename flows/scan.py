@@ -47,6 +47,8 @@ def _run(
     *,
     columns: dict[str, str] | None,
     series: Sequence[str] | None,
+    table: str | None = None,
+    query: str | None = None,
     chunks: Sequence[tuple[object, object]] = ((None, None),),
     cold_start: object = None,
     report_from: str | None = None,
@@ -56,7 +58,7 @@ def _run(
     t0 = time.perf_counter()
     run_id = current_run_id()
     persist.migrate(db)
-    spec = open_source(source, columns=_columns(columns))
+    spec = open_source(source, columns=_columns(columns), table=table, query=query)
     ids = list(series) if series else list_series(spec)
     span = (chunks[0][0], chunks[-1][1])
     persist.start_run(db, run_id, kind, _span_text(span[0]), _span_text(span[1]))
@@ -155,13 +157,24 @@ def scan_flow(
     columns: dict[str, str] | None = None,
     series: list[str] | None = None,
     until: str | None = None,
+    table: str | None = None,
+    query: str | None = None,
 ) -> RunSummary:
     """Hourly fleet scan: new points of every series against its cached model.
 
     ``until`` stops reading at that time (exclusive); default all data.
+    ``table`` or ``query`` say what to read when ``source`` is a database URL.
     """
     return _run(
-        "scan", source, db, options, columns=columns, series=series, chunks=((None, until),)
+        "scan",
+        source,
+        db,
+        options,
+        columns=columns,
+        series=series,
+        table=table,
+        query=query,
+        chunks=((None, until),),
     )
 
 
@@ -176,6 +189,8 @@ def backfill_flow(
     options: RunOptions = RunOptions(),  # noqa: B008
     columns: dict[str, str] | None = None,
     series: list[str] | None = None,
+    table: str | None = None,
+    query: str | None = None,
 ) -> RunSummary:
     """Analyse the span ``start <= t < end`` in chunks of ``chunk``, resumably.
 
@@ -191,6 +206,8 @@ def backfill_flow(
         options,
         columns=columns,
         series=series,
+        table=table,
+        query=query,
         chunks=chunks,
         cold_start=cold_start,
         report_from=str(start),
@@ -204,9 +221,21 @@ def refit_flow(
     options: RunOptions = RunOptions(),  # noqa: B008
     columns: dict[str, str] | None = None,
     series: list[str] | None = None,
+    table: str | None = None,
+    query: str | None = None,
 ) -> RunSummary:
     """Estimate the models of all (or the given) series again on all their history."""
-    return _run("refit", source, db, options, columns=columns, series=series, refit=True)
+    return _run(
+        "refit",
+        source,
+        db,
+        options,
+        columns=columns,
+        series=series,
+        table=table,
+        query=query,
+        refit=True,
+    )
 
 
 def split_span(start: str, end: str, chunk: str, warmup: str):

@@ -332,21 +332,28 @@ def test_bad_configuration_gets_one_line_and_exit_2(good_source, tmp_path, monke
     assert not (tmp_path / "never.db").exists()  # a read never creates a database
 
 
-def test_database_sources_are_refused_until_the_flows_take_a_table(good_source, tmp_path):
-    # The fleet flows take no table or query parameter yet (flows/scan.py): the CLI
-    # says so instead of letting the flow fail on "needs a table or a query".
+def test_scan_reads_a_database_table(prefect_server, good_source, tmp_path):
+    # The same fleet from a SQL table (SQLite here) gives the same events as
+    # from Parquet.
     import sqlalchemy as sa
 
     frame = pd.read_parquet(good_source)
     engine = sa.create_engine(f"sqlite:///{tmp_path / 'src.db'}")
     frame.to_sql("metrics", engine, index=False)
     engine.dispose()
-    db = f"sqlite:///{tmp_path / 'x.db'}"
     src = f"sqlite:///{tmp_path / 'src.db'}"
-    result = _invoke("scan", "--source", src, "--table", "metrics", "--db", db)
-    assert result.exit_code == 2 and "--table is not supported yet" in result.stderr
-    result = _invoke("scan", "--source", src, "--table", "nothing", "--db", db)
-    assert result.exit_code == 2 and "'nothing'" in result.stderr  # checked before that
+    from_sql = f"sqlite:///{tmp_path / 'from-sql.db'}"
+    from_parquet = f"sqlite:///{tmp_path / 'from-parquet.db'}"
+    result = _invoke("scan", "--source", src, "--table", "metrics", "--db", from_sql)
+    assert result.exit_code == 0, result.stderr
+    result = _invoke("scan", "--source", str(good_source), "--db", from_parquet)
+    assert result.exit_code == 0, result.stderr
+    a = persist.read_events(from_sql)[["series_id", "event_type", "effect"]]
+    b = persist.read_events(from_parquet)[["series_id", "event_type", "effect"]]
+    assert len(a) > 0
+    pd.testing.assert_frame_equal(a.reset_index(drop=True), b.reset_index(drop=True))
+    result = _invoke("scan", "--source", src, "--table", "nothing", "--db", from_sql)
+    assert result.exit_code == 2 and "'nothing'" in result.stderr
 
 
 def test_errors_inside_the_flow_reach_the_user_without_a_traceback(
