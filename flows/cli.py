@@ -420,16 +420,16 @@ def main() -> None:
     app()
 
 
-# The other commands register themselves on ``app`` when imported.
-from omegascan.flows import (  # noqa: E402
-    cli_fleet,  # noqa: F401
-    cli_report,  # noqa: F401
-    cli_window,  # noqa: F401
-)
-
 if __name__ == "__main__":
-    # Run as ``python -m``, this file is ``__main__``; the commands registered
+    # Run as ``python -m``, this file is ``__main__``; the commands register
     # themselves on the app of the importable module, so run that one.
     from omegascan.flows.cli import main as _main
 
     _main()
+else:
+    # The other commands register themselves on ``app`` when imported.
+    from omegascan.flows import (
+        cli_fleet,  # noqa: F401
+        cli_report,  # noqa: F401
+        cli_window,  # noqa: F401
+    )
