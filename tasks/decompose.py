@@ -92,19 +92,22 @@ def regularize(series_id: str, timestamps, values) -> RegularSeries:
     6. Slots with no observation are missing values.
     """
     # Step 1: values.
-    raw_values = pd.Series(np.asarray(values, dtype=object) if not _is_numeric(values) else values)
-    if len(raw_values) != len(timestamps):
+    if len(values) != len(timestamps):
         raise SeriesError(series_id, "timestamps and values have different lengths")
-    numeric = pd.to_numeric(raw_values, errors="coerce").astype(float)
-    bad = numeric.isna() & raw_values.notna() & ~_is_nan_like(raw_values)
-    if bad.any():
-        first = raw_values[bad].iloc[0]
-        raise NonNumericError(
-            series_id,
-            f"{int(bad.sum())} value(s) are not numbers (first: {first!r}); "
-            "clean the value column or mark missing samples as empty",
-        )
-    vals = numeric.to_numpy(dtype=float)
+    if _is_numeric(values):  # the common case: nothing to parse
+        vals = np.asarray(values, dtype=float)
+    else:
+        raw_values = pd.Series(np.asarray(values, dtype=object))
+        numeric = pd.to_numeric(raw_values, errors="coerce").astype(float)
+        bad = numeric.isna() & raw_values.notna() & ~_is_nan_like(raw_values)
+        if bad.any():
+            first = raw_values[bad].iloc[0]
+            raise NonNumericError(
+                series_id,
+                f"{int(bad.sum())} value(s) are not numbers (first: {first!r}); "
+                "clean the value column or mark missing samples as empty",
+            )
+        vals = numeric.to_numpy(dtype=float)
     if np.isinf(vals).any():
         where = int(np.flatnonzero(np.isinf(vals))[0])
         raise NonFiniteError(
@@ -147,13 +150,16 @@ def regularize(series_id: str, timestamps, values) -> RegularSeries:
             f"{size} slots for {distinct.size} timestamps); resample the series first",
         )
     # Observations sharing a slot are resolved by their median.
-    frame = pd.DataFrame({"slot": slot, "value": vals})
-    grouped = frame.groupby("slot", sort=True)["value"]
-    medians = grouped.median()
-    counts = grouped.size()
-    n_duplicates = int((counts - 1).sum())
     grid = np.full(size, np.nan)
-    grid[medians.index.to_numpy()] = medians.to_numpy()
+    if slot.size < 2 or np.all(np.diff(slot) > 0):  # no shared slot: no grouping needed
+        grid[slot] = vals
+        n_duplicates = 0
+    else:
+        frame = pd.DataFrame({"slot": slot, "value": vals})
+        grouped = frame.groupby("slot", sort=True)["value"]
+        medians = grouped.median()
+        n_duplicates = int((grouped.size() - 1).sum())
+        grid[medians.index.to_numpy()] = medians.to_numpy()
     grid_labels: list[str | None] = [None] * size
     for s, lab in zip(slot[::-1], labels[::-1], strict=True):  # first occurrence wins
         grid_labels[s] = lab
@@ -397,6 +403,20 @@ def _nice_step(step: float, is_time: bool) -> float:
     return max(round(step), 1)
 
 
+def _iso_labels(stamps: pd.Series) -> list[str]:
+    """``Timestamp.isoformat()`` of every stamp, vectorized for the common case.
+
+    Zone-less stamps on whole seconds format as numpy's ISO text, which is
+    exactly what ``isoformat()`` gives them; anything else goes one by one, so a
+    timestamp's text never depends on its neighbours.
+    """
+    if isinstance(stamps.dtype, np.dtype) and stamps.dtype.kind == "M":  # zone-less
+        raw = stamps.to_numpy(dtype="datetime64[ns]")
+        if not np.isnat(raw).any() and (raw.view("i8") % 1_000_000_000 == 0).all():
+            return np.datetime_as_string(raw, unit="s").tolist()
+    return [ts.isoformat() for ts in stamps]
+
+
 def _to_datetime(text: pd.Series, fmt: str) -> pd.Series:
     """Parse text times; mixed UTC offsets (a zone across a clock change) go to UTC."""
     try:
@@ -434,7 +454,7 @@ def _parse_timestamps(series_id: str, timestamps) -> tuple[np.ndarray, list[str]
         return stamps, labels, None
     if raw.dtype.kind == "M" or isinstance(raw.dtype, pd.DatetimeTZDtype):
         parsed = raw
-        labels = [ts.isoformat() for ts in parsed]
+        labels = _iso_labels(parsed)
     else:
         text = raw.astype(str)
         parsed = _to_datetime(text, "ISO8601")

@@ -152,3 +152,16 @@ def test_local_times_across_a_clock_change_parse_to_one_grid():
     s = regularize("dst", text, np.random.default_rng(0).normal(size=300))
     assert s.nobs == 300 and s.n_missing == 0 and s.step == pd.Timedelta("1min")
     assert s.labels[0] == "2026-03-29T00:00:00+01:00"
+
+
+@pytest.mark.parametrize(
+    "stamps",
+    [
+        pd.date_range("2026-01-01", periods=50, freq="h"),
+        pd.date_range("2026-01-01", periods=50, freq="250ms"),
+        pd.date_range("2026-01-01", periods=50, freq="min", tz="UTC"),
+    ],
+)
+def test_labels_of_typed_times_are_their_isoformat(stamps):
+    s = regularize("iso", pd.Series(stamps), np.arange(50.0))
+    assert list(s.labels) == [t.isoformat() for t in stamps]
