@@ -23,8 +23,14 @@ of an imaginary fleet of edge nodes, with level shifts and spikes injected):
 
 Every flow runs in a fresh child process (``python -m ... run-flow``) against
 a Prefect server started here (``prefect server start``, SQLite-backed, in the
-work directory) unless ``--api-url`` names one, so a run pays what a worker's
-flow run pays: interpreter start, imports, flow-run creation, the task runner.
+work directory, or on ``--server-database``, e.g. PostgreSQL) unless
+``--api-url`` names one, so a run pays what a worker's flow run pays:
+interpreter start, imports, flow-run creation, the task runner.  CPU seconds
+are reported for the flow process, its task workers, the Prefect server and
+the rest of the machine (other load), as per-series CPU is less sensitive to
+that load than wall time.  After the warm scans, ``--profile-sample`` series
+are analysed again without Prefect in this process, split by outcome (warm or
+refitted) and, for the warm ones, by stage under cProfile.
 Peak memory is sampled (psutil, every 0.2 s) as the summed RSS of the child and
 all its descendants (task-runner workers); the child also reports its own
 ``ru_maxrss`` and the largest of its reaped children's.  Figures only; nothing
@@ -57,6 +63,7 @@ from scipy.signal import lfilter
 
 MINUTE_START = pd.Timestamp("2031-03-01 00:00")
 BACKFILL_START = pd.Timestamp("2031-05-01 00:00")
+ROOT = Path(__file__).resolve().parents[2]
 ROW_GROUP_ROWS = 120_000  # about 250 minute series of 480 points per row group
 
 
@@ -305,7 +312,8 @@ def run_child(
     ]
     server_cpu0, busy0 = _tree_cpu(args.server_pid), _machine_busy()
     t0 = time.perf_counter()
-    proc = subprocess.Popen(cmd, env=env, start_new_session=True)
+    # The child imports this module as tests.benchmarks.bench_fleet: run it from the root.
+    proc = subprocess.Popen(cmd, env=env, cwd=ROOT, start_new_session=True)
     sampler = Sampler(proc.pid)
     try:
         code = proc.wait(timeout=args.run_timeout)
@@ -531,7 +539,7 @@ def engine_profile(db: str, source: Path, sample: int) -> None:
 
 
 # Functions of the warm path, by stage (cumulative time; a stage's functions do
-# not call each other).
+# not call each other); "file.py:name" picks one module's function.
 WARM_STAGES = {
     "regularize (grid, gaps)": ("regularize",),
     "screen_new_points: filter + search (inner loop, joint)": ("_inner_loop", "_joint"),
@@ -541,6 +549,10 @@ WARM_STAGES = {
     "screen_new_points: default critical value": ("default_critical",),
     "refit decision (drift test, age, LS)": ("_needs_refit",),
     "watermark / event placement": ("_after_watermark", "_position", "_last_observed"),
+    "BLAS one-thread limit, set and restored per call (threadpoolctl)": (
+        "threads.py:_enter",
+        "threads.py:_leave",
+    ),
 }
 
 
@@ -572,8 +584,8 @@ def profile_warm_path(spec, works, options) -> None:
     for label, names in WARM_STAGES.items():
         cum = sum(
             entry[3]
-            for (_, _, func), entry in stats.stats.items()  # type: ignore[attr-defined]
-            if func in names
+            for (path, _, func), entry in stats.stats.items()  # type: ignore[attr-defined]
+            if func in names or f"{Path(path).name}:{func}" in names
         )
         shown += cum
         print(f"| {label} | {1000 * cum / len(works):.2f} | {100 * cum / total:.0f} % |")

@@ -11,7 +11,8 @@ from __future__ import annotations
 import time
 from pathlib import Path
 
-import pytest
+import dask
+import distributed
 
 from omegascan.flows.pipeline import make_task_runner
 from omegascan.flows.scan import scan_flow
@@ -25,13 +26,10 @@ OPTIONS = RunOptions(workers=2, batch_seconds=1.0)
 
 
 def test_scan_on_dask_cluster_matches_threads(prefect_server, tmp_path: Path, monkeypatch):
-    distributed = pytest.importorskip("distributed")
     data, _ = make_fleet(9)
     source = write_source(data, tmp_path / "source", until="2026-06-19")
     # Dask writes spill and lock files in its temporary directory.
     monkeypatch.setenv("DASK_TEMPORARY_DIRECTORY", str(tmp_path / "dask"))
-    import dask
-
     dask.config.refresh()
     threads_db = f"sqlite:///{tmp_path / 'threads.db'}"
     dask_db = f"sqlite:///{tmp_path / 'dask.db'}"
