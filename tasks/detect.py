@@ -36,6 +36,7 @@ from omegascan.tasks.fit import (
     estimate,
     fit_model,
     innovations,
+    interpolate_missing,
     pi_weights,
     polynomials,
     psi_weights,
@@ -323,7 +324,7 @@ def screen_new_points(
     params = model.param_dict
     dev = y - params.get("const", 0.0)
     w = (~np.isnan(dev)).astype(float)
-    filled = _fill(dev)
+    filled = interpolate_missing(dev)
     ar, ma = polynomials(model)
     from scipy.signal import lfilter
 
@@ -984,14 +985,6 @@ def _seasonal_for(model: FittedModel, series: RegularSeries) -> np.ndarray:
         base = float(model.anchor) if model.anchor is not None else float(series.index[0])
         offsets = np.rint((series.index.to_numpy(dtype=float) - base) / (model.step_seconds or 1.0))
     return profile_at(model.profiles, model.periods, offsets.astype(np.int64))
-
-
-def _fill(x: np.ndarray) -> np.ndarray:
-    ok = ~np.isnan(x)
-    if ok.all():
-        return x
-    idx = np.arange(x.size)
-    return np.interp(idx, idx[ok], x[ok]) if ok.any() else np.zeros_like(x)
 
 
 _TASKS: dict[str, TaskSpec] = {

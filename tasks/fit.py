@@ -316,7 +316,7 @@ def choose_d(y: np.ndarray) -> int:
     minimum over all splits: cheaper, and slightly conservative), with the
     unit root rejected when t(b) < -4.80.
     """
-    z = _interpolate(y)
+    z = interpolate_missing(y)
     if z.size < 12 or np.ptp(z) == 0:
         return 0
     if not _unit_root(z):
@@ -416,7 +416,7 @@ def select_orders(
     ARMA absorbs part of an event's signature.  Returns the order, the seasonal
     order and the chosen regression's BIC (comparable only within one call).
     """
-    z = _interpolate(y)
+    z = interpolate_missing(y)
     if d:
         z = np.diff(z, n=d)
     z = z - z.mean()
@@ -657,12 +657,18 @@ def _lag_key(name: str) -> int:
     return int(digits) if digits else 0
 
 
-def _interpolate(y: np.ndarray) -> np.ndarray:
-    """Linear interpolation over missing values (for tests and selection only)."""
+def interpolate_missing(y: np.ndarray) -> np.ndarray:
+    """Linear interpolation over missing values (zeros if none is observed).
+
+    For the tests, the order search and the warm path's linear filter only;
+    estimation itself lets the Kalman filter skip missing values.
+    """
     y = np.asarray(y, dtype=float)
     ok = ~np.isnan(y)
     if ok.all():
         return y
+    if not ok.any():
+        return np.zeros_like(y)
     idx = np.arange(y.size)
     return np.interp(idx, idx[ok], y[ok])
 
@@ -693,7 +699,7 @@ def ols(X: np.ndarray, y: np.ndarray) -> np.ndarray:
 
 def _outlying(y: np.ndarray, d: int) -> np.ndarray:
     """Positions whose long-AR residual has a robust |z| above OUTLIER_Z."""
-    z = _interpolate(y)
+    z = interpolate_missing(y)
     base = np.diff(z, n=d) if d else z - np.median(z)
     m = int(min(max(10 * math.log10(max(base.size, 10)), 4), base.size // 4))
     resid = _long_ar_resid(base - base.mean(), m)

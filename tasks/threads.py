@@ -26,6 +26,7 @@ from threadpoolctl import ThreadpoolController
 P = ParamSpec("P")
 R = TypeVar("R")
 
+
 @functools.cache
 def _controller() -> ThreadpoolController:
     """Scanning the loaded libraries costs about 4 ms (with Prefect, pyarrow and
