@@ -20,7 +20,7 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 from omegascan.flows.pipeline import RunSummary
-from omegascan.tasks.types import EVENT_NAMES, EVENT_TYPES, format_duration
+from omegascan.tasks.types import EVENT_NAMES, REPORTED_TYPES, format_duration
 
 MAX_TABLE_ROWS = 1000
 """Most rows in the events table (strongest first); the description says how many were left out."""
@@ -85,7 +85,7 @@ def run_markdown(summary: RunSummary, *, n_table_rows: int | None = None) -> str
         "|---|---|---:|",
     ]
     counts = dict(s.by_type)
-    lines += [f"| {k} | {EVENT_NAMES[k]} | {counts.get(k, 0)} |" for k in EVENT_TYPES]
+    lines += [f"| {k} | {EVENT_NAMES[k]} | {counts.get(k, 0)} |" for k in REPORTED_TYPES]
     lines += ["", f"## Strongest events (by |t|, at most {MAX_TOP_SHOWN})", ""]
     if s.top_events:
         lines += [

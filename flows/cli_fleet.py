@@ -20,6 +20,7 @@ from each series' watermark); 130 interrupted.
 from __future__ import annotations
 
 import csv
+import inspect
 import io
 import json
 import logging
@@ -227,6 +228,18 @@ MinPointsOpt = Annotated[
         show_default=False,
     ),
 ]
+WindowOpt = Annotated[
+    str | None,
+    typer.Option(
+        "--window",
+        metavar="SPAN",
+        help="Analyse window summaries instead of raw points (any fixed pandas offset, "
+        "e.g. 10s, 1min): window medians for AO/LS/TC/IO, window spreads for variance "
+        "changes (VC).  --min-points then counts windows.  A series whose model was "
+        "fitted on other windows is refitted.",
+        show_default=False,
+    ),
+]
 SeriesOpt = Annotated[
     list[str] | None,
     typer.Option(
@@ -250,6 +263,12 @@ def prefect_defaults(environ: dict[str, str] | None = None) -> None:
     env = os.environ if environ is None else environ
     for name, value in PREFECT_DEFAULTS.items():
         env.setdefault(name, value)
+
+
+def _fleet_arguments(given: Mapping[str, Any]) -> dict[str, Any]:
+    """The fleet command's own parameters that :func:`fleet_config` checks."""
+    wanted = inspect.signature(fleet_config).parameters
+    return {name: value for name, value in given.items() if name in wanted}
 
 
 def _validation_text(exc: Exception, names: Mapping[str, str]) -> str:
@@ -347,6 +366,7 @@ def fleet_config(
     query: str | None,
     critical: float | None,
     min_points: int | None,
+    window: str | None = None,
 ) -> FleetConfig:
     """Check a fleet command's configuration in the order a person would fix it.
 
@@ -391,6 +411,10 @@ def fleet_config(
     for name, value in (("critical", critical), ("min_points", min_points)):
         if value is not None:
             knobs[name] = value
+    if window is not None:
+        from omegascan.tasks.window import window_text
+
+        knobs["window"] = window_text(window)  # a bad window: ConfigError in its own words
     knobs["workers"] = workers if workers is not None else settings.workers
     try:
         options = RunOptions(**knobs)
@@ -685,7 +709,8 @@ def _seconds(value: float) -> str:
 
 def print_summary(console: Console, summary: RunSummary, *, wall: float | None = None) -> None:
     """A run's summary for people: counts, new events by type, strongest events, failures."""
-    by_type = ", ".join(f"{kind} {n}" for kind, n in summary.by_type)
+    # Variance changes come from windowed runs only: shown when there are some.
+    by_type = ", ".join(f"{k} {n}" for k, n in summary.by_type if k != "VC" or n)
     took = _seconds(summary.seconds)
     if wall is not None:
         took += f" ({_seconds(wall)} with Prefect start-up)"
@@ -762,6 +787,7 @@ def scan(
     query: QueryOpt = None,
     critical: CriticalOpt = None,
     min_points: MinPointsOpt = None,
+    window: WindowOpt = None,
     until: Annotated[
         str | None,
         typer.Option(
@@ -781,20 +807,7 @@ def scan(
     """
     prefect_defaults()
     with usage_errors():
-        config = fleet_config(
-            source=source,
-            db=db,
-            runner=runner,
-            dask_address=dask_address,
-            workers=workers,
-            series_column=series_column,
-            timestamp_column=timestamp_column,
-            value_column=value_column,
-            table=table,
-            query=query,
-            critical=critical,
-            min_points=min_points,
-        )
+        config = fleet_config(**_fleet_arguments(locals()))
         until = _check_time(until, "--until", config.time_kind)
         from omegascan.flows.scan import scan_flow
 
@@ -846,6 +859,7 @@ def backfill(
     query: QueryOpt = None,
     critical: CriticalOpt = None,
     min_points: MinPointsOpt = None,
+    window: WindowOpt = None,
     series: SeriesOpt = None,
     as_json: JsonOpt = False,
 ) -> None:
@@ -856,20 +870,7 @@ def backfill(
     """
     prefect_defaults()
     with usage_errors():
-        config = fleet_config(
-            source=source,
-            db=db,
-            runner=runner,
-            dask_address=dask_address,
-            workers=workers,
-            series_column=series_column,
-            timestamp_column=timestamp_column,
-            value_column=value_column,
-            table=table,
-            query=query,
-            critical=critical,
-            min_points=min_points,
-        )
+        config = fleet_config(**_fleet_arguments(locals()))
         _check_time(start, "--start", config.time_kind)
         _check_time(end, "--end", config.time_kind)
         from omegascan.flows.scan import backfill_flow, split_span
@@ -904,25 +905,13 @@ def refit(
     query: QueryOpt = None,
     critical: CriticalOpt = None,
     min_points: MinPointsOpt = None,
+    window: WindowOpt = None,
     as_json: JsonOpt = False,
 ) -> None:
     """Estimate the models of all (or the --series given) again on all their history."""
     prefect_defaults()
     with usage_errors():
-        config = fleet_config(
-            source=source,
-            db=db,
-            runner=runner,
-            dask_address=dask_address,
-            workers=workers,
-            series_column=series_column,
-            timestamp_column=timestamp_column,
-            value_column=value_column,
-            table=table,
-            query=query,
-            critical=critical,
-            min_points=min_points,
-        )
+        config = fleet_config(**_fleet_arguments(locals()))
         from omegascan.flows.scan import refit_flow
 
         arguments = _flow_arguments(refit_flow, config, series=series or None)
@@ -1192,12 +1181,12 @@ def _demo_config(folder: Path, db: str, workers: int) -> FleetConfig:
 
 
 def _by_type_table(frame: pd.DataFrame) -> Table:
-    from omegascan.tasks.types import EVENT_TYPES
+    from omegascan.tasks.types import REPORTED_TYPES
 
     found = Table(title="Events stored, by type", title_justify="left")
     for name in ("type", "confirmed", "provisional", "total"):
         found.add_column(name, justify="left" if name == "type" else "right")
-    for kind in EVENT_TYPES:
+    for kind in REPORTED_TYPES:
         mine = frame[frame["event_type"] == kind]
         confirmed = int((mine["status"] == "confirmed").sum())
         found.add_row(kind, str(confirmed), str(len(mine) - confirmed), str(len(mine)))
@@ -1242,8 +1231,9 @@ def demo(
     out: Annotated[
         Path,
         typer.Option(
-            help="Folder for the fleet's Parquet files (fleet/), truth.csv, events.json and "
-            "the demo database demo.db (made afresh on every run)."
+            help="Folder for the fleet's Parquet files (fleet/), truth.csv, events.json, "
+            "the report of the events (report/index.html) and the demo database demo.db "
+            "(made afresh on every run)."
         ),
     ] = Path("omegascan-demo"),
     db: Annotated[
@@ -1345,6 +1335,14 @@ def demo(
     on_clean = int(stored["series_id"].isin(clean).sum())
     console.print(_score_table(score, clean=len(clean), on_clean=on_clean))
     example = _example_event(stored)
+
+    # Step 5: a picture of every stored event, for a person to look at.
+    from omegascan.flows.cli_report import write_stored_report
+    from omegascan.tasks.fetch import open_source
+
+    console.print("\n3. Pictures of the stored events (omegascan report):", markup=False)
+    with usage_errors():
+        write_stored_report(url, open_source(folder), out / "report")
     console.print(
         f"\nWhole demo: {_seconds(time.perf_counter() - started)} on {workers} core(s).\n"
         "Events are statistical evidence for a person to judge, not verdicts.\n"

@@ -12,6 +12,7 @@ Registers itself on the shared :data:`omegascan.flows.cli.app` when imported.
 from __future__ import annotations
 
 from collections.abc import Sequence
+from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Annotated, Any
 
@@ -104,6 +105,23 @@ def _models(db: str, series_ids: Sequence[str]) -> tuple[dict[str, FittedModel],
     return models, problems
 
 
+def windowed_values(event: Event, timestamps, values, window: str):
+    """The window series a windowed event was found in: window spreads for a
+    variance change, window medians for the other types (raw points when the
+    read holds too few windows to summarize)."""
+    import pandas as pd
+
+    from omegascan.tasks.errors import SeriesError
+    from omegascan.tasks.window import summarize_windows
+
+    try:
+        summary = summarize_windows(event.series_id, timestamps, values, window)
+    except SeriesError:
+        return timestamps, values
+    series = summary.spread if event.event_type == "VC" else summary.median
+    return pd.Series(summary.index), pd.Series(series)
+
+
 def build_views(
     spec: SourceSpec,
     events: Sequence[Event],
@@ -136,7 +154,10 @@ def build_views(
                     note=f"the source holds no observations of {sid!r} around {e.event_time}",
                 )
                 continue
-            stamps, values = slice_window(e, data["timestamp"], data["value"], model=model)
+            stamps, values = data["timestamp"], data["value"]
+            if model is not None and model.window is not None:
+                stamps, values = windowed_values(e, stamps, values, model.window)
+            stamps, values = slice_window(e, stamps, values, model=model)
             views[(sid, e.event_time)] = EventView(e, stamps, values, model)
     return [views[(e.series_id, e.event_time)] for e in events]
 
@@ -223,7 +244,6 @@ def report(
     from omegascan.flows.settings import Settings
     from omegascan.tasks.errors import OmegascanError
     from omegascan.tasks.fetch import open_source
-    from omegascan.tasks.report import event_from_record
 
     settings = Settings()
     db_url = db or settings.db_url
@@ -233,8 +253,6 @@ def report(
             "the report needs the source the events came from: give --source PATH "
             "(or set OMEGASCAN_SOURCE)"
         )
-    frame = read_selected_events(db_url, run=run, since=since, series=series)
-    events = [event_from_record(rec) for rec in frame.to_dict(orient="records")]
     try:
         spec = open_source(
             location,
@@ -247,11 +265,53 @@ def report(
             query=query,
             timestamp_unit=timestamp_unit,
         )
-        models, model_problems = _models(db_url, sorted({e.series_id for e in events}))
-        views = build_views(spec, events, models)
+        written = write_stored_report(db_url, spec, out, run=run, since=since, series=series)
     except OmegascanError as exc:
         raise _fail_usage(str(exc)) from None
+    missing = written.n_events - written.drawn
+    if missing:
+        _stderr().print(
+            f"omegascan: {missing} event(s) have no picture; the report says why for each",
+            markup=False,
+        )
+        raise typer.Exit(EXIT_SERIES_FAILED)
 
+
+@dataclass(frozen=True, slots=True)
+class WrittenReport:
+    """What :func:`write_stored_report` wrote."""
+
+    index: Path
+    n_events: int
+    n_series: int
+    drawn: int
+
+
+def write_stored_report(
+    db_url: str,
+    spec: SourceSpec,
+    out: Path,
+    *,
+    run: str | None = None,
+    since: str | None = None,
+    series: Sequence[str] | None = None,
+) -> WrittenReport:
+    """The report of the selected stored events at ``out/index.html``, announced on stdout.
+
+    Used by ``omegascan report`` and by the demo.  A stored model that cannot
+    be read is said on stderr (its events are drawn without it).
+
+    Raises
+    ------
+    OmegascanError
+        The database or source cannot be read, or ``out`` cannot be written.
+    """
+    from omegascan.tasks.report import event_from_record
+
+    frame = read_selected_events(db_url, run=run, since=since, series=series)
+    events = [event_from_record(rec) for rec in frame.to_dict(orient="records")]
+    models, model_problems = _models(db_url, sorted({e.series_id for e in events}))
+    views = build_views(spec, events, models)
     selection = [
         f"run {run}" if run else None,
         f"since {since}" if since else None,
@@ -262,27 +322,17 @@ def report(
         ("source", spec.describe),
         ("selection", "; ".join(s for s in selection if s) or "all stored events"),
     ]
-    try:
-        index = _write_with_progress(out, views, facts)
-    except OmegascanError as exc:
-        raise _fail_usage(str(exc)) from None
-
+    index = _write_with_progress(out, views, facts)
     drawn = _count_pictures(index)
     err = _stderr()
     for sid, problem in sorted(model_problems.items()):
         err.print(f"omegascan: series {sid!r}: {problem}", markup=False)
-    missing = len(events) - drawn
+    n_series = len({e.series_id for e in events})
     _stdout().print(
-        f"Report of {len(events)} event(s) in {len({e.series_id for e in events})} series, "
-        f"{drawn} picture(s): {index}",
+        f"Report of {len(events)} event(s) in {n_series} series, {drawn} picture(s): {index}",
         markup=False,
     )
-    if missing:
-        err.print(
-            f"omegascan: {missing} event(s) have no picture; the report says why for each",
-            markup=False,
-        )
-        raise typer.Exit(EXIT_SERIES_FAILED)
+    return WrittenReport(index, len(events), n_series, drawn)
 
 
 def _write_with_progress(out: Path, views: Sequence[EventView], facts: Sequence[Any]) -> Path:

@@ -27,7 +27,7 @@ from omegascan.tasks.batch import (
     plan_batches,
 )
 from omegascan.tasks.fetch import SourceSpec
-from omegascan.tasks.types import EVENT_TYPES, Event, FittedModel
+from omegascan.tasks.types import REPORTED_TYPES, Event, FittedModel
 
 Progress = Callable[[int, int, str], None]
 progress_hook: ContextVar[Progress | None] = ContextVar("omegascan_progress", default=None)
@@ -115,14 +115,19 @@ def plan_works(
     cold_start : timestamp or number, optional
         Where a cold read starts (a backfill's warm-up); None reads all history.
     refit : bool
-        Cold analysis of every series, whatever its cache.
+        Cold analysis of every series, whatever its cache.  A series whose
+        cached model was fitted with another window width than
+        ``options.window`` (or raw when windowed, or windowed when raw) is
+        analysed cold too.
     """
     works = []
     end_bound = _bound(end, time_kind)
     for sid in series_ids:
         model = models.get(sid)
         mark = watermarks.get(sid)
-        if model is not None and mark is not None and not refit:
+        # A model fitted on other windows (or on raw points) cannot filter these.
+        same_grid = model is None or model.window == options.window
+        if model is not None and mark is not None and not refit and same_grid:
             mark_bound = _bound(mark, time_kind)
             if (
                 end_bound is not None
@@ -236,7 +241,7 @@ def summarize(
     were before the run, so new, changed and retracted events are told apart.
     """
     new = changed = retracted = 0
-    by_type = dict.fromkeys(EVENT_TYPES, 0)
+    by_type = dict.fromkeys(REPORTED_TYPES, 0)
     tops: list[Event] = []
     for o in outcomes:
         for e in o.events:

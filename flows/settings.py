@@ -12,6 +12,8 @@ from pydantic import BaseModel, ConfigDict, Field, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
 from omegascan.tasks.batch import AnalysisOptions
+from omegascan.tasks.errors import ConfigError
+from omegascan.tasks.window import window_text
 
 DEFAULT_DB_URL = "sqlite:///omegascan.db"
 Runner = Literal["threads", "processes", "dask"]
@@ -48,6 +50,17 @@ class RunOptions(BaseModel):
     drift_alpha: float = Field(default=0.001, gt=0.0, lt=0.5)
     batch_seconds: float = Field(default=4.0, gt=0.0, le=600.0)
     workers: int = Field(default_factory=lambda: os.cpu_count() or 1, ge=1, le=512)
+    window: str | None = None
+
+    @field_validator("window")
+    @classmethod
+    def _window(cls, value: str | None) -> str | None:
+        if value is None:
+            return None
+        try:
+            return window_text(value)
+        except ConfigError as exc:
+            raise ValueError(str(exc)) from None
 
     @field_validator("periods")
     @classmethod
@@ -65,4 +78,5 @@ class RunOptions(BaseModel):
             refit_after=self.refit_after,
             drift_alpha=self.drift_alpha,
             report_from=report_from,
+            window=self.window,
         )

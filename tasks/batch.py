@@ -33,9 +33,17 @@ from scipy.stats import chi2
 
 from omegascan.tasks.decompose import decompose, regularize
 from omegascan.tasks.detect import detect_events, screen_new_points
-from omegascan.tasks.errors import OmegascanError, SeriesError
+from omegascan.tasks.errors import OmegascanError, SeriesError, TooShortError
 from omegascan.tasks.fetch import SeriesWindow, SourceSpec, read_windows
 from omegascan.tasks.types import Event, FittedModel
+from omegascan.tasks.window import (
+    complete_windows,
+    detect_windowed,
+    last_window_label,
+    screen_windowed,
+    summarize_windows,
+    windowed_model,
+)
 from omegascan.tasks.wrappers import TaskSpec, lazy_task
 
 Mode = Literal["cold", "warm", "unchanged", "deferred", "failed"]
@@ -68,6 +76,11 @@ class AnalysisOptions:
         points' residuals against the model's sigma); a drift refits.
     report_from : str or None
         Events before this time are not reported (a backfill's warm-up).
+    window : str or None
+        Windowed mode (omegascan.tasks.window): raw points are summarized into
+        windows of this width and the engine models the window medians and
+        spreads; ``min_points`` and ``context_points`` then count windows.
+        Canonical text (:func:`~omegascan.tasks.window.window_text`).
     """
 
     critical: float | None = None
@@ -77,6 +90,7 @@ class AnalysisOptions:
     refit_after: float = 1.0
     drift_alpha: float = 0.001
     report_from: str | None = None
+    window: str | None = None
 
 
 @dataclass(frozen=True, slots=True)
@@ -191,17 +205,43 @@ def analyse_series_work(
 def _cold(
     work: SeriesWork, timestamps: pd.Series, values: pd.Series, options: AnalysisOptions
 ) -> SeriesOutcome:
+    if options.window is not None:
+        keep = complete_windows(work.series_id, timestamps, options.window, work.end)
+        timestamps, values = timestamps[keep], values[keep]
     observed = int(pd.to_numeric(values, errors="coerce").notna().sum())
+    if options.window is not None and observed:
+        try:
+            summary = summarize_windows(work.series_id, timestamps, values, options.window)
+            observed = int((summary.count > 0).sum())
+        except TooShortError:
+            observed = 0  # fewer windows with data than any model needs
+    unit = "points" if options.window is None else f"windows of {options.window}"
     if observed < options.min_points:
         return SeriesOutcome(
             work.series_id,
             "deferred",
             points=observed,
-            note=f"{observed} observed points; a first fit needs {options.min_points}",
+            note=f"{observed} observed {unit}; a first fit needs {options.min_points}",
         )
-    series = regularize(work.series_id, timestamps, values)
-    result = detect_events(decompose(series, periods=options.periods), critical=options.critical)
-    events = _reportable(result.events, options.report_from)
+    if options.window is None:
+        series = regularize(work.series_id, timestamps, values)
+        result = detect_events(
+            decompose(series, periods=options.periods), critical=options.critical
+        )
+        found_events, model = result.events, result.model
+        watermark, points = series.label(_last_observed(series.values)), series.nobs
+    else:
+        windowed = detect_windowed(
+            work.series_id,
+            timestamps,
+            values,
+            options.window,
+            critical=options.critical,
+            periods=options.periods,
+        )
+        found_events, model = windowed.events, windowed_model(windowed)
+        watermark, points = last_window_label(windowed.summary), windowed.summary.n_windows
+    events = _reportable(found_events, options.report_from)
     found = {e.event_time for e in events}
     retract = tuple(
         e.event_time
@@ -213,9 +253,9 @@ def _cold(
         "cold",
         events=events,
         retract=retract,
-        model=result.model,
-        watermark=series.label(_last_observed(series.values)),
-        points=series.nobs,
+        model=model,
+        watermark=watermark,
+        points=points,
     )
 
 
@@ -224,24 +264,45 @@ def _warm(
 ) -> SeriesOutcome:
     model = work.model
     assert model is not None
+    unchanged = SeriesOutcome(work.series_id, "unchanged", watermark=work.watermark)
+    if model.window is not None:
+        keep = complete_windows(work.series_id, timestamps, model.window, work.end)
+        timestamps, values = timestamps[keep], values[keep]
     if len(values) == 0:
-        return SeriesOutcome(work.series_id, "unchanged", watermark=work.watermark)
-    series = regularize(work.series_id, timestamps, values)
-    after = _after_watermark(series.index, work.watermark)
+        return unchanged
+    if model.window is None:
+        series = regularize(work.series_id, timestamps, values)
+        index = series.index
+        last = series.label(_last_observed(series.values))
+
+        def screen(start: int, fixed: list[Event]):
+            return screen_new_points(
+                model, series, series.nobs - start, known=fixed, critical=options.critical
+            )
+    else:
+        summary = summarize_windows(work.series_id, timestamps, values, model.window)
+        index = summary.index
+        last = last_window_label(summary)
+
+        def screen(start: int, fixed: list[Event]):
+            return screen_windowed(
+                model, summary, index[start], known=fixed, critical=options.critical
+            )
+
+    after = _after_watermark(index, work.watermark)
     if not after.any():
-        return SeriesOutcome(work.series_id, "unchanged", watermark=work.watermark)
+        return unchanged
     first_new = int(np.argmax(after))
     # Stored provisional events inside the window are examined again.
-    positions = {e.event_time: _position(series, e.event_time) for e in work.known}
+    positions = {e.event_time: _position(index, e.event_time) for e in work.known}
     pending = [
         e for e in work.known if e.status == "provisional" and positions[e.event_time] is not None
     ]
     test_from = min([first_new] + [positions[e.event_time] for e in pending])
     retest = {e.event_time for e in work.known if (positions[e.event_time] or -1) >= test_from}
     fixed = [e for e in work.known if e.event_time not in retest]
-    n_test = series.nobs - test_from
-    result = screen_new_points(model, series, n_test, known=fixed, critical=options.critical)
-    if _needs_refit(model, work, series, first_new, result, options):
+    result = screen(test_from, fixed)
+    if _needs_refit(model, index, first_new, result, options):
         return SeriesOutcome(work.series_id, "cold", note="refit")
     events = _reportable(result.events, options.report_from)
     found = {e.event_time for e in events}
@@ -255,27 +316,30 @@ def _warm(
         "warm",
         events=events,
         retract=retract,
-        watermark=series.label(_last_observed(series.values)),
+        watermark=last,
         points=int(after.sum()),
     )
 
 
 def _needs_refit(
     model: FittedModel,
-    work: SeriesWork,
-    series,
+    index: pd.Index,
     first_new: int,
     result,
     options: AnalysisOptions,
 ) -> bool:
-    """Stale by age, a drift of the residual variance, or a confirmed level shift."""
-    tested_since_fit = _points_since(series, model.fitted_through, model.step_seconds)
+    """Stale by age, a drift of the residual variance, or a confirmed lasting step.
+
+    A lasting step is a level shift or, in windowed mode, a variance change:
+    either leaves the cached model describing a series that is no longer there.
+    """
+    tested_since_fit = _points_since(index, model.fitted_through, model.step_seconds)
     if tested_since_fit is not None and tested_since_fit > options.refit_after * model.nobs:
         return True
-    if any(e.event_type == "LS" and e.status == "confirmed" for e in result.events):
+    if any(e.event_type in ("LS", "VC") and e.status == "confirmed" for e in result.events):
         return True
     scale = _resid_scale(result.notes)
-    n_new = series.nobs - first_new
+    n_new = len(index) - first_new
     if scale is not None and n_new >= 20:
         # n s^2 / sigma^2 ~ chi2(n) without drift (robust s from the new points).
         stat = n_new * scale**2
@@ -350,18 +414,18 @@ def _after_watermark(index: pd.Index, watermark: str | None) -> np.ndarray:
     return np.asarray(index > mark)
 
 
-def _position(series, label: str) -> int | None:
-    when = _as_time(label, series.index)
-    hits = np.flatnonzero(np.asarray(series.index == when))
+def _position(index: pd.Index, label: str) -> int | None:
+    when = _as_time(label, index)
+    hits = np.flatnonzero(np.asarray(index == when))
     return int(hits[0]) if hits.size else None
 
 
-def _points_since(series, label: str | None, step_seconds: float | None) -> float | None:
+def _points_since(index: pd.Index, label: str | None, step_seconds: float | None) -> float | None:
     if label is None or not step_seconds:
         return None
-    when = _as_time(label, series.index)
-    last = series.index[-1]
-    if isinstance(series.index, pd.DatetimeIndex):
+    when = _as_time(label, index)
+    last = index[-1]
+    if isinstance(index, pd.DatetimeIndex):
         return (last - when).total_seconds() / step_seconds
     return (float(last) - float(when)) / step_seconds
 

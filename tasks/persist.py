@@ -47,7 +47,7 @@ from sqlalchemy.engine import URL, Connection, Engine
 from sqlalchemy.exc import ArgumentError, DBAPIError, NoSuchModuleError
 
 from omegascan.tasks.errors import ConfigError, ModelError, SourceError
-from omegascan.tasks.types import EVENT_TYPES, Event, FittedModel
+from omegascan.tasks.types import REPORTED_TYPES, Event, FittedModel
 
 __all__ = [
     "BOOKKEEPING_COLUMNS",
@@ -180,7 +180,7 @@ series_events = sa.Table(
     sa.Column("triage_reason", sa.Text, nullable=True),
     sa.Column("triage_at", UtcDateTime, nullable=True),
     sa.PrimaryKeyConstraint("series_id", "event_time"),
-    sa.CheckConstraint(_in("event_type", EVENT_TYPES), name="event_type"),
+    sa.CheckConstraint(_in("event_type", REPORTED_TYPES), name="event_type"),
     sa.CheckConstraint(_in("status", EVENT_STATUSES), name="status"),
     sa.CheckConstraint(
         "triage_state IS NULL OR " + _in("triage_state", TRIAGE_STATES), name="triage_state"
@@ -703,7 +703,7 @@ def _event_values(event: Event) -> dict[str, Any]:
     where = f"event of series {event.series_id!r} at {event.event_time!r}"
     _text(event.series_id, "series_id")
     _text(event.event_time, f"event_time of series {event.series_id!r}")
-    _one_of(event.event_type, EVENT_TYPES, f"{where}: event_type")
+    _one_of(event.event_type, REPORTED_TYPES, f"{where}: event_type")
     _one_of(event.status, EVENT_STATUSES[:2], f"{where}: status")
     values: dict[str, Any] = {
         "series_id": event.series_id,

@@ -41,7 +41,7 @@ import pandas as pd
 from omegascan.tasks.detect import SETTLE, series_shape
 from omegascan.tasks.errors import ConfigError, SeriesError
 from omegascan.tasks.fit import psi_weights
-from omegascan.tasks.types import EVENT_NAMES, EVENT_TYPES, Event, FittedModel
+from omegascan.tasks.types import EVENT_NAMES, EVENT_TYPES, REPORTED_TYPES, Event, FittedModel
 
 if TYPE_CHECKING:
     from matplotlib.figure import Figure
@@ -97,6 +97,7 @@ TYPE_STYLES: dict[str, TypeStyle] = {
     "LS": TypeStyle("#3a6ea5", "s", ".."),
     "TC": TypeStyle("#5a9e6f", "^", "xx"),
     "IO": TypeStyle("#9b5fa5", "D", "\\\\"),
+    "VC": TypeStyle("#b23a48", "v", "--"),
 }
 """One colour, marker and hatch per type, in every figure and in the page."""
 
@@ -117,6 +118,7 @@ _SHAPE_WORDS = {
     "LS": "step from the event on",
     "TC": "fading jump, omega x delta^k",
     "IO": "shock through the model, omega x psi_k",
+    "VC": "step in the window spread from the event on",
 }
 
 
@@ -145,7 +147,7 @@ class ReportSummary:
     """Counts shown at the top of a report.
 
     ``by_type`` holds ``(type, confirmed, provisional, total)`` per type in
-    :data:`~omegascan.tasks.types.EVENT_TYPES` order; ``by_group`` holds
+    :data:`~omegascan.tasks.types.REPORTED_TYPES` order; ``by_group`` holds
     ``(group, counts per type in the same order, total)`` per series group,
     groups sorted by name; ``strongest`` the indices of the events, largest
     |t| first.
@@ -409,7 +411,7 @@ def effect_curve(
         return out
     length = int(k[after].max()) + 1
     psi = None
-    kind_of_shape = event.event_type
+    kind_of_shape = "LS" if event.event_type == "VC" else event.event_type  # a step in spread
     if kind_of_shape == "IO":
         if model is None:
             kind_of_shape = "AO"
@@ -529,7 +531,10 @@ def event_figure(
     ax_txt = fig.add_subplot(grid[1, 1])
 
     # Observed and effect-removed series.
-    ax_obs.plot(x, y, label="observed", **OBSERVED_STYLE)
+    observed = "observed"
+    if event.window_start is not None:  # windowed mode: the series the event was found in
+        observed = "window spread" if event.event_type == "VC" else "window median"
+    ax_obs.plot(x, y, label=observed, **OBSERVED_STYLE)
     ax_obs.plot(x, y - effect, label="with the effect removed", **ADJUSTED_STYLE)
     ax_obs.axvline(
         x_at, color=style.colour, linestyle=":", linewidth=1.6, label="event time", zorder=1
@@ -585,7 +590,7 @@ def event_figure(
 
     # Type weights.
     weights = event.weights
-    kinds = list(EVENT_TYPES)
+    kinds = list(weights) if weights else list(EVENT_TYPES)
     rows = np.arange(len(kinds))[::-1]
     for row, kind_name in zip(rows, kinds, strict=True):
         own = TYPE_STYLES[kind_name]
@@ -641,15 +646,15 @@ def _tick_text(tick: Any) -> str:
 def summarize_events(events: Sequence[Event]) -> ReportSummary:
     """Counts by type and status, by series group, and the order by strength."""
     by_type = []
-    for kind in EVENT_TYPES:
+    for kind in REPORTED_TYPES:
         mine = [e for e in events if e.event_type == kind]
         confirmed = sum(e.status == "confirmed" for e in mine)
         by_type.append((kind, confirmed, len(mine) - confirmed, len(mine)))
     groups: dict[str, list[int]] = {}
     for e in events:
-        counts = groups.setdefault(series_group(e.series_id), [0] * len(EVENT_TYPES))
-        if e.event_type in EVENT_TYPES:
-            counts[EVENT_TYPES.index(e.event_type)] += 1
+        counts = groups.setdefault(series_group(e.series_id), [0] * len(REPORTED_TYPES))
+        if e.event_type in REPORTED_TYPES:
+            counts[REPORTED_TYPES.index(e.event_type)] += 1
     by_group = tuple((g, tuple(c), sum(c)) for g, c in sorted(groups.items()))
     strongest = tuple(
         sorted(range(len(events)), key=lambda i: (-_abs_t(events[i]), events[i].series_id))
@@ -791,7 +796,7 @@ def render_report(
         "<p>A group is a series id up to its first &ldquo;/&rdquo;.</p>",
         "<table>",
         "<thead><tr><th>group</th>"
-        + "".join(f"<th>{_badge(k)}</th>" for k in EVENT_TYPES)
+        + "".join(f"<th>{_badge(k)}</th>" for k in REPORTED_TYPES)
         + "<th>total</th></tr></thead>",
         "<tbody>",
     ]

@@ -22,6 +22,8 @@ EVENT_TYPES: tuple[EventType, ...] = ("AO", "LS", "TC", "IO")
 """The four intervention types the engine classifies.  ``"VC"`` (variance
 change) is not among them: windowed mode reports it from a step in the window
 spreads (omegascan.tasks.window)."""
+REPORTED_TYPES: tuple[EventType, ...] = (*EVENT_TYPES, "VC")
+"""Every type an event row can carry: the four, and windowed mode's variance change."""
 EVENT_NAMES: dict[str, str] = {
     "AO": "additive outlier",
     "LS": "level shift",
@@ -152,6 +154,11 @@ class FittedModel:
     grid they are anchored to.  ``method`` says how it was obtained (``"mle"``,
     ``"given"`` for fixed orders, ``"baseline"`` for the robust fallback) and
     ``fallback`` why a simpler model was taken, if one was.
+
+    A model fitted in windowed mode (omegascan.tasks.window) is the model of
+    the window medians; ``window`` names the width (pandas offset text such as
+    ``"10s"``) and ``spread`` holds the model of the log window spreads (None
+    when the spreads could not be modelled).
     """
 
     series_id: str
@@ -171,6 +178,8 @@ class FittedModel:
     step_seconds: float | None = None
     fitted_through: str | None = None
     fingerprint: str | None = None
+    window: str | None = None
+    spread: FittedModel | None = None
 
     @property
     def param_dict(self) -> dict[str, float]:
@@ -233,6 +242,8 @@ class FittedModel:
                 step_seconds=_optional_float(data.get("step_seconds")),
                 fitted_through=data.get("fitted_through"),
                 fingerprint=data.get("fingerprint"),
+                window=data.get("window"),
+                spread=None if data.get("spread") is None else cls.from_dict(data["spread"]),
             )
         except (KeyError, TypeError, ValueError) as exc:
             raise ModelError(

@@ -44,7 +44,7 @@ from omegascan.tasks.errors import (
     TimestampError,
     TooShortError,
 )
-from omegascan.tasks.types import DetectionResult, Event, format_duration
+from omegascan.tasks.types import DetectionResult, Event, FittedModel, format_duration
 
 if TYPE_CHECKING:
     from omegascan.tasks.fetch import SourceSpec
@@ -457,7 +457,10 @@ def detect_windowed(
        back to the series' units (t statistics are scale-free), ``level`` and
        ``effect_pct`` taken from the raw window medians.
     4. Every event gets ``window_start``/``window_end`` (ISO text) and
-       ``event_time`` = its window start; events in window order.
+       ``event_time`` = its window start; events in window order.  A window
+       names one event (the events table is keyed by series and time): when a
+       level event and a variance change fall in the same window, the level
+       event is kept and the variance change dropped.
 
     A level shift part-way through a window moves that window's median part
     of the way: it may come out as two level shifts in consecutive windows
@@ -541,8 +544,8 @@ def detect_windowed(
     ]
     events += [_windowed(_as_variance_change(ev), width) for ev in changes]
 
-    # Step 4: in window order.
-    events.sort(key=lambda ev: (ev.position, ev.event_type))
+    # Step 4: in window order, one event per window.
+    events = _one_per_window(events)
     return WindowedResult(
         series_id=series_id,
         window=width,
@@ -552,6 +555,154 @@ def detect_windowed(
         events=tuple(events),
         notes=tuple(notes),
     )
+
+
+def window_text(window: str | pd.Timedelta | timedelta) -> str:
+    """The canonical text of a window width (``"10s"``, ``"90s"``, ``"h"``...).
+
+    The fleet flows store it with each windowed model, so a run with another
+    width (``"10S"``, ``"10 seconds"`` are the same width) is recognised as
+    the same or as a change that needs a new model.
+    """
+    return str(to_offset(parse_window(window)).freqstr)
+
+
+def complete_windows(series_id: str, timestamps, window: str | pd.Timedelta, end=None):
+    """Which raw points lie in complete windows, as a boolean array.
+
+    The last window holding data may still be filling (a scan reads up to
+    now); it is held back for the next run unless ``end`` (the read's
+    exclusive upper bound, a timestamp) is at or after its end.  Every earlier
+    window is complete: data arrive in time order.
+    """
+    width = parse_window(window)
+    stamps, _ = _datetimes(series_id, timestamps)
+    if stamps.size == 0:
+        return np.zeros(0, dtype=bool)
+    w_ns = int(width.value)
+    key = np.floor_divide(stamps.view("i8"), w_ns)
+    last = int(key.max())
+    if end is not None:
+        bound = pd.Timestamp(end)
+        if bound.tzinfo is not None:
+            bound = bound.tz_convert("UTC").tz_localize(None)
+        if (last + 1) * w_ns <= int(bound.as_unit("ns").value):
+            return np.ones(stamps.size, dtype=bool)
+    return key < last
+
+
+def windowed_model(result: WindowedResult) -> FittedModel:
+    """The model to cache for a windowed series: the level model with the spread model inside."""
+    return replace(
+        result.level.model,
+        window=window_text(result.window),
+        spread=None if result.spread is None else result.spread.model,
+    )
+
+
+def last_window_label(summary: WindowSummary) -> str:
+    """ISO text of the last window start holding data (a windowed series' watermark)."""
+    ok = np.flatnonzero(summary.count > 0)
+    return summary.index[int(ok[-1]) if ok.size else -1].isoformat()
+
+
+def screen_windowed(
+    model: FittedModel,
+    summary: WindowSummary,
+    test_from: pd.Timestamp,
+    *,
+    known: Sequence[Event] = (),
+    critical: float | None = None,
+) -> DetectionResult:
+    """Test the newest windows of a series against its cached windowed model.
+
+    The warm counterpart of :func:`detect_windowed`, for the fleet flows: no
+    estimation, only the engine's filter of new points
+    (:func:`~omegascan.tasks.detect.screen_new_points`) on the window medians
+    and on the log window spreads.
+
+    Parameters
+    ----------
+    model : FittedModel
+        A model from :func:`windowed_model` (``model.window`` set).
+    summary : WindowSummary
+        Context windows followed by the new ones, of the model's width.
+    test_from : pandas.Timestamp
+        Start of the first window that may carry events.
+    known : sequence of Event
+        Stored events of the series (level events and variance changes); their
+        effects are removed first.
+    critical : float, optional
+
+    Returns
+    -------
+    DetectionResult
+        Level events and variance changes among the tested windows, with
+        window bounds; the level model; the level screen's notes.
+
+    Notes
+    -----
+    The cached level model's sigma is in units of the first variance regime
+    of the data it was fitted on (medians are standardized by the variance
+    changes found then).  The newest windows are tested with sigma scaled by
+    the product of the known variance changes' ratios, which is exactly the
+    standardization applied to the points after the last change; known level
+    events are in series units and removed as they are.  Known variance
+    changes are removed from the log spreads as steps of log(ratio).
+    """
+    from omegascan.tasks.decompose import regularize
+    from omegascan.tasks.detect import screen_new_points
+
+    width = summary.window
+    sid = summary.series_id
+    changes = [e for e in known if e.event_type == "VC"]
+    ratio = 1.0
+    for ev in changes:
+        if ev.effect_pct is not None and ev.effect_pct > -100.0:
+            ratio *= 1.0 + ev.effect_pct / 100.0
+    level_model = replace(model, sigma2=model.sigma2 * ratio**2) if ratio != 1.0 else model
+    level_series = regularize(sid, summary.index, summary.median)
+    n_new = int(np.sum(np.asarray(level_series.index >= test_from)))
+    if n_new == 0:
+        raise ValueError("no window to test at or after test_from")
+    level = screen_new_points(
+        level_model,
+        level_series,
+        n_new,
+        known=[e for e in known if e.event_type != "VC"],
+        critical=critical,
+    )
+    events = [_windowed(ev, width) for ev in level.events]
+    notes = list(level.notes)
+    usable = (summary.count >= MIN_SPREAD_POINTS) & (summary.spread > 0)
+    new = np.asarray(summary.index >= test_from)
+    if model.spread is not None and (usable & new).any() and int(usable.sum()) >= MIN_WINDOWS:
+        log_spread = np.where(usable, np.log(np.where(usable, summary.spread, 1.0)), np.nan)
+        spread_series = regularize(sid, summary.index, log_spread)
+        n_spread = int(np.sum(np.asarray(spread_series.index >= test_from)))
+        steps = [
+            replace(ev, event_type="LS", effect=math.log(1.0 + ev.effect_pct / 100.0), decay=None)
+            for ev in changes
+            if ev.effect_pct is not None and ev.effect_pct > -100.0
+        ]
+        if n_spread:
+            spread = screen_new_points(
+                model.spread, spread_series, n_spread, known=steps, critical=critical
+            )
+            events += [
+                _windowed(_as_variance_change(ev), width)
+                for ev in spread.events
+                if ev.event_type == "LS"
+            ]
+    return replace(level, events=_one_per_window(events), notes=tuple(notes))
+
+
+def _one_per_window(events: Sequence[Event]) -> tuple[Event, ...]:
+    """Events in window order, at most one per window (a level event before a VC)."""
+    chosen: dict[pd.Timestamp, Event] = {}
+    for ev in sorted(events, key=lambda e: e.event_type == "VC"):
+        chosen.setdefault(pd.Timestamp(ev.event_time), ev)
+    return tuple(chosen[t] for t in sorted(chosen))
 
 
 def drill(

@@ -23,6 +23,7 @@ import shutil
 import subprocess
 import sys
 from pathlib import Path
+from types import SimpleNamespace
 
 import numpy as np
 import pandas as pd
@@ -32,7 +33,9 @@ from typer.testing import CliRunner
 from omegascan.flows.cli import app
 from omegascan.flows.demo import score_against_truth
 from omegascan.tasks import persist  # imports Prefect here, so its logging binds to the real stderr
+from omegascan.tasks.report import picture_name
 from tests.flows.fleet import make_fleet, write_source
+from tests.tasks.test_report import check_page, png_size
 
 runner = CliRunner()
 
@@ -453,6 +456,22 @@ def test_demo_runs_the_pipeline_and_scores_the_stored_events(prefect_server, tmp
     assert [r["event_time"] for r in records] == stored["event_time"].tolist()
     assert f"omegascan events --db {db} --json" in result.stdout
     assert "open_level_shifts" in result.stdout and "daily_event_counts" in result.stdout
+
+    # The report of the demo run: every stored event has its picture, so every
+    # injected event the pipeline found is drawn (score.matches pairs them).
+    report = out / "report"
+    page = check_page(report / "index.html")  # parses; links only to files that exist
+    pictures = sorted(p.name for p in report.glob("event-*.png"))
+    assert len(pictures) == len(stored) and sorted(str(i["src"]) for i in page.images) == pictures
+    drawn = {name.split("-", 2)[2] for name in pictures}  # without the rank prefix
+    for match in score.matches.itertuples():
+        event = SimpleNamespace(series_id=match.series_id, event_time=match.event_time)
+        assert picture_name(0, event).split("-", 2)[2] in drawn, match
+    assert len(score.matches) == score.n_matched > 0
+    for name in pictures[:5]:
+        width, height = png_size(report / name)
+        assert width >= 400 and height >= 250
+    assert f"{report / 'index.html'}" in result.stdout
 
     # A second demo starts from a fresh database and ends with the same tables.
     first = persist.content_snapshot(db)

@@ -68,7 +68,8 @@ def test_prefect_yaml_declares_the_three_deployments_on_one_process_pool():
     assert set(deployments) == set(EXPECTED)
     for name, config in deployments.items():
         assert config["work_pool"]["name"] == POOL, name
-        assert config["entrypoint"].startswith("flows/scan.py:"), name
+        assert config["entrypoint"].startswith("flows/deployed.py:"), name
+        assert config["work_pool"]["job_variables"]["env"]["OMEGASCAN_RUNNER"] == "processes"
     raw = yaml.safe_load(PREFECT_FILE.read_text())
     assert not raw.get("build") and not raw.get("push")  # code is installed on the worker
 
@@ -83,6 +84,41 @@ def test_entrypoints_load_our_flows(monkeypatch):
         assert isinstance(loaded, Flow), name
         assert loaded.name == expected.name, name
         assert loaded.fn.__name__ == expected.fn.__name__, name
+
+
+@pytest.mark.parametrize(
+    ("env", "runner"),
+    [
+        ({}, "ThreadPoolTaskRunner"),
+        ({"OMEGASCAN_RUNNER": "processes", "OMEGASCAN_WORKERS": "3"}, "ProcessPoolTaskRunner"),
+        (
+            {"OMEGASCAN_RUNNER": "dask", "OMEGASCAN_DASK_ADDRESS": "tcp://10.0.0.5:8786"},
+            "DaskTaskRunner",
+        ),
+    ],
+)
+def test_deployed_flows_take_the_task_runner_from_the_environment(monkeypatch, env, runner):
+    """A worker importing the entrypoints gets the runner OMEGASCAN_RUNNER names."""
+    import importlib
+
+    from prefect.flows import load_flow_from_entrypoint
+
+    for key in ("OMEGASCAN_RUNNER", "OMEGASCAN_WORKERS", "OMEGASCAN_DASK_ADDRESS"):
+        monkeypatch.delenv(key, raising=False)
+    for key, value in env.items():
+        monkeypatch.setenv(key, value)
+    monkeypatch.chdir(ROOT)
+    import omegascan.flows.deployed as deployed
+
+    importlib.reload(deployed)  # settings are read at import, as on a worker
+    for name, config in _deployments().items():
+        loaded = load_flow_from_entrypoint(config["entrypoint"], use_placeholder_flow=False)
+        assert type(loaded.task_runner).__name__ == runner, name
+        assert loaded.name == EXPECTED[name][0].name, name
+    if runner == "ProcessPoolTaskRunner":
+        assert deployed.scan.task_runner._max_workers == 3  # no public accessor in Prefect 3
+    if runner == "DaskTaskRunner":
+        assert deployed.scan.task_runner.address == "tcp://10.0.0.5:8786"
 
 
 def test_parameters_are_accepted_by_the_flows_and_the_server_schema(monkeypatch):

@@ -224,6 +224,50 @@ def test_migrate_again_is_a_no_op_and_cwd_does_not_matter(
     assert table_snapshot(engine) == before
 
 
+def _alembic(engine: sa.Engine, action: str, revision: str) -> None:
+    config = Config()
+    config.set_main_option("script_location", str(migrations_dir()))
+    with engine.begin() as conn:
+        config.attributes["connection"] = conn
+        getattr(command, action)(config, revision)
+
+
+def test_migration_0002_keeps_rows_and_admits_variance_changes(url: str) -> None:
+    """0001 -> 0002 keeps events, revisions, triage and views; VC rows pass; downgrade undoes it."""
+    engine = persist.connect(url)
+    try:
+        migrate(engine, revision="0001")
+        write_events(engine, "run-1", [make_event()], at=T0)
+        set_triage(engine, "edge-latency", "2024-03-01T10:00:00Z", "explained", reason="rollout")
+        vc = make_event(event_time="2024-03-02T10:00:00Z", event_type="VC")
+        with pytest.raises(sa.exc.IntegrityError), engine.begin() as conn:  # 0001 refuses VC
+            conn.execute(
+                sa.insert(persist.series_events),
+                [
+                    {
+                        **event_row(engine, "edge-latency", "2024-03-01T10:00:00Z"),
+                        "event_time": "x",
+                        "event_type": "VC",
+                    }
+                ],
+            )
+        before = table_snapshot(engine)
+        migrate(engine)
+        assert table_snapshot(engine) == before
+        with engine.connect() as conn:
+            assert set(sa.inspect(conn).get_view_names()) == VIEW_NAMES
+            assert conn.execute(sa.text("SELECT COUNT(*) FROM open_level_shifts")).scalar() == 1
+        write_events(engine, "run-2", [vc], at=T0)
+        assert event_row(engine, "edge-latency", "2024-03-02T10:00:00Z")["event_type"] == "VC"
+        assert [r["change"] for r in revisions(engine)] == ["new", "new"]
+        _alembic(engine, "downgrade", "0001")
+        with engine.connect() as conn:
+            kinds = conn.execute(sa.select(persist.series_events.c.event_type)).scalars().all()
+        assert kinds == ["LS"]
+    finally:
+        engine.dispose()
+
+
 def test_downgrade_removes_tables_and_views(url: str) -> None:
     engine = init_db(url)
     try:

@@ -50,7 +50,7 @@ from omegascan.tasks.report import (
     window_points,
     write_report,
 )
-from omegascan.tasks.types import EVENT_TYPES, Event, FittedModel
+from omegascan.tasks.types import EVENT_TYPES, REPORTED_TYPES, Event, FittedModel
 from tests.flows.fleet import make_fleet
 
 N, T_EVENT, PHI, THETA, OMEGA, DELTA = 240, 120, 0.6, 0.3, 7.5, 0.7
@@ -303,8 +303,10 @@ def test_figure_refuses_data_that_does_not_reach_the_event():
 
 
 def test_styles_tell_types_apart_without_colour():
-    assert len({s.marker for s in TYPE_STYLES.values()}) == len(EVENT_TYPES)
-    assert len({s.hatch for s in TYPE_STYLES.values()}) == len(EVENT_TYPES)
+    assert set(TYPE_STYLES) == set(REPORTED_TYPES)  # the four and windowed mode's VC
+    assert len({s.marker for s in TYPE_STYLES.values()}) == len(REPORTED_TYPES)
+    assert len({s.hatch for s in TYPE_STYLES.values()}) == len(REPORTED_TYPES)
+    assert len({s.colour for s in TYPE_STYLES.values()}) == len(REPORTED_TYPES)
     assert OBSERVED_STYLE["linestyle"] != ADJUSTED_STYLE["linestyle"]
 
 
@@ -330,7 +332,7 @@ def test_summary_counts_by_type_and_group_and_orders_by_strength():
     # Reference: the same counts by collections.Counter over the input.
     by_type = Counter(e.event_type for e in events)
     assert {k: total for k, _, _, total in summary.by_type} == {
-        k: by_type.get(k, 0) for k in EVENT_TYPES
+        k: by_type.get(k, 0) for k in REPORTED_TYPES
     }
     assert dict((k, p) for k, _, p, _ in summary.by_type)["LS"] == 1
     groups = Counter(series_group(e.series_id) for e in events)

@@ -34,13 +34,16 @@ from omegascan.flows import cli_window  # importing it registers `drill` on the 
 from omegascan.flows.cli import app
 from omegascan.tasks.errors import ConfigError, SeriesError, SourceError, TooShortError
 from omegascan.tasks.fetch import open_source
-from omegascan.tasks.types import EVENT_NAMES, EVENT_TYPES
+from omegascan.tasks.types import EVENT_NAMES, EVENT_TYPES, FittedModel
 from omegascan.tasks.window import (
     MIN_WINDOWS,
+    complete_windows,
     detect_windowed,
     drill,
     parse_window,
+    screen_windowed,
     summarize_windows,
+    windowed_model,
 )
 
 SID = "array-07/write_latency_ms"
@@ -266,6 +269,48 @@ def test_windowed_mode_finds_the_injected_ls_tc_and_vc(windowed, raw):
     # tested.
     others = len(events) - len(shifts) - 2
     assert others <= 2, [(e.event_type, e.event_time, e.t_stat) for e in events]
+
+
+def test_warm_screen_of_new_windows_agrees_with_the_cold_analysis(raw, windowed):
+    """screen_windowed on day 3 with a model of days 1-2 finds the VC the cold run found.
+
+    Reference: the cold analysis of all three days (detect_windowed) and the
+    injected doubling of the noise sd (+100 %).  The warm screen has no
+    re-estimation, so its VC is estimated against the cached spread model; the
+    two estimates of the same step agree within 15 % of the ratio.
+    """
+    cut = START + pd.Timedelta(days=2)
+    early = raw[raw["timestamp"] < cut]
+    model = windowed_model(detect_windowed(SID, early["timestamp"], early["value"], "1min"))
+    assert model.window == "min" and model.spread is not None
+    assert FittedModel.from_json(model.to_json()) == model  # cached with its spread model
+    known = [e for e in windowed.events if pd.Timestamp(e.event_time) < cut]
+    context = raw[raw["timestamp"] >= cut - pd.Timedelta(hours=4)]
+    summary = summarize_windows(SID, context["timestamp"], context["value"], "1min")
+    found = screen_windowed(model, summary, cut, known=known)
+    (vc,) = [e for e in found.events if e.event_type == "VC"]
+    (cold_vc,) = _near(windowed.events, "VC", VC_AT)
+    assert vc.event_time == cold_vc.event_time == VC_AT.isoformat()
+    assert vc.window_end == (VC_AT + MINUTE).isoformat()
+    assert_allclose(1 + vc.effect_pct / 100, 1 + cold_vc.effect_pct / 100, rtol=0.15)
+    assert all(pd.Timestamp(e.event_time) >= cut for e in found.events)
+    # Known variance changes scale the level test: with the VC known, the
+    # windows after it are tested with a doubled sigma and raise no level event.
+    after = screen_windowed(model, summary, VC_AT + pd.Timedelta(hours=1), known=[*known, vc])
+    assert not [e for e in after.events if e.event_type != "VC"]
+
+
+def test_windowed_events_keep_one_event_per_window(windowed):
+    times = [e.event_time for e in windowed.events]
+    assert len(times) == len(set(times)) and times == sorted(times)
+
+
+def test_complete_windows_hold_back_the_window_still_filling():
+    stamps = pd.date_range("2026-03-02 00:00:00", periods=150, freq="s")  # 2.5 minutes
+    keep = complete_windows("s1", stamps, "1min")
+    assert keep.sum() == 120 and not keep[120:].any()
+    assert complete_windows("s1", stamps, "1min", end=stamps[0] + pd.Timedelta("3min")).all()
+    assert complete_windows("s1", stamps, "1min", end=stamps[-1]).sum() == 120
 
 
 def test_windowed_effects_stay_within_the_data(windowed):
