@@ -15,8 +15,11 @@ Per series (``analyse_series_work``, pure):
 - **warm**: only the points after the watermark are tested against the cached
   model (no estimation), together with the span of stored *provisional*
   events, which are re-examined with the new data and confirmed, reclassified
-  or retracted; the model is refitted (cold, same run) when it is stale by age,
-  when the new residuals' variance drifted, or after a confirmed level shift.
+  or retracted; the model is refitted (cold, same run) when it is stale by age
+  or when the new residuals' variance drifted; after a confirmed level shift
+  its coefficients are estimated again on the whole history with the known
+  events removed (orders kept: one likelihood fit, not a cold analysis; in
+  windowed mode, and after a variance change, the refit is cold).
 """
 
 from __future__ import annotations
@@ -32,7 +35,7 @@ import pandas as pd
 from scipy.stats import chi2
 
 from omegascan.tasks.decompose import decompose, regularize
-from omegascan.tasks.detect import detect_events, screen_new_points
+from omegascan.tasks.detect import detect_events, reestimate, screen_new_points
 from omegascan.tasks.errors import OmegascanError, SeriesError, TooShortError
 from omegascan.tasks.fetch import SeriesWindow, SourceSpec, read_windows
 from omegascan.tasks.types import Event, FittedModel
@@ -129,6 +132,7 @@ class SeriesOutcome:
     points: int = 0
     seconds: float = 0.0
     note: str | None = None
+    reestimate: tuple[Event, ...] | None = None
 
 
 @dataclass(frozen=True, slots=True)
@@ -161,12 +165,19 @@ def run_batch(
         if data is None:
             data = frame.iloc[0:0]
         outcome = analyse_series_work(work, data["timestamp"], data["value"], options)
-        if outcome.mode == "cold" and work.model is not None and work.start is not None:
+        if outcome.reestimate is not None:
+            # A confirmed level shift: the coefficients are estimated again on all history.
+            full = data if work.start is None else _history(spec, work)
+            outcome = _reestimated(work, outcome, full["timestamp"], full["value"])
+        if outcome.mode == "cold" and work.model is not None and not work.refit:
             # A warm read turned into a refit: the model needs the whole history.
-            full = read_windows(spec, [SeriesWindow(work.series_id, None, work.end)])
+            full = data if work.start is None else _history(spec, work)
+            why = outcome.note
             outcome = analyse_series_work(
                 replace(work, refit=True), full["timestamp"], full["value"], options
             )
+            if outcome.note is None:
+                outcome = replace(outcome, note=why)
         outcomes.append(outcome)
     return BatchOutcome(
         outcomes=tuple(outcomes),
@@ -302,8 +313,10 @@ def _warm(
     retest = {e.event_time for e in work.known if (positions[e.event_time] or -1) >= test_from}
     fixed = [e for e in work.known if e.event_time not in retest]
     result = screen(test_from, fixed)
-    if _needs_refit(model, index, first_new, result, options):
-        return SeriesOutcome(work.series_id, "cold", note="refit")
+    why = _needs_refit(model, index, first_new, result, options)
+    light = why is not None and why.startswith("confirmed") and model.window is None
+    if why is not None and not light:
+        return SeriesOutcome(work.series_id, "cold", note=f"refit: {why}")
     events = _reportable(result.events, options.report_from)
     found = {e.event_time for e in events}
     retract = tuple(
@@ -318,7 +331,35 @@ def _warm(
         retract=retract,
         watermark=last,
         points=int(after.sum()),
+        note=f"coefficients re-estimated: {why}" if light else None,
+        reestimate=(*fixed, *result.events) if light else None,
     )
+
+
+def _history(spec: SourceSpec, work: SeriesWork) -> pd.DataFrame:
+    """All of a series' history up to the work's end (a warm read holds only the context)."""
+    return read_windows(spec, [SeriesWindow(work.series_id, None, work.end)])
+
+
+def _reestimated(
+    work: SeriesWork, outcome: SeriesOutcome, timestamps: pd.Series, values: pd.Series
+) -> SeriesOutcome:
+    """The warm outcome with the cached model's coefficients re-estimated on the history.
+
+    The events to remove are in ``outcome.reestimate``; a failure keeps the
+    cached model (the outcome says why) and never fails the series.
+    """
+    assert work.model is not None and outcome.reestimate is not None
+    t0 = time.perf_counter()
+    try:
+        series = regularize(work.series_id, timestamps, values)
+        model = reestimate(work.model, series, outcome.reestimate)
+        done = replace(outcome, model=model, reestimate=None)
+    except (OmegascanError, ValueError, ArithmeticError, np.linalg.LinAlgError) as exc:
+        done = replace(
+            outcome, reestimate=None, note=f"{outcome.note}; failed ({exc}), cached model kept"
+        )
+    return replace(done, seconds=outcome.seconds + time.perf_counter() - t0)
 
 
 def _needs_refit(
@@ -327,25 +368,27 @@ def _needs_refit(
     first_new: int,
     result,
     options: AnalysisOptions,
-) -> bool:
-    """Stale by age, a drift of the residual variance, or a confirmed lasting step.
+) -> str | None:
+    """Why the cached model must be refitted, or None when it still serves.
 
-    A lasting step is a level shift or, in windowed mode, a variance change:
-    either leaves the cached model describing a series that is no longer there.
+    Stale by age, a drift of the residual variance, or a confirmed lasting
+    step: a level shift or, in windowed mode, a variance change; either leaves
+    the cached model describing a series that is no longer there.
     """
     tested_since_fit = _points_since(index, model.fitted_through, model.step_seconds)
     if tested_since_fit is not None and tested_since_fit > options.refit_after * model.nobs:
-        return True
-    if any(e.event_type in ("LS", "VC") and e.status == "confirmed" for e in result.events):
-        return True
+        return "age"
+    for e in result.events:
+        if e.event_type in ("LS", "VC") and e.status == "confirmed":
+            return f"confirmed {e.event_type}"
     scale = _resid_scale(result.notes)
     n_new = len(index) - first_new
     if scale is not None and n_new >= 20:
         # n s^2 / sigma^2 ~ chi2(n) without drift (robust s from the new points).
         stat = n_new * scale**2
         if stat > chi2.isf(options.drift_alpha, n_new):
-            return True
-    return False
+            return "variance drift"
+    return None
 
 
 def plan_batches(

@@ -908,6 +908,59 @@ def _absorb_pattern(decomp: Decomposition, period: int) -> tuple[Decomposition, 
 # -- warm path helpers ---------------------------------------------------------------
 
 
+@single_blas_thread
+def reestimate(
+    model: FittedModel, series: RegularSeries, known: Sequence[Event] = ()
+) -> FittedModel:
+    """The cached model's coefficients estimated again, its orders and seasonal profile kept.
+
+    Parameters
+    ----------
+    model : FittedModel
+        The cached model (its orders, trend, profiles and grid are kept).
+    series : RegularSeries
+        The series' history on the model's grid.
+    known : sequence of Event
+        The series' events; their effects (in the cached model's shapes) are
+        removed before estimating, as the outer loop of :func:`detect_events`
+        removes them.
+
+    Returns
+    -------
+    FittedModel
+        One exact maximum-likelihood fit of the same orders from the cached
+        coefficients (``method`` ``"mle"``), fitted through the series' last
+        point; the cached model unchanged (with a ``fallback`` note) when that
+        fit fails.
+
+    Notes
+    -----
+    The light refit of the fleet scan after a confirmed level shift: one
+    likelihood fit instead of the order search and joint event estimation of
+    a cold analysis (about a fifth of its cost on 540 minute points).  The
+    events found are not estimated again; stale models (by age or variance
+    drift) get the full analysis.
+    """
+    from omegascan.tasks.fit import fingerprint
+
+    y = series.values - _seasonal_for(model, series) - known_effects(model, series, known)
+    fitted = _refit(y, model)
+    if fitted is model:
+        return replace(model, fallback="re-estimation failed; the cached coefficients are kept")
+    return replace(
+        model,
+        params=tuple((k, round_sig(v)) for k, v in fitted.params),
+        sigma2=round_sig(fitted.sigma2),
+        nobs=fitted.nobs,
+        method="mle",
+        converged=fitted.converged,
+        fallback=None,
+        aicc=fitted.aicc if math.isfinite(fitted.aicc) else None,
+        fitted_through=series.label(series.nobs - 1),
+        fingerprint=fingerprint(y),
+    )
+
+
 def known_effects(model: FittedModel, series: RegularSeries, known: Sequence[Event]) -> np.ndarray:
     """Series-space effect of earlier events on a series' grid (by time, not position)."""
     n = series.nobs

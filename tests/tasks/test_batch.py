@@ -1,0 +1,150 @@
+"""tasks/batch.py: one series' cold and warm analysis, refits, and a batch read from a source.
+
+References
+----------
+- The light refit after a confirmed level shift (``detect.reestimate``) is
+  checked against statsmodels' ARIMA fitted independently on the same series
+  with the same orders and the shift removed (statsmodels is the oracle for
+  the likelihood fit; the same likelihood gives the same coefficients).
+- Everything else is checked against the injected truth of invented series
+  (AR(1) noise, phi 0.6, with a level shift at a known time) and against the
+  rules documented in tasks/batch.py (refit by age, deferral below the
+  minimum).
+"""
+
+from __future__ import annotations
+
+from dataclasses import replace
+
+import numpy as np
+import pandas as pd
+import pytest
+from numpy.testing import assert_allclose
+from scipy.signal import lfilter
+from statsmodels.tsa.arima.model import ARIMA
+
+from omegascan.tasks.batch import (
+    AnalysisOptions,
+    SeriesWork,
+    analyse_series_work,
+    run_batch,
+)
+from omegascan.tasks.decompose import regularize
+from omegascan.tasks.detect import reestimate
+from omegascan.tasks.fetch import open_source
+
+SID = "edge-004/node-17"
+HISTORY, NEW = 480, 60
+SHIFT_AT, SHIFT = HISTORY + 20, 5.0
+OPTIONS = AnalysisOptions()
+
+
+def make_series(seed: int = 4, *, shift: bool = True) -> pd.DataFrame:
+    """Invented minute latency: AR(1) (phi 0.6, sd 1) around 20, a +5 step 20 points into NEW."""
+    rng = np.random.default_rng(seed)
+    n = HISTORY + NEW
+    y = 20.0 + lfilter([1.0], [1.0, -0.6], rng.normal(size=n))
+    if shift:
+        y[SHIFT_AT:] += SHIFT
+    stamps = pd.date_range("2031-03-01", periods=n, freq="min")
+    return pd.DataFrame({"series_id": SID, "timestamp": stamps, "value": y})
+
+
+@pytest.fixture(scope="module")
+def frame() -> pd.DataFrame:
+    return make_series()
+
+
+@pytest.fixture(scope="module")
+def cold(frame):
+    first = frame.iloc[:HISTORY]
+    return analyse_series_work(SeriesWork(SID), first["timestamp"], first["value"], OPTIONS)
+
+
+@pytest.fixture(scope="module")
+def source(frame, tmp_path_factory):
+    folder = tmp_path_factory.mktemp("batch-source")
+    frame.to_parquet(folder / "part-0.parquet", index=False)
+    return open_source(folder)
+
+
+def _warm_work(cold, start=None) -> SeriesWork:
+    return SeriesWork(SID, cold.model, cold.watermark, cold.events, start=start)
+
+
+def test_cold_fits_and_reports_the_history(cold, frame):
+    assert cold.mode == "cold" and cold.model is not None
+    assert cold.model.order[0] >= 1  # the AR(1) dependence is modelled
+    assert cold.points == HISTORY
+    assert pd.Timestamp(cold.watermark) == frame["timestamp"].iloc[HISTORY - 1]
+    assert not cold.events  # clean history: at most the rare false event, here none
+
+
+def test_too_short_a_history_is_deferred_with_the_count(frame):
+    few = frame.iloc[:50]
+    out = analyse_series_work(SeriesWork(SID), few["timestamp"], few["value"], OPTIONS)
+    assert out.mode == "deferred" and out.model is None
+    assert out.note == "50 observed points; a first fit needs 96"
+
+
+def test_warm_with_nothing_new_is_unchanged(cold, frame):
+    first = frame.iloc[:HISTORY]
+    out = analyse_series_work(_warm_work(cold), first["timestamp"], first["value"], OPTIONS)
+    assert out.mode == "unchanged" and out.watermark == cold.watermark and not out.events
+
+
+def test_warm_finds_the_level_shift_and_reestimates_the_coefficients(cold, frame, source):
+    start = frame["timestamp"].iloc[HISTORY - OPTIONS.context_points]
+    batch = run_batch(source, [_warm_work(cold, start)], OPTIONS)
+    (out,) = batch.outcomes
+    assert out.mode == "warm"
+    (ls,) = [e for e in out.events if e.event_type == "LS"]
+    assert pd.Timestamp(ls.event_time) == frame["timestamp"].iloc[SHIFT_AT]
+    assert ls.status == "confirmed"
+    assert_allclose(ls.effect, SHIFT, atol=1.0)  # about three standard errors
+    # Re-estimated on the whole history, orders kept, fitted through the last point.
+    assert out.model is not None and out.model != cold.model
+    assert out.model.order == cold.model.order and out.model.nobs == HISTORY + NEW
+    assert pd.Timestamp(out.model.fitted_through) == frame["timestamp"].iloc[-1]
+    assert out.note == "coefficients re-estimated: confirmed LS"
+    assert out.reestimate is None
+
+
+def test_reestimate_matches_statsmodels_on_the_series_without_the_shift(cold, frame, source):
+    """Oracle: statsmodels' ARIMA, same orders, fitted on the series minus the estimated step."""
+    start = frame["timestamp"].iloc[HISTORY - OPTIONS.context_points]
+    (out,) = run_batch(source, [_warm_work(cold, start)], OPTIONS).outcomes
+    (ls,) = [e for e in out.events if e.event_type == "LS"]
+    series = regularize(SID, frame["timestamp"], frame["value"])
+    model = reestimate(cold.model, series, [ls])
+    assert model == out.model  # the batch used exactly this function
+    y = frame["value"].to_numpy().copy()
+    y[SHIFT_AT:] -= ls.effect
+    p, d, q = cold.model.order
+    oracle = ARIMA(y, order=(p, d, q), trend="c" if d == 0 else "n").fit()
+    ar = [v for k, v in model.params if k.startswith("ar.")]
+    assert_allclose(ar, oracle.arparams, atol=2e-3)
+    assert_allclose(model.sigma2, oracle.params[-1], rtol=1e-2)
+
+
+def test_a_model_stale_by_age_is_refitted_cold(cold, frame, source):
+    # refit_after 0.05: after more than 24 new points (5 % of 480) the model is stale.
+    options = replace(OPTIONS, refit_after=0.05)
+    clean = make_series(shift=False)
+    first = clean.iloc[:HISTORY]
+    model = analyse_series_work(SeriesWork(SID), first["timestamp"], first["value"], options)
+    out = analyse_series_work(
+        SeriesWork(SID, model.model, model.watermark), clean["timestamp"], clean["value"], options
+    )
+    assert out.mode == "cold" and out.note == "refit: age" and out.model is None
+    # Through run_batch the whole history is read again and fitted cold.
+    (done,) = run_batch(source, [SeriesWork(SID, cold.model, cold.watermark)], options).outcomes
+    assert done.mode == "cold" and done.note == "refit: age"
+    assert done.model is not None and done.model.nobs == HISTORY + NEW
+
+
+def test_a_bad_series_fails_alone_with_its_problem(cold):
+    stamps = pd.date_range("2031-03-01", periods=200, freq="min")
+    out = analyse_series_work(SeriesWork(SID), pd.Series(stamps), pd.Series([3.0] * 200), OPTIONS)
+    assert out.mode == "failed" and out.failure is not None
+    assert out.failure[0] == "prepare" and "constant" in out.failure[1]
