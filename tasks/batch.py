@@ -32,7 +32,7 @@ from typing import Literal
 
 import numpy as np
 import pandas as pd
-from scipy.stats import chi2
+from scipy.special import chdtri
 
 from omegascan.tasks.decompose import decompose, regularize
 from omegascan.tasks.detect import detect_events, reestimate, screen_new_points
@@ -51,10 +51,12 @@ from omegascan.tasks.wrappers import TaskSpec, lazy_task
 
 Mode = Literal["cold", "warm", "unchanged", "deferred", "failed"]
 
-WARM_SECONDS = 0.02
-"""Rough cost of a warm series (measured 6-14 ms per series, 60 new points)."""
-COLD_SECONDS = 0.5
-"""Rough cost of a cold series (measured 0.2-0.5 s at 720 points)."""
+WARM_SECONDS = 0.008
+"""Rough cost of a warm series: 3.5-5 ms of analysis for 60 new points plus its
+read and share of the task (measured in tests/benchmarks/bench_fleet.py)."""
+COLD_SECONDS = 0.2
+"""Rough cost of a cold series: 0.1-0.3 s of CPU at 480-1,440 points (fleet
+benchmark), more for long histories."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -386,7 +388,7 @@ def _needs_refit(
     if scale is not None and n_new >= 20:
         # n s^2 / sigma^2 ~ chi2(n) without drift (robust s from the new points).
         stat = n_new * scale**2
-        if stat > chi2.isf(options.drift_alpha, n_new):
+        if stat > chdtri(n_new, options.drift_alpha):  # chi2.isf(alpha, n), as a ufunc
             return "variance drift"
     return None
 
@@ -400,7 +402,7 @@ def plan_batches(
     task carries seconds of real work: the per-task overhead measured for
     Prefect on this kind of machine is about 10 ms with threads and 0.2-0.4 s
     with processes or Dask, which a batch of that size amortizes to a few
-    percent.  Batch sizes: warm about 200 series, cold about 8.
+    percent.  Batch sizes: warm 500 series (the cap), cold 20.
     """
     batches: list[list[SeriesWork]] = []
     for cold in (True, False):

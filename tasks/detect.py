@@ -27,6 +27,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 import pandas as pd
 from scipy.optimize import minimize_scalar
+from scipy.special import ndtri
 from scipy.stats import norm
 
 from omegascan.tasks.decompose import decompose, profile_at, regularize
@@ -110,7 +111,9 @@ def default_critical(n: int, *, alpha: float = ALPHA) -> float:
     """
     if n < 1:
         raise ValueError("n must be positive")
-    return max(MIN_CRITICAL, float(norm.isf(alpha / (2.0 * TESTS_PER_POINT * n))))
+    # norm.isf(q) is -ndtri(q); the ufunc skips scipy.stats' per-call argument
+    # checks (0.27 ms, 5 % of a warm series).
+    return max(MIN_CRITICAL, -float(ndtri(alpha / (2.0 * TESTS_PER_POINT * n))))
 
 
 @single_blas_thread

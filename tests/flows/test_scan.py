@@ -63,11 +63,12 @@ def test_plan_batches_sizes_by_cost():
     model = FittedModel(
         "x", (1, 0, 0), (0, 0, 0, 0), "c", (("sigma2", 1.0),), 1.0, 100, "mle", True
     )
-    cold = [SeriesWork(f"c{i}") for i in range(20)]
-    warm = [SeriesWork(f"w{i}", model, "2026-01-01") for i in range(450)]
+    cold = [SeriesWork(f"c{i}") for i in range(45)]
+    warm = [SeriesWork(f"w{i}", model, "2026-01-01") for i in range(1200)]
     batches = plan_batches(cold + warm, target_seconds=4.0)
     sizes = [len(b) for b in batches]
-    assert sizes == [8, 8, 4, 200, 200, 50]
+    assert sizes == [20, 20, 5, 500, 500, 200]  # 4 s / 0.2 s = 20 cold; 4 s / 8 ms = 500 warm
+    assert [len(b) for b in plan_batches(warm, target_seconds=1.0)] == [125] * 9 + [75]
 
 
 def test_plan_works_warm_after_watermark_and_skip_when_done():
