@@ -240,6 +240,16 @@ WindowOpt = Annotated[
         show_default=False,
     ),
 ]
+ReportOpt = Annotated[
+    Path | None,
+    typer.Option(
+        "--report",
+        metavar="DIR",
+        help="Also write the HTML report of the run's new and changed events to DIR "
+        "(index.html and a picture per event, as omegascan report).",
+        show_default=False,
+    ),
+]
 SeriesOpt = Annotated[
     list[str] | None,
     typer.Option(
@@ -263,6 +273,10 @@ def prefect_defaults(environ: dict[str, str] | None = None) -> None:
     env = os.environ if environ is None else environ
     for name, value in PREFECT_DEFAULTS.items():
         env.setdefault(name, value)
+
+
+def _text(path: Path | None) -> str | None:
+    return None if path is None else str(path)
 
 
 def _fleet_arguments(given: Mapping[str, Any]) -> dict[str, Any]:
@@ -788,6 +802,7 @@ def scan(
     critical: CriticalOpt = None,
     min_points: MinPointsOpt = None,
     window: WindowOpt = None,
+    report: ReportOpt = None,
     until: Annotated[
         str | None,
         typer.Option(
@@ -811,7 +826,9 @@ def scan(
         until = _check_time(until, "--until", config.time_kind)
         from omegascan.flows.scan import scan_flow
 
-        arguments = _flow_arguments(scan_flow, config, until=until, series=series or None)
+        arguments = _flow_arguments(
+            scan_flow, config, until=until, series=series or None, report_dir=_text(report)
+        )
         t0 = time.perf_counter()
         summary = run_fleet_flow(scan_flow, arguments, config, label="scan")
     _finish(summary, as_json=as_json, wall=time.perf_counter() - t0)
@@ -860,6 +877,7 @@ def backfill(
     critical: CriticalOpt = None,
     min_points: MinPointsOpt = None,
     window: WindowOpt = None,
+    report: ReportOpt = None,
     series: SeriesOpt = None,
     as_json: JsonOpt = False,
 ) -> None:
@@ -884,6 +902,7 @@ def backfill(
             chunk=chunk,
             warmup=warmup,
             series=series or None,
+            report_dir=_text(report),
         )
         t0 = time.perf_counter()
         summary = run_fleet_flow(backfill_flow, arguments, config, label="backfill")

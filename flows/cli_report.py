@@ -12,154 +12,17 @@ Registers itself on the shared :data:`omegascan.flows.cli.app` when imported.
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import dataclass
 from pathlib import Path
-from typing import TYPE_CHECKING, Annotated, Any
+from typing import TYPE_CHECKING, Annotated
 
 import typer
 
 from omegascan.flows.cli import EXIT_SERIES_FAILED, _fail_usage, _stderr, _stdout, app
 
 if TYPE_CHECKING:
-    import pandas as pd
 
     from omegascan.tasks.fetch import SourceSpec
-    from omegascan.tasks.report import EventView
-    from omegascan.tasks.types import Event, FittedModel
-
-
-def _masked(db: str) -> str:
-    import sqlalchemy as sa
-
-    try:
-        return sa.make_url(db).render_as_string(hide_password=True)
-    except Exception:  # an unreadable URL is reported by persist with its own message
-        return db
-
-
-def _check_sqlite_file(db: str) -> None:
-    """A report never creates a database: a SQLite file that is not there is an error."""
-    import sqlalchemy as sa
-
-    try:
-        url = sa.make_url(db)
-    except Exception:
-        return  # persist.connect says what is wrong with it
-    if url.get_backend_name() != "sqlite" or url.database in (None, "", ":memory:"):
-        return
-    if not Path(url.database).is_file():
-        raise _fail_usage(
-            f"database file {url.database!r} does not exist; give the --db of a scan "
-            "(or set OMEGASCAN_DB_URL), or run a scan first"
-        )
-
-
-def read_selected_events(
-    db: str,
-    *,
-    run: str | None = None,
-    since: str | None = None,
-    series: Sequence[str] | None = None,
-) -> pd.DataFrame:
-    """Stored events (not retracted) matching the selection, as read_events returns them.
-
-    ``run`` keeps events first or last seen in that run (new in it, or changed by it).
-    """
-    from sqlalchemy.exc import DBAPIError
-
-    from omegascan.tasks import persist
-    from omegascan.tasks.errors import OmegascanError
-
-    _check_sqlite_file(db)
-    try:
-        frame = persist.read_events(db, since=since, series_ids=list(series) if series else None)
-    except OmegascanError as exc:
-        raise _fail_usage(str(exc)) from None
-    except DBAPIError as exc:
-        first = str(getattr(exc, "orig", exc)).splitlines()[0]
-        raise _fail_usage(
-            f"cannot read events from {_masked(db)} ({first}); is it the database of an "
-            "omegascan scan? run a scan first or give another --db"
-        ) from None
-    if run is not None:
-        frame = frame[(frame["first_run_id"] == run) | (frame["last_run_id"] == run)]
-    return frame.reset_index(drop=True)
-
-
-def _models(db: str, series_ids: Sequence[str]) -> tuple[dict[str, FittedModel], dict[str, str]]:
-    """Stored models by series; a damaged one is left out with the reason."""
-    from omegascan.tasks import persist
-    from omegascan.tasks.errors import ModelError
-
-    try:
-        return persist.load_models(db, list(series_ids)), {}
-    except ModelError:
-        pass
-    models: dict[str, FittedModel] = {}
-    problems: dict[str, str] = {}
-    for sid in series_ids:
-        try:
-            models.update(persist.load_models(db, [sid]))
-        except ModelError as exc:
-            problems[sid] = f"{exc}; the picture is drawn without it"
-    return models, problems
-
-
-def windowed_values(event: Event, timestamps, values, window: str):
-    """The window series a windowed event was found in: window spreads for a
-    variance change, window medians for the other types (raw points when the
-    read holds too few windows to summarize)."""
-    import pandas as pd
-
-    from omegascan.tasks.errors import SeriesError
-    from omegascan.tasks.window import summarize_windows
-
-    try:
-        summary = summarize_windows(event.series_id, timestamps, values, window)
-    except SeriesError:
-        return timestamps, values
-    series = summary.spread if event.event_type == "VC" else summary.median
-    return pd.Series(summary.index), pd.Series(series)
-
-
-def build_views(
-    spec: SourceSpec,
-    events: Sequence[Event],
-    models: dict[str, FittedModel],
-) -> list[EventView]:
-    """Each event with the observations around it (one read per series)."""
-    from omegascan.tasks.fetch import read_series
-    from omegascan.tasks.report import EventView, slice_window, window_bounds
-
-    by_series: dict[str, list[Event]] = {}
-    for e in events:
-        by_series.setdefault(e.series_id, []).append(e)
-    views: dict[tuple[str, str], EventView] = {}
-    for sid, mine in by_series.items():
-        model = models.get(sid)
-        start = end = None
-        if model is not None and model.step_seconds:
-            bounds = [
-                window_bounds(e, step_seconds=model.step_seconds, time_kind=spec.time_kind)
-                for e in mine
-            ]
-            start, end = min(b[0] for b in bounds), max(b[1] for b in bounds)
-        # Without a model the spacing is unknown: the whole series is read.
-        data = read_series(spec, [sid], start=start, end=end)
-        for e in mine:
-            if data.empty:
-                views[(sid, e.event_time)] = EventView(
-                    e,
-                    model=model,
-                    note=f"the source holds no observations of {sid!r} around {e.event_time}",
-                )
-                continue
-            stamps, values = data["timestamp"], data["value"]
-            if model is not None and model.window is not None:
-                stamps, values = windowed_values(e, stamps, values, model.window)
-            stamps, values = slice_window(e, stamps, values, model=model)
-            views[(sid, e.event_time)] = EventView(e, stamps, values, model)
-    return [views[(e.series_id, e.event_time)] for e in events]
+    from omegascan.tasks.reporting import WrittenReport
 
 
 def report(
@@ -277,16 +140,6 @@ def report(
         raise typer.Exit(EXIT_SERIES_FAILED)
 
 
-@dataclass(frozen=True, slots=True)
-class WrittenReport:
-    """What :func:`write_stored_report` wrote."""
-
-    index: Path
-    n_events: int
-    n_series: int
-    drawn: int
-
-
 def write_stored_report(
     db_url: str,
     spec: SourceSpec,
@@ -296,69 +149,44 @@ def write_stored_report(
     since: str | None = None,
     series: Sequence[str] | None = None,
 ) -> WrittenReport:
-    """The report of the selected stored events at ``out/index.html``, announced on stdout.
+    """:func:`omegascan.tasks.reporting.write_stored_report` with a progress bar, announced.
 
-    Used by ``omegascan report`` and by the demo.  A stored model that cannot
-    be read is said on stderr (its events are drawn without it).
-
-    Raises
-    ------
-    OmegascanError
-        The database or source cannot be read, or ``out`` cannot be written.
+    Used by ``omegascan report`` and by the demo.  Damaged stored models are
+    said on stderr (their events are drawn without them).
     """
-    from omegascan.tasks.report import event_from_record
-
-    frame = read_selected_events(db_url, run=run, since=since, series=series)
-    events = [event_from_record(rec) for rec in frame.to_dict(orient="records")]
-    models, model_problems = _models(db_url, sorted({e.series_id for e in events}))
-    views = build_views(spec, events, models)
-    selection = [
-        f"run {run}" if run else None,
-        f"since {since}" if since else None,
-        f"series {', '.join(series)}" if series else None,
-    ]
-    facts = [
-        ("database", _masked(db_url)),
-        ("source", spec.describe),
-        ("selection", "; ".join(s for s in selection if s) or "all stored events"),
-    ]
-    index = _write_with_progress(out, views, facts)
-    drawn = _count_pictures(index)
-    err = _stderr()
-    for sid, problem in sorted(model_problems.items()):
-        err.print(f"omegascan: series {sid!r}: {problem}", markup=False)
-    n_series = len({e.series_id for e in events})
-    _stdout().print(
-        f"Report of {len(events)} event(s) in {n_series} series, {drawn} picture(s): {index}",
-        markup=False,
-    )
-    return WrittenReport(index, len(events), n_series, drawn)
-
-
-def _write_with_progress(out: Path, views: Sequence[EventView], facts: Sequence[Any]) -> Path:
     from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
 
-    from omegascan.tasks.report import write_report
+    from omegascan.tasks import reporting
 
     err = _stderr()
-    if len(views) < 2 or not err.is_terminal:
-        return write_report(out, views, facts=facts)
-    with Progress(
-        TextColumn("drawing"), BarColumn(), MofNCompleteColumn(), console=err, transient=True
-    ) as progress:
-        task_id = progress.add_task("drawing", total=len(views))
-        return write_report(
-            out,
-            views,
-            facts=facts,
-            on_progress=lambda done, _total: progress.update(task_id, completed=done),
+    if not err.is_terminal:
+        written = reporting.write_stored_report(
+            db_url, spec, out, run=run, since=since, series=series
         )
-
-
-def _count_pictures(index: Path) -> int:
-    from omegascan.tasks.report import PICTURE_PATTERN
-
-    return sum(1 for _ in index.parent.glob(PICTURE_PATTERN))
+    else:
+        with Progress(
+            TextColumn("drawing"), BarColumn(), MofNCompleteColumn(), console=err, transient=True
+        ) as progress:
+            task_id = progress.add_task("drawing", total=None)
+            written = reporting.write_stored_report(
+                db_url,
+                spec,
+                out,
+                run=run,
+                since=since,
+                series=series,
+                on_progress=lambda done, total: progress.update(
+                    task_id, completed=done, total=total
+                ),
+            )
+    for sid, problem in written.problems:
+        err.print(f"omegascan: series {sid!r}: {problem}", markup=False)
+    _stdout().print(
+        f"Report of {written.n_events} event(s) in {written.n_series} series, "
+        f"{written.drawn} picture(s): {written.index}",
+        markup=False,
+    )
+    return written
 
 
 app.command(name="report")(report)

@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import time
 from collections.abc import Sequence
+from pathlib import Path
 
 import pandas as pd
 from prefect import flow, get_run_logger
@@ -53,6 +54,7 @@ def _run(
     cold_start: object = None,
     report_from: str | None = None,
     refit: bool = False,
+    report_dir: str | None = None,
 ) -> RunSummary:
     logger = get_run_logger()
     t0 = time.perf_counter()
@@ -134,6 +136,8 @@ def _run(
         publish_run_artifacts(summary, db=db)
     except Exception as exc:  # the run's data is written; a missing page must not fail it
         logger.warning("could not publish the run's artifacts: %s", exc)
+    if report_dir:
+        _write_report(logger, db, spec, report_dir, run_id)
     logger.info(
         "%s %s: %d series (%d cold, %d warm, %d failed), %d new events, %d changed, %d retracted",
         kind,
@@ -159,11 +163,14 @@ def scan_flow(
     until: str | None = None,
     table: str | None = None,
     query: str | None = None,
+    report_dir: str | None = None,
 ) -> RunSummary:
     """Hourly fleet scan: new points of every series against its cached model.
 
     ``until`` stops reading at that time (exclusive); default all data.
     ``table`` or ``query`` say what to read when ``source`` is a database URL.
+    ``report_dir``: also write the HTML report of the run's new and changed
+    events there (a picture each; see ``omegascan report``).
     """
     return _run(
         "scan",
@@ -175,6 +182,7 @@ def scan_flow(
         table=table,
         query=query,
         chunks=((None, until),),
+        report_dir=report_dir,
     )
 
 
@@ -191,12 +199,14 @@ def backfill_flow(
     series: list[str] | None = None,
     table: str | None = None,
     query: str | None = None,
+    report_dir: str | None = None,
 ) -> RunSummary:
     """Analyse the span ``start <= t < end`` in chunks of ``chunk``, resumably.
 
     Series without a model are fitted on the ``warmup`` before ``start`` plus
     the first chunk; events are reported from ``start`` on.  Numeric sources
-    take numbers for start, end, chunk and warmup.
+    take numbers for start, end, chunk and warmup.  ``report_dir`` as for
+    :func:`scan_flow`.
     """
     chunks, cold_start = split_span(start, end, chunk, warmup)
     return _run(
@@ -211,6 +221,7 @@ def backfill_flow(
         chunks=chunks,
         cold_start=cold_start,
         report_from=str(start),
+        report_dir=report_dir,
     )
 
 
@@ -270,6 +281,24 @@ def split_span(start: str, end: str, chunk: str, warmup: str):
     edges.append(tb)
     chunks = [(edges[i].isoformat(), edges[i + 1].isoformat()) for i in range(len(edges) - 1)]
     return chunks, (ta - back_td).isoformat()
+
+
+def _write_report(logger, db: str, spec, report_dir: str, run_id: str) -> None:
+    """The run's events as an HTML report with a picture each (never fails the run)."""
+    from omegascan.tasks.errors import OmegascanError
+    from omegascan.tasks.reporting import write_stored_report_task
+
+    try:
+        written = write_stored_report_task(db, spec, Path(report_dir), run=run_id)
+    except (OmegascanError, OSError) as exc:
+        logger.warning("could not write the run's report to %s: %s", report_dir, exc)
+        return
+    logger.info(
+        "report of the run's %d event(s), %d picture(s): %s",
+        written.n_events,
+        written.drawn,
+        written.index,
+    )
 
 
 def _span_text(value: object) -> str | None:

@@ -36,11 +36,12 @@ from scipy.special import chdtri
 
 from omegascan.tasks.decompose import decompose, regularize
 from omegascan.tasks.detect import detect_events, reestimate, screen_new_points
-from omegascan.tasks.errors import OmegascanError, SeriesError, TooShortError
+from omegascan.tasks.errors import OmegascanError, SeriesError
 from omegascan.tasks.fetch import SeriesWindow, SourceSpec, read_windows
 from omegascan.tasks.types import Event, FittedModel
 from omegascan.tasks.window import (
     complete_windows,
+    count_windows,
     detect_windowed,
     last_window_label,
     screen_windowed,
@@ -223,11 +224,7 @@ def _cold(
         timestamps, values = timestamps[keep], values[keep]
     observed = int(pd.to_numeric(values, errors="coerce").notna().sum())
     if options.window is not None and observed:
-        try:
-            summary = summarize_windows(work.series_id, timestamps, values, options.window)
-            observed = int((summary.count > 0).sum())
-        except TooShortError:
-            observed = 0  # fewer windows with data than any model needs
+        observed = count_windows(work.series_id, timestamps, values, options.window)
     unit = "points" if options.window is None else f"windows of {options.window}"
     if observed < options.min_points:
         return SeriesOutcome(

@@ -580,7 +580,8 @@ def event_figure(
     ax_eff.grid(True, color="#d8d8d8", linewidth=0.6)
     ax_eff.legend(loc="best", fontsize=8, framealpha=0.85)
     if kind == "datetime":
-        locator = mdates.AutoDateLocator(maxticks=8)
+        # minticks 3: with the default 5, some spans (3 points over 5 days) warn.
+        locator = mdates.AutoDateLocator(minticks=3, maxticks=8)
         ax_eff.xaxis.set_major_locator(locator)
         ax_eff.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))
         ax_eff.set_xlabel("time (UTC)" if _has_zone(event.event_time) else "time")

@@ -591,6 +591,15 @@ def complete_windows(series_id: str, timestamps, window: str | pd.Timedelta, end
     return key < last
 
 
+def count_windows(series_id: str, timestamps, values, window: str | pd.Timedelta) -> int:
+    """How many windows hold at least one observed (non-missing) value."""
+    width = parse_window(window)
+    stamps, _ = _datetimes(series_id, timestamps)
+    ok = ~np.isnan(_check_values(series_id, values))
+    keys = np.floor_divide(stamps.view("i8")[ok], int(width.value))
+    return int(np.unique(keys).size)
+
+
 def windowed_model(result: WindowedResult) -> FittedModel:
     """The model to cache for a windowed series: the level model with the spread model inside."""
     return replace(

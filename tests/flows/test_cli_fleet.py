@@ -88,8 +88,26 @@ def scanned(prefect_server, small_fleet, tmp_path_factory):
     root = tmp_path_factory.mktemp("scanned")
     source = write_source(data, root / "source", until=FIRST_SCAN_UNTIL)
     db_file = root / "scan.db"
-    result = _invoke("scan", "--source", str(source), "--db", f"sqlite:///{db_file}")
-    return {"source": source, "db_file": db_file, "result": result, "data": data, "truth": truth}
+    report = root / "report"
+    result = _invoke(
+        "scan", "--source", str(source), "--db", f"sqlite:///{db_file}", "--report", str(report)
+    )
+    return {
+        "source": source,
+        "db_file": db_file,
+        "result": result,
+        "data": data,
+        "truth": truth,
+        "report": report,
+    }
+
+
+def test_scan_with_report_draws_every_event_of_the_run(scanned):
+    assert scanned["result"].exit_code == 0, scanned["result"].stderr
+    stored = persist.read_events(f"sqlite:///{scanned['db_file']}")
+    page = check_page(scanned["report"] / "index.html")
+    pictures = sorted(p.name for p in scanned["report"].glob("event-*.png"))
+    assert len(stored) > 0 and len(pictures) == len(stored) == len(page.images)
 
 
 def _copy_db(scanned, tmp_path: Path) -> str:

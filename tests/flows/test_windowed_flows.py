@@ -19,6 +19,7 @@ from omegascan.flows.cli import app
 from omegascan.flows.scan import backfill_flow, scan_flow
 from omegascan.flows.settings import RunOptions
 from omegascan.tasks import persist
+from tests.tasks.test_report import check_page, png_size
 from tests.tasks.test_window import LS_AT, SID, START, TC_AT, VC_AT, make_second_series
 
 WINDOWED = RunOptions(workers=2, window="1min")
@@ -87,7 +88,9 @@ def test_windowed_backfill_reports_the_span_and_reruns_identically(
     db = f"sqlite:///{tmp_path / 'backfill.db'}"
     start, end = START + pd.Timedelta(days=1), START + pd.Timedelta(days=3)
 
-    def run():
+    report = tmp_path / "report"
+
+    def run(report_dir=None):
         return backfill_flow(
             source,
             start.isoformat(),
@@ -96,10 +99,18 @@ def test_windowed_backfill_reports_the_span_and_reruns_identically(
             chunk="12h",
             warmup="1D",
             options=WINDOWED,
+            report_dir=report_dir,
         )
 
-    run()
+    run(str(report))
     events = _events(db)
+    # The flow's report task drew every event of the run, the VC on the window spreads.
+    page = check_page(report / "index.html")
+    pictures = sorted(p.name for p in report.glob("event-*.png"))
+    assert len(pictures) == len(events) == len(page.images)
+    assert any("variance change (VC)" in text for text in page.text)
+    for name in pictures:
+        assert min(png_size(report / name)) >= 250
     assert (pd.to_datetime(events["event_time"]) >= start).all()
     for kind, when in (("LS", LS_AT), ("TC", TC_AT), ("VC", VC_AT)):
         assert len(_at(events, kind, when)) == 1, (kind, events[["event_time", "event_type"]])

@@ -148,3 +148,14 @@ def test_a_bad_series_fails_alone_with_its_problem(cold):
     out = analyse_series_work(SeriesWork(SID), pd.Series(stamps), pd.Series([3.0] * 200), OPTIONS)
     assert out.mode == "failed" and out.failure is not None
     assert out.failure[0] == "prepare" and "constant" in out.failure[1]
+
+
+def test_windowed_cold_with_a_window_longer_than_the_history_is_deferred(frame):
+    """540 minute points in windows of a day: one window, still filling, so none to model."""
+    options = replace(OPTIONS, window="D")
+    out = analyse_series_work(SeriesWork(SID), frame["timestamp"], frame["value"], options)
+    assert out.mode == "deferred" and out.model is None
+    assert out.note == "0 observed windows of D; a first fit needs 96"
+    hourly = replace(OPTIONS, window="h", min_points=24)  # 9 windows; the last is held back
+    out = analyse_series_work(SeriesWork(SID), frame["timestamp"], frame["value"], hourly)
+    assert out.mode == "deferred" and out.note == "8 observed windows of h; a first fit needs 24"

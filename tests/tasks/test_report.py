@@ -310,6 +310,21 @@ def test_styles_tell_types_apart_without_colour():
     assert OBSERVED_STYLE["linestyle"] != ADJUSTED_STYLE["linestyle"]
 
 
+def test_a_few_points_over_days_draw_without_a_locator_warning():
+    # Three points over five days made matplotlib's AutoDateLocator(maxticks=8)
+    # warn (found drawing the demo report); pytest turns warnings into errors.
+    stamps = pd.date_range("2031-03-01", periods=3, freq="40h")
+    event = make_event("AO", when=stamps[1].isoformat(), position=1)
+    fig = event_figure(event, stamps, np.array([20.0, 27.5, 20.5]))
+    assert min(png_size(_png(fig))) >= 250
+
+
+def _png(fig) -> bytes:
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png")
+    return buf.getvalue()
+
+
 def test_words_give_type_time_size_t_and_half_life():
     event = make_event("TC")
     text = " ".join(describe_event(event))
