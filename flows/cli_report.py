@@ -11,6 +11,7 @@ Registers itself on the shared :data:`omegascan.flows.cli.app` when imported.
 
 from __future__ import annotations
 
+import contextlib
 from collections.abc import Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Annotated
@@ -159,26 +160,22 @@ def write_stored_report(
     from omegascan.tasks import reporting
 
     err = _stderr()
-    if not err.is_terminal:
+    # A progress bar on a terminal only; the same call either way.
+    bar = None
+    if err.is_terminal:
+        columns = (TextColumn("drawing"), BarColumn(), MofNCompleteColumn())
+        bar = Progress(*columns, console=err, transient=True)
+    with bar or contextlib.nullcontext():
+        on_progress = None
+        if bar is not None:
+            task_id = bar.add_task("drawing", total=None)
+
+            def on_progress(done: int, total: int) -> None:
+                bar.update(task_id, completed=done, total=total)
+
         written = reporting.write_stored_report(
-            db_url, spec, out, run=run, since=since, series=series
+            db_url, spec, out, run=run, since=since, series=series, on_progress=on_progress
         )
-    else:
-        with Progress(
-            TextColumn("drawing"), BarColumn(), MofNCompleteColumn(), console=err, transient=True
-        ) as progress:
-            task_id = progress.add_task("drawing", total=None)
-            written = reporting.write_stored_report(
-                db_url,
-                spec,
-                out,
-                run=run,
-                since=since,
-                series=series,
-                on_progress=lambda done, total: progress.update(
-                    task_id, completed=done, total=total
-                ),
-            )
     for sid, problem in written.problems:
         err.print(f"omegascan: series {sid!r}: {problem}", markup=False)
     _stdout().print(

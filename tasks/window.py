@@ -664,11 +664,13 @@ def screen_windowed(
 
     width = summary.window
     sid = summary.series_id
-    changes = [e for e in known if e.event_type == "VC"]
-    ratio = 1.0
-    for ev in changes:
-        if ev.effect_pct is not None and ev.effect_pct > -100.0:
-            ratio *= 1.0 + ev.effect_pct / 100.0
+    # Known variance changes with a usable ratio (spread after / before).
+    changes = [
+        e
+        for e in known
+        if e.event_type == "VC" and e.effect_pct is not None and e.effect_pct > -100.0
+    ]
+    ratio = math.prod(1.0 + ev.effect_pct / 100.0 for ev in changes)
     level_model = replace(model, sigma2=model.sigma2 * ratio**2) if ratio != 1.0 else model
     level_series = regularize(sid, summary.index, summary.median)
     n_new = int(np.sum(np.asarray(level_series.index >= test_from)))
@@ -682,7 +684,6 @@ def screen_windowed(
         critical=critical,
     )
     events = [_windowed(ev, width) for ev in level.events]
-    notes = list(level.notes)
     usable = (summary.count >= MIN_SPREAD_POINTS) & (summary.spread > 0)
     new = np.asarray(summary.index >= test_from)
     if model.spread is not None and (usable & new).any() and int(usable.sum()) >= MIN_WINDOWS:
@@ -692,7 +693,6 @@ def screen_windowed(
         steps = [
             replace(ev, event_type="LS", effect=math.log(1.0 + ev.effect_pct / 100.0), decay=None)
             for ev in changes
-            if ev.effect_pct is not None and ev.effect_pct > -100.0
         ]
         if n_spread:
             spread = screen_new_points(
@@ -703,7 +703,7 @@ def screen_windowed(
                 for ev in spread.events
                 if ev.event_type == "LS"
             ]
-    return replace(level, events=_one_per_window(events), notes=tuple(notes))
+    return replace(level, events=_one_per_window(events))
 
 
 def _one_per_window(events: Sequence[Event]) -> tuple[Event, ...]:
