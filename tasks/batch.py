@@ -161,33 +161,59 @@ def run_batch(
     windows = [SeriesWindow(w.series_id, w.start, w.end) for w in works]
     frame = read_windows(spec, windows)
     t1 = time.perf_counter()
-    groups = {sid: g for sid, g in frame.groupby("series_id", sort=False)}
-    outcomes = []
-    for work in works:
-        data = groups.get(work.series_id)
-        if data is None:
-            data = frame.iloc[0:0]
-        outcome = analyse_series_work(work, data["timestamp"], data["value"], options)
+    groups = _by_series(frame)
+    empty = frame.iloc[0:0]
+    outcomes = [
+        analyse_series_work(work, *_columns(groups.get(work.series_id, empty)), options)
+        for work in works
+    ]
+    # Series whose warm analysis asks for the whole history (a refit, or new
+    # coefficients after a confirmed level shift) get it in one read.
+    wanted = [
+        i
+        for i, (work, outcome) in enumerate(zip(works, outcomes, strict=True))
+        if outcome.reestimate is not None or _turned_cold(work, outcome)
+    ]
+    reread = [works[i] for i in wanted if works[i].start is not None]
+    t2 = time.perf_counter()
+    history = _by_series(_histories(spec, reread)) if reread else {}
+    t3 = time.perf_counter()
+    for i in wanted:
+        work, outcome = works[i], outcomes[i]
+        held = history if work.start is not None else groups
+        full = _columns(held.get(work.series_id, empty))
         if outcome.reestimate is not None:
-            # A confirmed level shift: the coefficients are estimated again on all history.
-            full = data if work.start is None else _history(spec, work)
-            outcome = _reestimated(work, outcome, full["timestamp"], full["value"])
-        if outcome.mode == "cold" and work.model is not None and not work.refit:
-            # A warm read turned into a refit: the model needs the whole history.
-            full = data if work.start is None else _history(spec, work)
+            outcome = _reestimated(work, outcome, *full)
+        else:
             why = outcome.note
-            outcome = analyse_series_work(
-                replace(work, refit=True), full["timestamp"], full["value"], options
-            )
+            outcome = analyse_series_work(replace(work, refit=True), *full, options)
             if outcome.note is None:
                 outcome = replace(outcome, note=why)
-        outcomes.append(outcome)
+        outcomes[i] = outcome
     return BatchOutcome(
         outcomes=tuple(outcomes),
-        read_seconds=t1 - t0,
-        analyse_seconds=time.perf_counter() - t1,
+        read_seconds=(t1 - t0) + (t3 - t2),
+        analyse_seconds=time.perf_counter() - t1 - (t3 - t2),
         rows_read=len(frame),
     )
+
+
+def _turned_cold(work: SeriesWork, outcome: SeriesOutcome) -> bool:
+    """A warm read whose analysis decided the model must be refitted."""
+    return outcome.mode == "cold" and work.model is not None and not work.refit
+
+
+def _by_series(frame: pd.DataFrame) -> dict[str, pd.DataFrame]:
+    return {sid: g for sid, g in frame.groupby("series_id", sort=False)}
+
+
+def _columns(data: pd.DataFrame) -> tuple[pd.Series, pd.Series]:
+    return data["timestamp"], data["value"]
+
+
+def _histories(spec: SourceSpec, works: Sequence[SeriesWork]) -> pd.DataFrame:
+    """All history up to each work's end (a warm read holds only the context), in one read."""
+    return read_windows(spec, [SeriesWindow(w.series_id, None, w.end) for w in works])
 
 
 def analyse_series_work(
@@ -333,11 +359,6 @@ def _warm(
         note=f"coefficients re-estimated: {why}" if light else None,
         reestimate=(*fixed, *result.events) if light else None,
     )
-
-
-def _history(spec: SourceSpec, work: SeriesWork) -> pd.DataFrame:
-    """All of a series' history up to the work's end (a warm read holds only the context)."""
-    return read_windows(spec, [SeriesWindow(work.series_id, None, work.end)])
 
 
 def _reestimated(

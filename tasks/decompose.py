@@ -28,7 +28,7 @@ from omegascan.tasks.errors import (
     TimestampError,
     TooShortError,
 )
-from omegascan.tasks.types import Decomposition, RegularSeries
+from omegascan.tasks.types import Decomposition, RegularSeries, StampLabels
 from omegascan.tasks.wrappers import TaskSpec, lazy_task
 
 MIN_POINTS = 24
@@ -116,12 +116,15 @@ def regularize(series_id: str, timestamps, values) -> RegularSeries:
             "leave a missing sample empty instead of writing inf",
         )
 
-    # Step 2: timestamps.
+    # Step 2: timestamps (labels None: each stamp's own ISO text, made on demand).
     stamps, labels, tz = _parse_timestamps(series_id, timestamps)
 
     # Step 3: sort.
-    order = np.argsort(stamps, kind="stable")
-    stamps, vals, labels = stamps[order], vals[order], [labels[i] for i in order]
+    if stamps.size > 1 and not np.all(stamps[1:] >= stamps[:-1]):
+        order = np.argsort(stamps, kind="stable")
+        stamps, vals = stamps[order], vals[order]
+        if labels is not None:
+            labels = [labels[i] for i in order]
     is_time = stamps.dtype.kind == "M"
     ticks = stamps.view("i8").astype(float) if is_time else stamps.astype(np.float64)
 
@@ -160,9 +163,21 @@ def regularize(series_id: str, timestamps, values) -> RegularSeries:
         medians = grouped.median()
         n_duplicates = int((grouped.size() - 1).sum())
         grid[medians.index.to_numpy()] = medians.to_numpy()
-    grid_labels: list[str | None] = [None] * size
-    for s, lab in zip(slot[::-1], labels[::-1], strict=True):  # first occurrence wins
-        grid_labels[s] = lab
+    # A slot's label is its first observation's timestamp text.
+    if slot.size < 2 or np.all(np.diff(slot) > 0):
+        slots, first = slot, np.arange(slot.size)
+    else:
+        slots, first = np.unique(slot, return_index=True)
+    grid_labels: Sequence[str | None]
+    if labels is None:
+        given = np.full(size, np.datetime64("NaT"), dtype="datetime64[ns]")
+        given[slots] = stamps[first]
+        grid_labels = StampLabels(given)
+    else:
+        listed: list[str | None] = [None] * size
+        for s, i in zip(slots.tolist(), first.tolist(), strict=True):
+            listed[s] = labels[i]
+        grid_labels = tuple(listed)
 
     # Step 6: the regular index.
     if is_time:
@@ -180,7 +195,7 @@ def regularize(series_id: str, timestamps, values) -> RegularSeries:
         index = pd.Index(float(stamps[0]) + step * np.arange(size))
         step_value = step
 
-    series = RegularSeries(series_id, index, grid, step_value, tuple(grid_labels), n_duplicates)
+    series = RegularSeries(series_id, index, grid, step_value, grid_labels, n_duplicates)
     check_series(series)
     return series
 
@@ -403,18 +418,9 @@ def _nice_step(step: float, is_time: bool) -> float:
     return max(round(step), 1)
 
 
-def _iso_labels(stamps: pd.Series) -> list[str]:
-    """``Timestamp.isoformat()`` of every stamp, vectorized for the common case.
-
-    Zone-less stamps on whole seconds format as numpy's ISO text, which is
-    exactly what ``isoformat()`` gives them; anything else goes one by one, so a
-    timestamp's text never depends on its neighbours.
-    """
-    if isinstance(stamps.dtype, np.dtype) and stamps.dtype.kind == "M":  # zone-less
-        raw = stamps.to_numpy(dtype="datetime64[ns]")
-        if not np.isnat(raw).any() and (raw.view("i8") % 1_000_000_000 == 0).all():
-            return np.datetime_as_string(raw, unit="s").tolist()
-    return [ts.isoformat() for ts in stamps]
+def _whole_seconds(stamps: np.ndarray) -> bool:
+    """Zone-less stamps on whole seconds: their numpy ISO text is their isoformat()."""
+    return not np.isnat(stamps).any() and bool((stamps.view("i8") % 1_000_000_000 == 0).all())
 
 
 def _to_datetime(text: pd.Series, fmt: str) -> pd.Series:
@@ -436,11 +442,24 @@ def _is_nan_like(values: pd.Series) -> pd.Series:
     return text.isin(["", "nan", "na", "null", "none"])
 
 
-def _parse_timestamps(series_id: str, timestamps) -> tuple[np.ndarray, list[str], object]:
+def _parse_timestamps(series_id: str, timestamps) -> tuple[np.ndarray, list[str] | None, object]:
     """Parse timestamps to UTC-naive datetime64[ns] (float for numeric grids).
 
-    Returns the parsed stamps, their text as given, and the time zone (or None).
+    Returns the parsed stamps, their text as given (None when that text is each
+    stamp's own ISO form, for zone-less whole-second date-times: the labels are
+    then made on demand), and the time zone (or None).
     """
+    dtype = getattr(timestamps, "dtype", None)
+    if isinstance(dtype, np.dtype) and dtype.kind == "M":  # typed, zone-less: the common case
+        stamps = np.asarray(timestamps).astype("datetime64[ns]")
+        if np.isnat(stamps).any():
+            raise TimestampError(
+                series_id,
+                f"{int(np.isnat(stamps).sum())} timestamp(s) are missing; every row needs one",
+            )
+        if _whole_seconds(stamps):
+            return stamps, None, None
+        return stamps, [pd.Timestamp(t).isoformat() for t in stamps], None
     raw = pd.Series(timestamps).reset_index(drop=True)
     if raw.isna().any():
         raise TimestampError(
@@ -452,9 +471,9 @@ def _parse_timestamps(series_id: str, timestamps) -> tuple[np.ndarray, list[str]
             raise TimestampError(series_id, "numeric timestamps must be finite")
         labels = [f"{int(v)}" if float(v).is_integer() else repr(float(v)) for v in stamps]
         return stamps, labels, None
-    if raw.dtype.kind == "M" or isinstance(raw.dtype, pd.DatetimeTZDtype):
+    if isinstance(raw.dtype, pd.DatetimeTZDtype):
         parsed = raw
-        labels = _iso_labels(parsed)
+        labels = [ts.isoformat() for ts in parsed]
     else:
         text = raw.astype(str)
         parsed = _to_datetime(text, "ISO8601")

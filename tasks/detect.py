@@ -377,63 +377,109 @@ def residual_patterns(pi: np.ndarray, *, deltas: Sequence[float] = DELTA_GRID) -
     n = pi.size
     io = np.zeros(n)
     io[0] = 1.0
-    return {
-        "AO": pi,
-        "LS": np.cumsum(pi),
-        "IO": io,
-        "TC": {d: lfilter([1.0], [1.0, -d], pi) for d in deltas},
-    }
-
-
-def _correlate(E: np.ndarray, h: np.ndarray, size: int, n: int) -> np.ndarray:
-    """sum_k h[k] x[T+k] for T in 0..n-1, given the FFT E of x (zero-padded)."""
-    H = np.fft.rfft(h, size)
-    return np.fft.irfft(E * np.conj(H), size)[:n]
+    if n <= DIRECT_TAIL:
+        # h_delta[k] = sum_j delta^(k-j) pi[j]: one product for every decay.
+        pad = np.zeros(2 * n - 1)
+        pad[n - 1 :] = pi
+        lower = np.lib.stride_tricks.sliding_window_view(pad, n)[:, ::-1]  # [k, j] = pi[k - j]
+        powers = np.power.outer(np.asarray(deltas, dtype=float), np.arange(n)).T  # [j, d] = d^j
+        tcs = lower @ powers
+        tc = {d: tcs[:, i] for i, d in enumerate(deltas)}
+    else:
+        tc = {d: lfilter([1.0], [1.0, -d], pi) for d in deltas}
+    return {"AO": pi, "LS": np.cumsum(pi), "IO": io, "TC": tc}
 
 
 def _tau(
-    e: np.ndarray, w: np.ndarray, pats: dict, sigma: float
+    e: np.ndarray, w: np.ndarray, pats: dict, sigma: float, start: int = 0
 ) -> dict[str, tuple[np.ndarray, np.ndarray, np.ndarray | None]]:
-    """omega(T), tau(T) (and the best TC delta) for every time and type."""
+    """omega(T), tau(T) (and the best TC delta) for every time and type.
+
+    Times before ``start`` are NaN when only a short tail is tested (a warm
+    screen): the sums over the tail are then direct products, cheaper than
+    the FFT correlations that serve a whole series.
+    """
     n = e.size
-    size = 1 << math.ceil(math.log2(2 * n))
-    E = np.fft.rfft(e * w, size)
-    W = np.fft.rfft(w, size) if w.min() < 1 else None
+    m = n - start
+    H = np.column_stack([pats["AO"], pats["LS"], *pats["TC"].values()])
+    if start > 0 and m <= DIRECT_TAIL:
+        num, den = _tail_sums(e * w, w, H, start)
+    else:
+        num, den = _fft_sums(e * w, w, H)
+    den = np.where(den > 1e-12, den, np.nan)
+    omega = num / den
+    tau = omega * np.sqrt(den) / sigma
+    if start:
+        omega[:start] = np.nan
+        tau[:start] = np.nan
     out: dict[str, tuple[np.ndarray, np.ndarray, np.ndarray | None]] = {}
-
-    def one(h: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        num = _correlate(E, h, size, n)
-        den = np.cumsum(h * h)[::-1] if W is None else _correlate(W, h * h, size, n)
-        den = np.where(den > 1e-12, den, np.nan)
-        omega = num / den
-        return omega, omega * np.sqrt(den) / sigma
-
-    for kind in ("AO", "LS", "IO"):
-        if kind == "IO":
-            omega = e * w
-            out[kind] = (omega, np.where(w > 0, omega / sigma, np.nan), None)
-        else:
-            omega, tau = one(pats[kind])
-            out[kind] = (omega, tau, None)
-    best_o = best_t = best_d = None
-    for d, h in pats["TC"].items():
-        omega, tau = one(h)
-        if best_t is None:
-            best_o, best_t, best_d = omega, tau, np.full(n, d)
-        else:
-            better = np.abs(np.nan_to_num(tau)) > np.abs(np.nan_to_num(best_t))
-            best_o = np.where(better, omega, best_o)
-            best_t = np.where(better, tau, best_t)
-            best_d = np.where(better, d, best_d)
-    out["TC"] = (best_o, best_t, best_d)  # type: ignore[assignment]
+    io = e * w
+    io_tau = np.where(w > 0, io / sigma, np.nan)
+    if start:
+        io_tau[:start] = np.nan
+    out["IO"] = (io, io_tau, None)
+    for j, kind in enumerate(("AO", "LS")):
+        out[kind] = (omega[:, j], tau[:, j], None)
+    # The TC: the decay whose |tau| is largest, time by time (first on ties).
+    tc_abs = _zero_nan(np.abs(tau[:, 2:]))
+    pick = np.argmax(tc_abs, axis=1)
+    rows = np.arange(n)
+    grid = np.fromiter(pats["TC"], dtype=float)
+    out["TC"] = (omega[rows, 2 + pick], tau[rows, 2 + pick], grid[pick])
     return out
+
+
+DIRECT_TAIL = 256
+"""Longest tested tail whose statistics are summed directly rather than by FFT."""
+
+
+def _fft_sums(x: np.ndarray, w: np.ndarray, H: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """sum_k h[k] x[T+k] and sum_k h[k]^2 w[T+k] for every T and column h of H."""
+    n = x.size
+    size = 1 << math.ceil(math.log2(2 * n))
+    X = np.fft.rfft(x, size)
+    HF = np.conj(np.fft.rfft(H, size, axis=0))
+    num = np.fft.irfft(X[:, None] * HF, size, axis=0)[:n]
+    if w.min() < 1:
+        WF = np.fft.rfft(w, size)
+        H2 = np.conj(np.fft.rfft(H * H, size, axis=0))
+        den = np.fft.irfft(WF[:, None] * H2, size, axis=0)[:n]
+    else:
+        den = np.cumsum(H * H, axis=0)[::-1]
+    return num, den
+
+
+def _tail_sums(
+    x: np.ndarray, w: np.ndarray, H: np.ndarray, start: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """The sums of :func:`_fft_sums` for T >= start only (rows before are zero)."""
+    n = x.size
+    m = n - start
+    pad = np.zeros(2 * m - 1)
+    pad[:m] = x[start:]
+    A = np.lib.stride_tricks.sliding_window_view(pad, m)  # A[i, k] = x[start + i + k]
+    Hm = H[:m]
+    num = np.zeros((n, H.shape[1]))
+    den = np.zeros((n, H.shape[1]))
+    num[start:] = A @ Hm
+    if w.min() < 1:
+        pad[:m] = w[start:]
+        den[start:] = np.lib.stride_tricks.sliding_window_view(pad, m) @ (Hm * Hm)
+    else:
+        den[start:] = np.cumsum(Hm * Hm, axis=0)[::-1]
+    return num, den
+
+
+def _zero_nan(x: np.ndarray) -> np.ndarray:
+    """NaN as 0 (np.nan_to_num without its per-call overhead; values here are finite)."""
+    return np.where(np.isnan(x), 0.0, x)
 
 
 def _scores(taus: dict, where: np.ndarray | int) -> dict[str, np.ndarray]:
     """Log-likelihood support tau^2/2 (TC charged TC_PENALTY) at positions."""
     out = {}
     for kind in EVENT_TYPES:
-        t = np.nan_to_num(taus[kind][1][where])
+        t = _zero_nan(taus[kind][1][where])
         out[kind] = 0.5 * t * t - (TC_PENALTY if kind == "TC" else 0.0)
     return out
 
@@ -456,15 +502,17 @@ def _inner_loop(
     itself, and one a point later is an AO at the start.
     """
     n = e.size
-    pats = residual_patterns(pi)
+    # A short tested tail needs the patterns only as far as the tail reaches.
+    reach = n - start if start > 0 and n - start <= DIRECT_TAIL else n
+    pats = residual_patterns(pi[:reach])
     e = e.copy()
     allowed = (w > 0) & (np.arange(n) >= start)
     ls_from = start + LS_MARGIN if ls_from is None else ls_from
     found: list[_Candidate] = []
     for _ in range(max_inner):
-        taus = _tau(e, w, pats, sigma)
+        taus = _tau(e, w, pats, sigma, start)
         taus["LS"][1][:ls_from] = np.nan
-        stacked = np.vstack([np.abs(np.nan_to_num(taus[k][1])) for k in EVENT_TYPES])
+        stacked = np.vstack([np.abs(_zero_nan(taus[k][1])) for k in EVENT_TYPES])
         best_abs = np.where(allowed, stacked.max(axis=0), 0.0)
         T = int(np.argmax(best_abs))
         if best_abs[T] < crit:

@@ -500,8 +500,8 @@ def polynomials(model: FittedModel | Estimate) -> tuple[np.ndarray, np.ndarray]:
     params = dict(model.params)
     p, d, q = model.order
     P, D, Q, s = model.seasonal_order
-    ar = np.r_[1.0, [-params.get(f"ar.L{i}", 0.0) for i in range(1, p + 1)]]
-    ma = np.r_[1.0, [params.get(f"ma.L{i}", 0.0) for i in range(1, q + 1)]]
+    ar = np.array([1.0] + [-params.get(f"ar.L{i}", 0.0) for i in range(1, p + 1)])
+    ma = np.array([1.0] + [params.get(f"ma.L{i}", 0.0) for i in range(1, q + 1)])
     if s:
         sar = np.zeros(s * P + 1)
         sar[0] = 1.0

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import math
+from collections.abc import Sequence
 from dataclasses import asdict, dataclass, field
 from typing import Any, Literal
 
@@ -62,6 +63,29 @@ def _optional_float(value: Any) -> float | None:
     return None if value is None else float(value)
 
 
+class StampLabels(Sequence):
+    """Labels of a datetime grid: each observed stamp's ISO text, made when asked.
+
+    ``stamps`` holds one zone-less datetime64[ns] per grid point (NaT for a
+    gap); ``labels[i]`` is ``Timestamp.isoformat()`` of a whole-second stamp,
+    so building a series does not format text for every point.
+    """
+
+    __slots__ = ("_stamps",)
+
+    def __init__(self, stamps: np.ndarray) -> None:
+        self._stamps = stamps
+
+    def __len__(self) -> int:
+        return int(self._stamps.size)
+
+    def __getitem__(self, i):
+        if isinstance(i, slice):
+            return StampLabels(self._stamps[i])
+        stamp = self._stamps[i]
+        return None if np.isnat(stamp) else str(np.datetime_as_string(stamp, unit="s"))
+
+
 @dataclass(frozen=True, slots=True, eq=False)
 class RegularSeries:
     """A series on a regular grid.
@@ -76,7 +100,7 @@ class RegularSeries:
     index: pd.Index
     values: np.ndarray
     step: pd.Timedelta | float
-    labels: tuple[str | None, ...]
+    labels: Sequence[str | None]
     n_duplicates: int = 0
 
     @property

@@ -159,3 +159,22 @@ def test_windowed_cold_with_a_window_longer_than_the_history_is_deferred(frame):
     hourly = replace(OPTIONS, window="h", min_points=24)  # 9 windows; the last is held back
     out = analyse_series_work(SeriesWork(SID), frame["timestamp"], frame["value"], hourly)
     assert out.mode == "deferred" and out.note == "8 observed windows of h; a first fit needs 24"
+
+
+def test_series_needing_their_history_share_one_read(cold, frame, tmp_path, monkeypatch):
+    """Two series of a batch both refit (one by age, one after a confirmed LS): one extra read."""
+    import omegascan.tasks.batch as batch
+
+    other = frame.assign(series_id="edge-004/node-18")
+    pd.concat([frame, other]).to_parquet(tmp_path / "part-0.parquet", index=False)
+    spec = open_source(tmp_path)
+    start = frame["timestamp"].iloc[HISTORY - OPTIONS.context_points]
+    works = [_warm_work(cold, start), replace(_warm_work(cold, start), series_id=other.iloc[0, 0])]
+    calls = []
+    real = batch.read_windows
+    monkeypatch.setattr(batch, "read_windows", lambda s, w: calls.append(len(w)) or real(s, w))
+    outs = run_batch(spec, works, OPTIONS).outcomes
+    assert calls == [2, 2]  # the batch's windows, then both histories together
+    assert [o.note for o in outs] == ["coefficients re-estimated: confirmed LS"] * 2
+    assert outs[0].model == outs[1].model  # same data, same history, same fit
+    assert outs[0].model is not None and outs[0].model.nobs == HISTORY + NEW

@@ -165,3 +165,24 @@ def test_local_times_across_a_clock_change_parse_to_one_grid():
 def test_labels_of_typed_times_are_their_isoformat(stamps):
     s = regularize("iso", pd.Series(stamps), np.arange(50.0))
     assert list(s.labels) == [t.isoformat() for t in stamps]
+
+
+def test_typed_times_out_of_order_with_gaps_and_duplicates_label_each_slot_once():
+    """Labels made on demand (zone-less whole seconds) follow the documented rules.
+
+    Reference: pandas' Timestamp.isoformat for the text; the first observation
+    of a slot gives its label, a gap has none.
+    """
+    grid = pd.date_range("2026-02-01", periods=40, freq="min")
+    keep = np.r_[0:10, 12:40]  # two missing minutes
+    stamps = np.r_[grid[keep], grid[5:6]]  # minute 5 twice
+    values = np.r_[np.arange(38.0), 100.0]
+    order = np.random.default_rng(3).permutation(stamps.size)
+    s = regularize("lazy", pd.Series(stamps[order]), values[order])
+    expected = [t.isoformat() for t in grid]
+    expected[10] = expected[11] = None
+    assert list(s.labels) == expected
+    assert s.values[5] == np.median([5.0, 100.0]) and s.n_duplicates == 1
+    assert s.label(10) == grid[10].isoformat()  # a gap quotes the grid time
+    tail = s.tail(31)
+    assert list(tail.labels) == expected[-31:] and tail.label(0) == grid[9].isoformat()

@@ -255,3 +255,47 @@ def test_no_level_shift_at_the_start_where_it_is_the_mean():
     assert [(e.position, e.event_type) for e in result.events] == [(1000, "LS")]
     assert abs(result.events[0].effect - 3) < 3 * result.events[0].se
     assert_allclose(result.model.param_dict["const"], 50, atol=0.1)
+
+
+@pytest.mark.parametrize("start", [0, 3, 240])
+@pytest.mark.parametrize("gaps", [False, True])
+def test_effect_statistics_equal_their_definition_at_every_tested_time(start, gaps):
+    """omega(T) = sum_k h[k] e[T+k] w[T+k] / sum_k h[k]^2 w[T+k], tau = omega sqrt(den) / sigma.
+
+    Checked against the definition summed point by point (Chen & Liu 1993, eq. for
+    the effect estimates in the residuals), for the FFT path (a whole series)
+    and the direct path (a short tested tail, as in a warm screen).
+    """
+    from omegascan.tasks.detect import _tau, residual_patterns
+
+    rng = np.random.default_rng(11)
+    n, sigma = 300, 1.3
+    e = rng.normal(size=n)
+    w = np.ones(n)
+    if gaps:
+        w[rng.choice(n, 25, replace=False)] = 0.0
+    e *= w
+    pi = lfilter([1.0, -0.6], [1.0, 0.3], np.r_[1.0, np.zeros(n - 1)])
+    pats = residual_patterns(pi[: n - start] if start > 200 else pi)
+    taus = _tau(e, w, pats, sigma, start)
+    for kind, h in [("AO", pats["AO"]), ("LS", pats["LS"]), ("TC", None)]:
+        omega, tau, deltas = taus[kind]
+        assert np.isnan(tau[:start]).all()
+        for T in range(start, n, 7):
+            if kind == "TC":
+                h = pats["TC"][deltas[T]]
+            k = np.arange(n - T)
+            den = np.sum(h[k] ** 2 * w[T + k])
+            want = np.sum(h[k] * e[T + k] * w[T + k]) / den
+            assert_allclose(omega[T], want, rtol=1e-9, atol=1e-12)
+            assert_allclose(tau[T], want * math.sqrt(den) / sigma, rtol=1e-9, atol=1e-12)
+    # The TC keeps the decay with the largest |tau| at each time.
+    T = n - 30
+    best = max(
+        pats["TC"],
+        key=lambda d: abs(
+            np.dot(pats["TC"][d][: n - T], e[T:] * w[T:])
+            / math.sqrt(np.sum(pats["TC"][d][: n - T] ** 2 * w[T:]))
+        ),
+    )
+    assert taus["TC"][2][T] == best
