@@ -25,6 +25,7 @@ from omegascan.tasks.batch import (
     SeriesOutcome,
     SeriesWork,
     plan_batches,
+    warm_context,
 )
 from omegascan.tasks.fetch import SourceSpec
 from omegascan.tasks.types import REPORTED_TYPES, Event, FittedModel
@@ -135,11 +136,21 @@ def plan_works(
                 and mark_bound >= _before(end_bound)
             ):
                 continue  # nothing new before the end
-            step = pd.Timedelta(seconds=model.step_seconds or 1.0)
+            # The filter's memory before the watermark, or before the earliest
+            # provisional event when that is older (it is examined again).
+            first = min(
+                [mark_bound]
+                + [
+                    _bound(e.event_time, time_kind)
+                    for e in known.get(sid, ())
+                    if e.status == "provisional"
+                ]
+            )
+            lags = warm_context(model, options) - 1
             if time_kind == "numeric":
-                start = float(mark) - (options.context_points - 1) * (model.step_seconds or 1.0)
+                start = first - lags * (model.step_seconds or 1.0)
             else:
-                start = mark_bound - (options.context_points - 1) * step
+                start = first - lags * pd.Timedelta(seconds=model.step_seconds or 1.0)
             works.append(SeriesWork(sid, model, mark, known.get(sid, ()), start, end_bound))
         else:
             start = _bound(cold_start, time_kind)
@@ -157,7 +168,7 @@ def execute(
     options: AnalysisOptions,
     *,
     workers: int,
-    batch_seconds: float = 4.0,
+    batch_seconds: float = 10.0,
     logger=None,
 ) -> tuple[list[SeriesOutcome], dict[str, float], int]:
     """Submit the batches, write each as it finishes; return outcomes and timings.
@@ -169,7 +180,7 @@ def execute(
 
     from omegascan.tasks.batch import run_batch_task
 
-    batches = plan_batches(works, target_seconds=batch_seconds)
+    batches = plan_batches(works, target_seconds=batch_seconds, workers=workers)
     hook = progress_hook.get()
     total = len(works)
     done = 0

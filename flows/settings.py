@@ -48,7 +48,7 @@ class RunOptions(BaseModel):
     context_points: int = Field(default=240, ge=10, le=100_000)
     refit_after: float = Field(default=1.0, gt=0.0, le=1000.0)
     drift_alpha: float = Field(default=0.001, gt=0.0, lt=0.5)
-    batch_seconds: float = Field(default=4.0, gt=0.0, le=600.0)
+    batch_seconds: float = Field(default=10.0, gt=0.0, le=600.0)
     workers: int = Field(default_factory=lambda: os.cpu_count() or 1, ge=1, le=512)
     window: str | None = None
 

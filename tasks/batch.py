@@ -34,10 +34,11 @@ import numpy as np
 import pandas as pd
 from scipy.special import chdtri
 
-from omegascan.tasks.decompose import decompose, regularize
+from omegascan.tasks.decompose import MIN_POINTS, decompose, regularize
 from omegascan.tasks.detect import detect_events, reestimate, screen_new_points
 from omegascan.tasks.errors import OmegascanError, SeriesError
 from omegascan.tasks.fetch import SeriesWindow, SourceSpec, read_windows
+from omegascan.tasks.fit import pi_weights
 from omegascan.tasks.types import Event, FittedModel
 from omegascan.tasks.window import (
     complete_windows,
@@ -73,7 +74,10 @@ class AnalysisOptions:
     min_points : int
         Observed points a first fit needs (in points, not days).
     context_points : int
-        Points before the watermark read for a warm scan (the filter's memory).
+        Most points before the watermark a warm scan reads.  A raw model reads
+        only its filter's memory (:func:`warm_context`: the lags after which
+        its pi weights are negligible, at least ``MIN_CONTEXT``), up to this
+        bound; windowed models read this many windows.
     refit_after : float
         A model is stale once the points tested since its fit exceed this
         multiple of the points it was fitted on.
@@ -97,6 +101,32 @@ class AnalysisOptions:
     drift_alpha: float = 0.001
     report_from: str | None = None
     window: str | None = None
+
+
+MIN_CONTEXT = MIN_POINTS
+"""Fewest points up to the watermark a warm read takes (a series of fewer is
+refused by ``regularize``, whose minimum this is)."""
+MEMORY_TOLERANCE = 1e-10
+"""A filter's memory ends where the sum of its remaining |pi| weights falls below this."""
+
+
+def warm_context(model: FittedModel, options: AnalysisOptions) -> int:
+    """Points before the watermark a warm screen of ``model`` needs.
+
+    The residuals of the new points are pi(B) applied to the observations:
+    observations more lags back than the filter's memory weigh less than
+    ``MEMORY_TOLERANCE`` in total, so reading them changes nothing.  An AR(1)
+    needs 1 lag (``MIN_CONTEXT``, 24, are read), an MA(1) with theta -0.4 about 26,
+    a near unit MA root all of ``options.context_points``.
+    """
+    if model.window is not None:
+        return options.context_points
+    cap = options.context_points
+    weights = np.abs(pi_weights(model, cap + 1))
+    remaining = np.cumsum(weights[::-1])[::-1]  # remaining[k] = sum of |pi_j| for j >= k
+    negligible = np.flatnonzero(remaining < MEMORY_TOLERANCE)
+    memory = int(negligible[0]) if negligible.size else cap
+    return max(min(MIN_CONTEXT, cap), min(memory, cap))
 
 
 @dataclass(frozen=True, slots=True)
@@ -411,8 +441,12 @@ def _needs_refit(
     return None
 
 
+MAX_BATCH = 2500
+"""Most series in one batch (bounds a batch's memory: 2,500 warm reads are about 1 MB)."""
+
+
 def plan_batches(
-    works: Sequence[SeriesWork], *, target_seconds: float = 4.0
+    works: Sequence[SeriesWork], *, target_seconds: float = 10.0, workers: int = 1
 ) -> list[list[SeriesWork]]:
     """Cut the work into batches of about ``target_seconds`` of computation each.
 
@@ -420,14 +454,19 @@ def plan_batches(
     task carries seconds of real work: the per-task overhead measured for
     Prefect on this kind of machine is about 10 ms with threads and 0.2-0.4 s
     with processes or Dask, which a batch of that size amortizes to a few
-    percent.  Batch sizes: warm 500 series (the cap), cold 20.
+    percent.  Each group is then cut into a multiple of ``workers`` batches of
+    equal size, so no worker is left running a last batch while the others
+    wait.  At 10 s: warm batches of up to 1,250 series, cold of 50.
     """
     batches: list[list[SeriesWork]] = []
     for cold in (True, False):
         group = [w for w in works if (w.expected_seconds == COLD_SECONDS) == cold]
         if not group:
             continue
-        size = max(1, min(500, int(target_seconds / group[0].expected_seconds)))
+        size = max(1, min(MAX_BATCH, int(target_seconds / group[0].expected_seconds)))
+        count = -(-len(group) // size)
+        count = min(len(group), max(1, workers) * -(-count // max(1, workers)))
+        size = -(-len(group) // count)
         batches.extend(group[i : i + size] for i in range(0, len(group), size))
     return batches
 

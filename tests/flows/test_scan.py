@@ -8,6 +8,7 @@ import subprocess
 import sys
 import textwrap
 import time
+from dataclasses import replace
 from pathlib import Path
 
 import pandas as pd
@@ -19,6 +20,7 @@ from omegascan.flows.settings import RunOptions
 from omegascan.tasks import persist
 from omegascan.tasks.batch import AnalysisOptions, plan_batches
 from omegascan.tasks.errors import ConfigError
+from omegascan.tasks.types import Event
 from tests.flows.fleet import make_fleet, write_source
 
 OPTIONS = RunOptions(workers=2)
@@ -65,10 +67,20 @@ def test_plan_batches_sizes_by_cost():
     )
     cold = [SeriesWork(f"c{i}") for i in range(45)]
     warm = [SeriesWork(f"w{i}", model, "2026-01-01") for i in range(1200)]
-    batches = plan_batches(cold + warm, target_seconds=4.0)
-    sizes = [len(b) for b in batches]
-    assert sizes == [20, 20, 5, 500, 500, 200]  # 4 s / 0.2 s = 20 cold; 4 s / 8 ms = 500 warm
-    assert [len(b) for b in plan_batches(warm, target_seconds=1.0)] == [125] * 9 + [75]
+    def sizes(works, **kw):
+        return [len(b) for b in plan_batches(works, **kw)]
+
+    # 10 s / 0.2 s = 50 cold; 10 s / 8 ms = 1,250 warm: one batch each on one worker.
+    assert sizes(cold + warm) == [45, 1200]
+    # Two workers: each group in an even number of equal batches, none left over.
+    assert sizes(cold + warm, workers=2) == [23, 22, 600, 600]
+    # 4 s: 20 cold (3 batches, rounded up to 4 for two workers), 500 warm (3 -> 4).
+    assert sizes(cold + warm, target_seconds=4.0, workers=2) == [12, 12, 12, 9] + [300] * 4
+    assert sizes(warm, target_seconds=1.0) == [120] * 10  # 125 a batch -> 10 batches
+    # The cap: at most 2,500 series a batch however long the target.
+    many = warm * 5
+    assert sizes(many, target_seconds=100.0, workers=2) == [1500] * 4
+    assert sizes(cold[:3], workers=4) == [1, 1, 1]  # never an empty batch
 
 
 def test_plan_works_warm_after_watermark_and_skip_when_done():
@@ -95,8 +107,46 @@ def test_plan_works_warm_after_watermark_and_skip_when_done():
         time_kind="datetime",
     )
     assert [w.series_id for w in works] == ["a", "b"]
-    assert works[0].start == pd.Timestamp("2026-06-09T00:00:00") and not works[0].refit
+    # White noise needs no memory: the 24 points up to the watermark are read (MIN_CONTEXT).
+    assert works[0].start == pd.Timestamp("2026-06-09T01:00:00") and not works[0].refit
     assert works[1].model is None and works[1].refit
+    # An MA(1) with theta -0.9: pi_k = 0.9^k stays above 1e-10 past 25 lags, so the cap holds.
+    ma = replace(model, order=(0, 0, 1), params=(("ma.L1", -0.9), ("sigma2", 1.0)))
+    (long,) = plan_works(
+        ["a"],
+        models={"a": ma},
+        watermarks={"a": "2026-06-10T00:00:00"},
+        known={},
+        options=AnalysisOptions(context_points=25),
+        time_kind="datetime",
+    )
+    assert long.start == pd.Timestamp("2026-06-09T00:00:00")
+    # A provisional event older than the watermark is read with its own memory before it.
+    seen = Event(
+        series_id="a",
+        position=0,
+        event_time="2026-06-09T20:00:00",
+        event_type="TC",
+        effect=3.0,
+        effect_pct=10.0,
+        t_stat=4.2,
+        se=0.7,
+        type_weights=(("TC", 1.0),),
+        status="provisional",
+        decay=0.5,
+        half_life="1 h",
+        level=30.0,
+        model="",
+    )
+    (back,) = plan_works(
+        ["a"],
+        models={"a": model},
+        watermarks={"a": "2026-06-10T00:00:00"},
+        known={"a": (seen,)},
+        options=AnalysisOptions(context_points=25),
+        time_kind="datetime",
+    )
+    assert back.start == pd.Timestamp("2026-06-08T21:00:00")
     done = plan_works(
         ["a"],
         models={"a": model},
