@@ -95,6 +95,13 @@ def make_task_runner(runner: str, *, workers: int, dask_address: str | None = No
     raise ValueError(f"unknown runner {runner!r}; use threads, processes or dask")
 
 
+def start_workers(workers: int) -> list:
+    """Submit one :func:`~omegascan.tasks.batch.start_worker` per worker; wait with ``.wait()``."""
+    from omegascan.tasks.batch import start_worker_task
+
+    return [start_worker_task.submit() for _ in range(max(1, workers))]
+
+
 def plan_works(
     series_ids: Sequence[str],
     *,

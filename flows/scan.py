@@ -27,6 +27,7 @@ from omegascan.flows.pipeline import (
     current_run_id,
     execute,
     plan_works,
+    start_workers,
     stored_state,
     summarize,
 )
@@ -58,6 +59,7 @@ def _run(
 ) -> RunSummary:
     logger = get_run_logger()
     t0 = time.perf_counter()
+    starting = start_workers(options.workers)  # worker imports overlap the planning
     run_id = current_run_id()
     persist.migrate(db)
     spec = open_source(source, columns=_columns(columns), table=table, query=query)
@@ -110,6 +112,9 @@ def _run(
     except BaseException as exc:
         persist.finish_run(db, run_id, "failed", message=f"{type(exc).__name__}: {exc}")
         raise
+    finally:
+        for future in starting:
+            future.wait()
     summary = summarize(
         run_id,
         kind,

@@ -25,6 +25,7 @@ Per series (``analyse_series_work``, pure):
 from __future__ import annotations
 
 import math
+import os
 import time
 from collections.abc import Sequence
 from dataclasses import dataclass, field, replace
@@ -545,7 +546,18 @@ def _resid_scale(notes: Sequence[str]) -> float | None:
     return None
 
 
+def start_worker() -> int:
+    """Do nothing but load this module (and so the engine) where the task runs.
+
+    The flows submit one per worker before they plan: a process or Dask
+    worker spends seconds on its imports, which then overlap the planning
+    instead of delaying the first batch.  Returns the worker's process id.
+    """
+    return os.getpid()
+
+
 _TASKS: dict[str, TaskSpec] = {
+    "start_worker_task": (start_worker, {"name": "start-worker"}),
     "run_batch_task": (
         run_batch,
         {"name": "analyse-batch", "retries": 2, "retry_delay_seconds": [2, 5]},

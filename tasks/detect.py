@@ -26,9 +26,7 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
-from scipy.optimize import minimize_scalar
-from scipy.special import ndtri
-from scipy.stats import norm
+from scipy.special import ndtr, ndtri
 
 from omegascan.tasks.decompose import decompose, profile_at, regularize
 from omegascan.tasks.fit import (
@@ -638,7 +636,9 @@ def _residuals(
 
 
 _TRIM = 3.0
-_TRIM_SD = math.sqrt(1 - 2 * _TRIM * norm.pdf(_TRIM) / (2 * norm.cdf(_TRIM) - 1))
+_TRIM_SD = math.sqrt(
+    1 - 2 * _TRIM * math.exp(-0.5 * _TRIM**2) / math.sqrt(2 * math.pi) / (2 * ndtr(_TRIM) - 1)
+)
 
 
 def robust_sigma(e: np.ndarray) -> float:
@@ -803,6 +803,8 @@ def _weights_at(
         "LS": tau_for(np.cumsum(pi)) if ls_ok else 0.0,
         "IO": float(seg_e[0]) / sigma,
     }
+    from scipy.optimize import minimize_scalar  # here: a screen with no event never needs it
+
     res = minimize_scalar(
         lambda d: -abs(tau_for(_tc(pi[: n - T], d))),
         bounds=(0.05, 0.95),

@@ -31,7 +31,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 import pandas as pd
 from pandas.tseries.frequencies import to_offset
-from scipy.stats import norm
+from scipy.special import ndtri
 
 from omegascan.tasks.decompose import MAX_GRID_RATIO, MIN_POINTS
 from omegascan.tasks.errors import (
@@ -71,7 +71,7 @@ local level)."""
 MAX_AROUND = 1000
 """Most windows a drill reads either side of the window asked for."""
 
-MAD_SCALE = float(1.0 / norm.ppf(0.75))
+MAD_SCALE = float(1.0 / ndtri(0.75))
 """1.4826...: makes the MAD a consistent estimate of the standard deviation of
 normal data (the same scaling as ``scipy.stats.median_abs_deviation(...,
 scale="normal")``)."""

@@ -238,6 +238,17 @@ def test_prefect_deploy_all_then_a_worker_runs_the_scan(prefect_server, tmp_path
     with get_client(sync_client=True) as client:
         state = client.read_flow_run(run.id).state
     assert state is not None and state.is_completed(), state
+    # Two worker processes were started before the planning, then the batches ran.
+    from prefect.client.schemas.filters import FlowRunFilter, FlowRunFilterId
+
+    with get_client(sync_client=True) as client:
+        tasks = client.read_task_runs(
+            flow_run_filter=FlowRunFilter(id=FlowRunFilterId(any_=[run.id]))
+        )
+    starts = [t for t in tasks if t.name.startswith("start-worker")]
+    batches = [t for t in tasks if t.name.startswith("analyse-batch")]
+    assert len(starts) == 2 and batches
+    assert all(t.state is not None and t.state.is_completed() for t in starts + batches)
     snap = persist.content_snapshot(db)
     assert len(snap["series_models"]) == 5  # every disk fitted (the constant one fails)
     assert snap["series_events"]
