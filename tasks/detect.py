@@ -36,6 +36,7 @@ from omegascan.tasks.fit import (
     fit_model,
     innovations,
     interpolate_missing,
+    linear_filter,
     pi_weights,
     polynomials,
     psi_weights,
@@ -327,9 +328,7 @@ def screen_new_points(
     w = (~np.isnan(dev)).astype(float)
     filled = interpolate_missing(dev)
     ar, ma = polynomials(model)
-    from scipy.signal import lfilter
-
-    e = lfilter(ar, ma, filled) * w
+    e = linear_filter(ar, ma, filled) * w
     start = n - n_new
     sigma = model.sigma
     pi = pi_weights(model, n)

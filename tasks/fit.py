@@ -522,9 +522,23 @@ def polynomials(model: FittedModel | Estimate) -> tuple[np.ndarray, np.ndarray]:
     return ar, ma
 
 
+def linear_filter(b: np.ndarray, a: np.ndarray, x: np.ndarray) -> np.ndarray:
+    """``scipy.signal.lfilter(b, a, x)`` (zero initial state), with a fast path
+    for a pure polynomial (``a == [1]``: a pure AR model's pi(B)), where lfilter
+    takes a slow general route."""
+    if len(a) == 1:
+        return np.convolve(x, np.asarray(b, dtype=float) / a[0])[: len(x)]
+    return lfilter(b, a, x)
+
+
 def pi_weights(model: FittedModel | Estimate, n: int) -> np.ndarray:
     """Coefficients of pi(B) = phi(B) alpha(B) / theta(B), lag 0 first (pi_0 = 1)."""
     ar, ma = polynomials(model)
+    if ma.size == 1:  # no MA part: pi(B) is the AR polynomial itself
+        out = np.zeros(n)
+        m = min(n, ar.size)
+        out[:m] = ar[:m] / ma[0]
+        return out
     impulse = np.zeros(n)
     impulse[0] = 1.0
     return lfilter(ar, ma, impulse)

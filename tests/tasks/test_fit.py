@@ -124,3 +124,28 @@ def test_damaged_model_json_is_a_clear_error():
         FittedModel.from_json('{"series_id": "x"}')
     with pytest.raises(ModelError, match="not JSON"):
         FittedModel.from_json("{broken")
+
+
+@pytest.mark.parametrize(
+    "params, order",
+    [
+        ((("ar.L1", 0.6), ("ar.L2", -0.2)), (2, 0, 0)),  # pure AR: pi(B) is the AR polynomial
+        ((("ar.L1", 0.5), ("ma.L1", 0.3)), (1, 0, 1)),
+        ((("ma.L1", -0.4),), (0, 1, 1)),
+    ],
+)
+def test_pi_weights_and_the_filter_equal_scipy_lfilter(params, order):
+    """Reference: scipy.signal.lfilter of the model's polynomials (statsmodels' sign convention)."""
+    from scipy.signal import lfilter
+
+    from omegascan.tasks.fit import linear_filter, polynomials
+
+    model = FittedModel(
+        "x", order, (0, 0, 0, 0), "n", (*params, ("sigma2", 1.0)), 1.0, 100, "mle", True
+    )
+    ar, ma = polynomials(model)
+    impulse = np.r_[1.0, np.zeros(39)]
+    assert_allclose(pi_weights(model, 40), lfilter(ar, ma, impulse), rtol=0, atol=1e-15)
+    assert_allclose(pi_weights(model, 2), lfilter(ar, ma, impulse[:2]), rtol=0, atol=1e-15)
+    x = np.random.default_rng(5).normal(size=60)
+    assert_allclose(linear_filter(ar, ma, x), lfilter(ar, ma, x), rtol=0, atol=1e-12)
