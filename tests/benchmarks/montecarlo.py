@@ -4,11 +4,16 @@ Simulates series with one known event each (``simulate.py``), runs the engine,
 two naive baselines and the statsmodels oracle (``baselines.py``) on every
 series, and prints markdown tables: per method x model x type x size, a
 summary per type at 4 sigma against the targets, the engine's type confusion,
-and timings.
+the oracle type classifier's confusion, the engine's type accuracy against that
+classifier per cell, and timings.
 
 Run from the repository root::
 
     python -m tests.benchmarks.montecarlo --replications 25 --jobs 2
+
+The oracle type classifier runs with the TC decay known by default (about 1.5
+times the study's time without it); ``--oracle-types profiled`` adds the
+profiled-decay variant (about twice the time), ``--oracle-types off`` drops it.
 
 Metrics
 -------
@@ -32,9 +37,27 @@ oracle power
 mean weight of true type
     The engine's type weight of the true type at the matched event, averaged
     (ambiguity shows as weights near 0.5 rather than as a confident wrong type).
+oracle type acc (known δ)
+    Share of a cell's injected series (all of them, recalled or not: the
+    oracle is told the time) that the likelihood classifier
+    ``baselines.oracle_type`` types right.  It fits statsmodels' SARIMAX with
+    the true orders once per type, with that type's regressor at the true time
+    (AO pulse, LS step, TC ``0.7**(t - T)``, IO the model's psi weights),
+    parameters estimated, and picks the largest log-likelihood (equal priors,
+    no penalty: one effect parameter each).  An optimistic bound on the type
+    accuracy any method can reach on these series.
+oracle type acc (δ profiled, +1)
+    The same with the TC decay unknown: the TC's log-likelihood is maximized
+    over decays 0.1, 0.2, ..., 0.9 and charged one unit (AIC's charge for the
+    extra parameter, as the engine charges).  ``--oracle-types profiled`` only.
+oracle ... (recalled)
+    In the engine-against-oracle table, the oracle's type accuracy over the
+    series the engine recalled, paired with the engine's type acc; "calls" are
+    counts of AO/LS/TC/IO on those series.
 
 Options: ``--replications``, ``--clean``, ``--jobs``, ``--models``, ``--types``,
-``--sizes``, ``--n``, ``--seed``, ``--critical``, ``--no-engine`` (``--help``).
+``--sizes``, ``--n``, ``--seed``, ``--critical``, ``--no-engine``,
+``--oracle-types`` (``--help``).
 """
 
 from __future__ import annotations
@@ -55,7 +78,7 @@ if __package__ in (None, ""):  # run as a script: make the repository root impor
 
     sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 
-from tests.benchmarks.baselines import band_events, esd_events, oracle_fit
+from tests.benchmarks.baselines import band_events, esd_events, oracle_fit, oracle_type
 from tests.benchmarks.simulate import (
     BASE_SEED,
     EVENT_TYPES,
@@ -80,6 +103,13 @@ TARGET_RECALL = {"AO": 0.90, "LS": 0.90, "TC": 0.90, "IO": 0.80}
 TARGET_TYPE_ACC = 0.85
 TARGET_FALSE_PER_1000 = 0.5
 TARGET_RMSE_RATIO = 1.25
+
+ORACLE_TYPE_MODES: tuple[str, ...] = ("off", "known", "profiled")
+"""The oracle type classifier: not run; TC decay known (three fits per injected
+series beside ``oracle_fit``'s); also the decay profiled (eleven or twelve)."""
+ORACLE_TYPES_DEFAULT = "known"
+KNOWN = "known"
+PROFILED = "profiled"
 
 
 @dataclass(frozen=True, slots=True)
@@ -116,6 +146,10 @@ class SeriesOutcome:
     oracle_t: float | None = None
     oracle_seconds: float = 0.0
     oracle_converged: bool = True
+    oracle_type_known: str | None = None
+    oracle_type_profiled: str | None = None
+    oracle_type_seconds: float = 0.0
+    oracle_type_converged: bool = True
 
 
 def engine_available() -> bool:
@@ -162,12 +196,18 @@ def evaluate_series(
     base_seed: int = BASE_SEED,
     critical: float | None = None,
     oracle: bool = True,
+    oracle_types: str = ORACLE_TYPES_DEFAULT,
 ) -> SeriesOutcome:
     """Build one series and run every method (and the oracle) on it.
 
-    A method that raises is recorded with its error and no detections, so one
-    failure does not stop a study; the tables count such series.
+    ``oracle_types`` is one of ``ORACLE_TYPE_MODES``: the likelihood type
+    classifier off, with the TC decay known only, or also with the decay
+    profiled (only with ``oracle``).  A method that raises is recorded with its
+    error and no detections, so one failure does not stop a study; the tables
+    count such series.
     """
+    if oracle_types not in ORACLE_TYPE_MODES:
+        raise ValueError(f"oracle_types must be one of {ORACLE_TYPE_MODES}, got {oracle_types!r}")
     series = key.build(n=n, base_seed=base_seed)
     runs: dict[str, MethodRun] = {}
     for name in methods:
@@ -186,6 +226,16 @@ def evaluate_series(
         oracle_seconds = time.perf_counter() - start
         oracle_omega, converged = fit.omega, fit.converged
         oracle_t = fit.omega / fit.se if fit.se > 0 else math.nan
+    typed = None
+    type_seconds = 0.0
+    if oracle and series.event_type is not None and oracle_types != "off":
+        start = time.perf_counter()
+        typed = oracle_type(
+            series,
+            profile=oracle_types == PROFILED,
+            known_llf={series.event_type: fit.llf},  # the true type's fit, done above
+        )
+        type_seconds = time.perf_counter() - start
     return SeriesOutcome(
         key=key,
         series_id=series.series_id,
@@ -197,6 +247,10 @@ def evaluate_series(
         oracle_t=oracle_t,
         oracle_seconds=oracle_seconds,
         oracle_converged=converged,
+        oracle_type_known=None if typed is None else typed.known,
+        oracle_type_profiled=None if typed is None else typed.profiled,
+        oracle_type_seconds=type_seconds,
+        oracle_type_converged=True if typed is None else typed.converged,
     )
 
 
@@ -214,6 +268,7 @@ def run_study(
     base_seed: int = BASE_SEED,
     critical: float | None = None,
     oracle: bool = True,
+    oracle_types: str = ORACLE_TYPES_DEFAULT,
 ) -> list[SeriesOutcome]:
     """Evaluate every series, in this process (``jobs=1``) or a process pool."""
     options = {
@@ -222,6 +277,7 @@ def run_study(
         "base_seed": base_seed,
         "critical": critical,
         "oracle": oracle,
+        "oracle_types": oracle_types,
     }
     work = [(k, options) for k in keys]
     if jobs <= 1:
@@ -346,6 +402,26 @@ def oracle_rmse_all(outcomes: Sequence[SeriesOutcome]) -> float:
     return float(np.sqrt(np.mean(err**2))) if err.size else math.nan
 
 
+def oracle_called(outcome: SeriesOutcome, variant: str) -> str | None:
+    """The oracle type classifier's type for one series (``KNOWN`` or ``PROFILED``), or None."""
+    if variant == KNOWN:
+        return outcome.oracle_type_known
+    if variant == PROFILED:
+        return outcome.oracle_type_profiled
+    raise ValueError(f"variant must be {KNOWN!r} or {PROFILED!r}, got {variant!r}")
+
+
+def oracle_type_acc(outcomes: Iterable[SeriesOutcome], variant: str) -> float:
+    """Share of injected series the oracle type classifier ran on that it typed right."""
+    calls = [
+        (o.key.event_type, oracle_called(o, variant))
+        for o in outcomes
+        if o.key.event_type is not None
+    ]
+    right = [t == c for t, c in calls if c is not None]
+    return float(np.mean(right)) if right else math.nan
+
+
 def _group(outcomes: Iterable[SeriesOutcome]) -> dict[tuple[str, str, float | None], list]:
     groups: dict[tuple[str, str, float | None], list[SeriesOutcome]] = {}
     for o in outcomes:
@@ -410,22 +486,28 @@ def format_study_table(
     """The main table, one row per method x model x type x size.
 
     With ``critical``, the oracle's power at that critical value is shown beside
-    the recall (the same for every method of a cell).
+    the recall (the same for every method of a cell); the oracle type
+    classifier's accuracy over all the cell's series is shown beside the type
+    accuracy (likewise).
     """
-    groups = _group(outcomes) if critical is not None else {}
+    groups = _group(outcomes)
     lines = [
         "| method | model | type | size | series | recall | oracle power | type acc | "
+        "oracle type acc (known δ) | oracle type acc (δ profiled, +1) | "
         "false/1000 (clean) | false/1000 (injected) | RMSE | oracle RMSE | ratio | errors |",
-        "|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|",
+        "|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|",
     ]
     for r in rows:
         clean = r.event_type == "clean"
         cell = groups.get((r.model, r.event_type, r.size), ())
         power = oracle_power(cell, critical) if critical is not None and not clean else math.nan
+        acc_known = oracle_type_acc(cell, KNOWN)
+        acc_prof = oracle_type_acc(cell, PROFILED)
         lines.append(
             f"| {r.method} | {r.model} | {r.event_type} | "
             f"{'—' if r.size is None else f'{r.size:g}σ'} | {r.n_series} | "
             f"{_f(r.recall)} | {_f(power)} | {_f(r.type_acc)} | "
+            f"{_f(acc_known)} | {_f(acc_prof)} | "
             f"{_f(r.false_per_1000) if clean else '—'} | "
             f"{'—' if clean else _f(r.false_per_1000)} | "
             f"{_f(r.rmse, 3)} | {_f(r.oracle_rmse, 3)} | {_f(r.ratio)} | {r.n_errors} |"
@@ -461,6 +543,8 @@ def format_summary(
             " oracle RMSE, all series |"
         )
         sep.append("---|---|---|---|---|")
+    head.append(" oracle type acc (known δ) | oracle type acc (δ profiled, +1) |")
+    sep.append("---|---|")
     lines = ["".join(head), "".join(sep)]
     for t in EVENT_TYPES:
         row = [f"| {t} | ≥ {TARGET_RECALL[t]:.2f} |"]
@@ -483,6 +567,7 @@ def format_summary(
                 f" {_f(s.type_acc)}{_mark(acc_ok)} | {_f(s.rmse, 3)} | {_f(s.oracle_rmse, 3)} |"
                 f" {_f(s.ratio)}{_mark(ratio_ok)} | {_f(oracle_rmse_all(sel), 3)} |"
             )
+        row.append(f" {_f(oracle_type_acc(sel, KNOWN))} | {_f(oracle_type_acc(sel, PROFILED))} |")
         lines.append("".join(row))
     # False events on clean series, pooled over models.
     row = [f"| clean: false/1000 | ≤ {TARGET_FALSE_PER_1000} |"]
@@ -498,6 +583,7 @@ def format_summary(
         row.append(f" {_f(s.false_per_1000)}{_mark(ok)} |")
     if ENGINE in methods:
         row.append(" | | | | |")
+    row.append(" | |")
     lines.append("".join(row))
     return "\n".join(lines)
 
@@ -530,6 +616,73 @@ def format_confusion(outcomes: Sequence[SeriesOutcome]) -> str:
     return "\n".join(lines)
 
 
+def _calls(labels: Iterable[str | None]) -> str:
+    """Counts of each type among ``labels`` as ``AO/LS/TC/IO`` (None, a miss, not counted)."""
+    labels = list(labels)
+    return "/".join(str(sum(x == t for x in labels)) for t in EVENT_TYPES)
+
+
+def format_oracle_confusion(outcomes: Sequence[SeriesOutcome], variant: str) -> str:
+    """Oracle type classifier: true type x its type, pooled over models and sizes."""
+    lines = [
+        "| true \\ oracle | AO | LS | TC | IO | series | accuracy |",
+        "|---|---|---|---|---|---|---|",
+    ]
+    for t in EVENT_TYPES:
+        called = [oracle_called(o, variant) for o in outcomes if o.key.event_type == t]
+        called = [c for c in called if c is not None]
+        counts = [sum(c == u for c in called) for u in EVENT_TYPES]
+        acc = counts[EVENT_TYPES.index(t)] / len(called) if called else math.nan
+        lines.append(f"| {t} | " + " | ".join(map(str, counts)) + f" | {len(called)} | {_f(acc)} |")
+    return "\n".join(lines)
+
+
+def format_type_comparison(outcomes: Sequence[SeriesOutcome]) -> str:
+    """Engine type accuracy against the oracle type classifier, per model x type x size.
+
+    The oracle's accuracy is given over all the cell's series and, paired with
+    the engine's, over the series the engine recalled (recalled series tend to
+    carry larger realized effects, which are easier to type).  Calls are counts
+    of AO/LS/TC/IO: the engine's at its matched event, the oracle's on the
+    recalled series.  Rows with model ``all`` pool the models.
+    """
+    lines = [
+        "| model | type | size | series | engine recalled | engine type acc | "
+        "oracle known δ (all) | oracle profiled (all) | oracle known δ (recalled) | "
+        "oracle profiled (recalled) | engine calls AO/LS/TC/IO | "
+        "oracle known δ calls (recalled) | oracle profiled calls (recalled) |",
+        "|---|---|---|---|---|---|---|---|---|---|---|---|---|",
+    ]
+    injected = [o for o in outcomes if o.key.event_type is not None]
+    sizes = sorted({o.key.size for o in injected})
+    models = [m for m in MODEL_NAMES if any(o.key.model == m for o in injected)]
+    for model in (*models, "all"):
+        for t in EVENT_TYPES:
+            for size in sizes:
+                cell = [
+                    o
+                    for o in injected
+                    if o.key.event_type == t
+                    and o.key.size == size
+                    and (model == "all" or o.key.model == model)
+                ]
+                if not cell:
+                    continue
+                hits = [(o, match(o, ENGINE)) for o in cell]
+                hits = [(o, d) for o, d in hits if d is not None]
+                rec = [o for o, _ in hits]
+                acc = np.mean([d.event_type == t for _, d in hits]) if hits else math.nan
+                lines.append(
+                    f"| {model} | {t} | {size:g}σ | {len(cell)} | {len(hits)} | {_f(acc)} | "
+                    f"{_f(oracle_type_acc(cell, KNOWN))} | {_f(oracle_type_acc(cell, PROFILED))} | "
+                    f"{_f(oracle_type_acc(rec, KNOWN))} | {_f(oracle_type_acc(rec, PROFILED))} | "
+                    f"{_calls(d.event_type for _, d in hits)} | "
+                    f"{_calls(o.oracle_type_known for o in rec)} | "
+                    f"{_calls(o.oracle_type_profiled for o in rec)} |"
+                )
+    return "\n".join(lines)
+
+
 def format_timings(outcomes: Sequence[SeriesOutcome], methods: Sequence[str]) -> str:
     """Wall seconds per series per method (inside the worker process)."""
     lines = [
@@ -545,6 +698,12 @@ def format_timings(outcomes: Sequence[SeriesOutcome], methods: Sequence[str]) ->
     if orc.size:
         lines.append(
             f"| {ORACLE} | {orc.size} | {orc.mean():.4f} | {np.median(orc):.4f} | {orc.max():.4f} |"
+        )
+    typ = np.array([o.oracle_type_seconds for o in outcomes if o.oracle_type_known is not None])
+    if typ.size:
+        lines.append(
+            f"| oracle types | {typ.size} | {typ.mean():.4f} | {np.median(typ):.4f} |"
+            f" {typ.max():.4f} |"
         )
     return "\n".join(lines)
 
@@ -581,7 +740,11 @@ def report(
         "correctly typed recalled events; oracle RMSE over the same series (statsmodels "
         "SARIMAX, true orders, true regressor at the true time, cov_type='oim'). "
         "'oracle power': share of series whose oracle |t| statistic clears the engine's "
-        "critical value C (an optimistic bound on recall at that C).",
+        "critical value C (an optimistic bound on recall at that C). 'oracle type acc': "
+        "share of all the cell's series that a likelihood classifier typed right, told the "
+        "true time and orders (statsmodels SARIMAX, one fit per type with its regressor at "
+        "the true time, largest log-likelihood; TC decay known 0.7, or profiled over "
+        "0.1..0.9 and charged 1 log-likelihood unit): an optimistic bound on type accuracy.",
         "",
         format_study_table(study_table(outcomes, methods), outcomes, critical=critical),
         "",
@@ -596,10 +759,30 @@ def report(
             "",
             format_confusion(outcomes),
         ]
+    typed = [o for o in outcomes if o.oracle_type_known is not None]
+    if typed:
+        for variant, title in ((KNOWN, "TC decay known"), (PROFILED, "TC decay profiled, +1")):
+            if any(oracle_called(o, variant) is not None for o in typed):
+                parts += [
+                    "",
+                    f"### Oracle type confusion, {title} (all models and sizes)",
+                    "",
+                    format_oracle_confusion(typed, variant),
+                ]
+        if ENGINE in methods:
+            parts += [
+                "",
+                "### Type accuracy: engine against the oracle type classifier",
+                "",
+                format_type_comparison(outcomes),
+            ]
     parts += ["", "### Timings", "", format_timings(outcomes, methods)]
     nonconv = sum(not o.oracle_converged for o in outcomes if o.oracle_omega is not None)
     if nonconv:
         parts += ["", f"Oracle fits not reported converged: {nonconv}."]
+    nonconv = sum(not o.oracle_type_converged for o in typed)
+    if nonconv:
+        parts += ["", f"Series with an oracle type fit not reported converged: {nonconv}."]
     errs = format_errors(outcomes, methods)
     if errs:
         parts += ["", "### Errors", "", errs]
@@ -640,6 +823,13 @@ def _parse(argv: Sequence[str] | None) -> argparse.Namespace:
         help="engine critical value (default: the engine's own)",
     )
     p.add_argument("--no-engine", action="store_true", help="run the baselines and the oracle only")
+    p.add_argument(
+        "--oracle-types",
+        choices=ORACLE_TYPE_MODES,
+        default=ORACLE_TYPES_DEFAULT,
+        help="oracle type classifier: off, TC decay known only (3 fits per injected series), "
+        f"or also the decay profiled (11-12 fits; default {ORACLE_TYPES_DEFAULT})",
+    )
     args = p.parse_args(argv)
     if args.replications < 1 or args.jobs < 1 or args.n < 50:
         p.error("--replications and --jobs must be at least 1 and --n at least 50")
@@ -668,7 +858,13 @@ def main(argv: Sequence[str] | None = None) -> int:
     )
     start = time.perf_counter()
     outcomes = run_study(
-        keys, jobs=args.jobs, methods=methods, n=args.n, base_seed=args.seed, critical=args.critical
+        keys,
+        jobs=args.jobs,
+        methods=methods,
+        n=args.n,
+        base_seed=args.seed,
+        critical=args.critical,
+        oracle_types=args.oracle_types,
     )
     wall = time.perf_counter() - start
     crit = args.critical

@@ -12,6 +12,9 @@ External references, named beside each check:
 - statsmodels as oracle: SARIMAX with the true orders and the true event
   regressor at the true time (cov_type="oim"), and statsmodels' ARMA impulse
   response for the IO shape;
+- statsmodels likelihood for the oracle type classifier: the type whose
+  regressor at the true time gives the SARIMAX fit with the largest
+  log-likelihood;
 - Rosner (1983) for the generalized ESD baseline.
 """
 
@@ -23,19 +26,32 @@ from numpy.testing import assert_allclose
 from statsmodels.tsa.arima_process import ArmaProcess
 from statsmodels.tsa.statespace.sarimax import SARIMAX
 
-from tests.benchmarks.baselines import esd_critical_values, generalized_esd
+from tests.benchmarks.baselines import (
+    ORACLE_DELTA_GRID,
+    TC_CHARGE,
+    esd_critical_values,
+    generalized_esd,
+    oracle_fit,
+    oracle_type,
+)
 from tests.benchmarks.montecarlo import (
     BAND,
     ENGINE,
+    KNOWN,
     METHODS,
+    PROFILED,
+    evaluate_series,
+    format_oracle_confusion,
     match,
     oracle_power,
+    oracle_type_acc,
     pooled_stats,
     run_study,
 )
 from tests.benchmarks.simulate import (
     EVENT_TYPES,
     MODELS,
+    SeriesKey,
     make_series,
     study_keys,
     unit_regressor,
@@ -167,6 +183,73 @@ def test_generalized_esd_matches_rosner_example() -> None:
     assert sorted(x[list(res.outliers)]) == [5.34, 5.42, 6.01]
 
 
+# -- the oracle type classifier (statsmodels likelihood) --------------------------
+
+CLEAR_CASES = [("ar1", "LS", 0), ("ar1", "LS", 1), ("arima011", "AO", 0), ("arima011", "AO", 1)]
+
+
+@pytest.fixture(scope="module")
+def clear_verdicts():
+    """6-sigma events whose type a likelihood comparison must get right."""
+    out = {}
+    for model, kind, r in CLEAR_CASES:
+        s = make_series(model, kind, 6.0, r)
+        out[(model, kind, r)] = (s, oracle_type(s), oracle_fit(s))
+    return out
+
+
+@pytest.mark.parametrize("case", CLEAR_CASES, ids=lambda c: f"{c[0]}-{c[1]}-r{c[2]}")
+def test_oracle_type_clear_cases(clear_verdicts, case) -> None:
+    """A 6-sigma LS on ar1 comes out LS and a 6-sigma AO on arima011 comes out AO,
+    with the TC decay known and profiled.  Source: statsmodels SARIMAX
+    log-likelihood, one fit per type with its regressor at the true time."""
+    _, verdict, _ = clear_verdicts[case]
+    kind = case[1]
+    assert verdict.known == kind, verdict.llf
+    assert verdict.profiled == kind, (verdict.llf, verdict.tc_profile)
+    assert max(verdict.llf, key=verdict.llf.__getitem__) == kind
+
+
+@pytest.mark.parametrize("case", CLEAR_CASES, ids=lambda c: f"{c[0]}-{c[1]}-r{c[2]}")
+def test_oracle_type_likelihoods_match_oracle_fit(clear_verdicts, case) -> None:
+    """The classifier's fits (sigma^2 concentrated out, no covariance) reach the
+    same maximum as oracle_fit's full statsmodels SARIMAX fit of the true type
+    (llf within 1e-3), and the TC profile covers the grid with its 0.7 point the
+    known-decay fit.  Source: statsmodels SARIMAX exact likelihood."""
+    s, verdict, fit = clear_verdicts[case]
+    plain = oracle_type(s, profile=False)  # every type fitted here, none taken from oracle_fit
+    assert abs(plain.llf[s.event_type] - fit.llf) < 1e-3, (plain.llf, fit.llf)
+    assert set(verdict.tc_profile) == set(ORACLE_DELTA_GRID)
+    assert verdict.tc_profile[0.7] == verdict.llf["TC"]
+    assert verdict.profiled_scores["TC"] == max(verdict.tc_profile.values()) - TC_CHARGE
+    assert plain.profiled is None and plain.known == verdict.known
+
+
+def test_oracle_tc_profile_contains_the_ar1_io(clear_verdicts) -> None:
+    """On an AR(1) with phi 0.6 the IO regressor is psi_k = 0.6**k, the TC with
+    decay 0.6 (statsmodels ArmaProcess.arma2ma gives those psi weights; see the
+    test above), so the profile's 0.6 point and the IO fit are one model:
+    their statsmodels log-likelihoods agree within 1e-3."""
+    for (model, _, _), (_, verdict, _) in clear_verdicts.items():
+        if model == "ar1":
+            assert abs(verdict.tc_profile[0.6] - verdict.llf["IO"]) < 1e-3, verdict
+
+
+def test_study_records_the_oracle_type(clear_verdicts) -> None:
+    """The study's per-series record carries the classifier's verdicts (statsmodels
+    likelihood, as above) and its accuracy and confusion count them."""
+    key = SeriesKey("ar1", "LS", 6.0, 0)
+    out = evaluate_series(key, methods=(BAND,), oracle_types=KNOWN)
+    verdict = clear_verdicts[("ar1", "LS", 0)][1]
+    assert out.oracle_type_known == verdict.known == "LS"
+    assert out.oracle_type_profiled is None
+    assert oracle_type_acc([out], KNOWN) == 1.0
+    assert np.isnan(oracle_type_acc([out], PROFILED))
+    assert "| LS | 0 | 1 | 0 | 0 | 1 | 1.00 |" in format_oracle_confusion([out], KNOWN)
+    with pytest.raises(ValueError, match="oracle_types"):
+        evaluate_series(key, methods=(BAND,), oracle_types="maybe")
+
+
 # -- the engine on a small study -------------------------------------------------
 
 
@@ -175,7 +258,7 @@ def small_study():
     keys = list(
         study_keys(models=("ar1",), sizes=(4.0, 5.0), replications=6, clean_replications=10)
     )
-    return run_study(keys, jobs=2, methods=METHODS)
+    return run_study(keys, jobs=2, methods=METHODS, oracle_types="off")  # tested above
 
 
 def test_engine_ran_on_every_series(small_study) -> None:
