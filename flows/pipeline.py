@@ -184,6 +184,7 @@ def execute(
     is a few batches' worth.  Outcomes keep only what the summary needs.
     """
     from prefect.futures import as_completed
+    from prefect.utilities.annotations import quote
 
     from omegascan.tasks.batch import run_batch_task
 
@@ -220,7 +221,8 @@ def execute(
     while queue or pending:
         while queue and len(pending) < limit:
             batch = queue.pop(0)
-            pending[run_batch_task.submit(spec, batch, options)] = batch
+            # quote: Prefect need not walk a thousand works looking for futures.
+            pending[run_batch_task.submit(spec, quote(batch), options)] = batch
         future = next(as_completed(list(pending)))
         finish(future, pending.pop(future))
     return results, timings, len(batches)

@@ -68,11 +68,12 @@ def _run(
     persist.start_run(db, run_id, kind, _span_text(span[0]), _span_text(span[1]))
     analysis = options.analysis(report_from=report_from)
     outcomes_all = []
-    timings: dict[str, float] = {}
+    timings: dict[str, float] = {"open": time.perf_counter() - t0}
     batches = 0
     before: dict = {}
     try:
         for k, (_, chunk_end) in enumerate(chunks, start=1):
+            t_plan = time.perf_counter()
             models, marks, known, index = stored_state(db, ids)
             if k == 1:
                 before = index
@@ -87,6 +88,7 @@ def _run(
                 cold_start=cold_start,
                 refit=refit and k == 1,
             )
+            timings["plan"] = timings.get("plan", 0.0) + time.perf_counter() - t_plan
             logger.info(
                 "%s chunk %d/%d: %d of %d series have work",
                 kind,
