@@ -24,6 +24,7 @@ from omegascan.tasks.batch import (
     BatchOutcome,
     SeriesOutcome,
     SeriesWork,
+    WorkBatch,
     plan_batches,
     warm_context,
 )
@@ -184,7 +185,6 @@ def execute(
     is a few batches' worth.  Outcomes keep only what the summary needs.
     """
     from prefect.futures import as_completed
-    from prefect.utilities.annotations import quote
 
     from omegascan.tasks.batch import run_batch_task
 
@@ -221,8 +221,8 @@ def execute(
     while queue or pending:
         while queue and len(pending) < limit:
             batch = queue.pop(0)
-            # quote: Prefect need not walk a thousand works looking for futures.
-            pending[run_batch_task.submit(spec, quote(batch), options)] = batch
+            # One opaque value: Prefect need not walk a thousand works looking for futures.
+            pending[run_batch_task.submit(spec, WorkBatch(batch), options)] = batch
         future = next(as_completed(list(pending)))
         finish(future, pending.pop(future))
     return results, timings, len(batches)

@@ -178,3 +178,21 @@ def test_series_needing_their_history_share_one_read(cold, frame, tmp_path, monk
     assert [o.note for o in outs] == ["coefficients re-estimated: confirmed LS"] * 2
     assert outs[0].model == outs[1].model  # same data, same history, same fit
     assert outs[0].model is not None and outs[0].model.nobs == HISTORY + NEW
+
+
+def test_a_work_batch_is_one_opaque_value_that_pickles_whole(cold):
+    """Prefect's parameter walk (prefect.utilities.collections.visit_collection) sees one value."""
+    import pickle
+
+    import cloudpickle
+    from prefect.utilities.collections import visit_collection
+
+    from omegascan.tasks.batch import WorkBatch
+
+    works = [_warm_work(cold), SeriesWork("edge-004/node-18")]
+    batch = WorkBatch(works)
+    seen: list = []
+    visit_collection(batch, seen.append)
+    assert seen == [batch]
+    again = pickle.loads(cloudpickle.dumps(batch))
+    assert len(again) == 2 and list(again) == works
