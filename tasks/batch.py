@@ -483,13 +483,14 @@ def plan_batches(
     wait.  At 10 s: warm batches of up to 1,250 series, cold of 50.
     """
     batches: list[list[SeriesWork]] = []
+    workers = max(1, workers)
     for cold in (True, False):
         group = [w for w in works if (w.expected_seconds == COLD_SECONDS) == cold]
         if not group:
             continue
         size = max(1, min(MAX_BATCH, int(target_seconds / group[0].expected_seconds)))
         count = -(-len(group) // size)
-        count = min(len(group), max(1, workers) * -(-count // max(1, workers)))
+        count = min(len(group), workers * -(-count // workers))
         size = -(-len(group) // count)
         batches.extend(group[i : i + size] for i in range(0, len(group), size))
     return batches

@@ -153,20 +153,18 @@ def regularize(series_id: str, timestamps, values) -> RegularSeries:
             f"{size} slots for {distinct.size} timestamps); resample the series first",
         )
     # Observations sharing a slot are resolved by their median.
+    # A slot's label is its first observation's timestamp text.
     grid = np.full(size, np.nan)
     if slot.size < 2 or np.all(np.diff(slot) > 0):  # no shared slot: no grouping needed
         grid[slot] = vals
         n_duplicates = 0
+        slots, first = slot, np.arange(slot.size)
     else:
         frame = pd.DataFrame({"slot": slot, "value": vals})
         grouped = frame.groupby("slot", sort=True)["value"]
         medians = grouped.median()
         n_duplicates = int((grouped.size() - 1).sum())
         grid[medians.index.to_numpy()] = medians.to_numpy()
-    # A slot's label is its first observation's timestamp text.
-    if slot.size < 2 or np.all(np.diff(slot) > 0):
-        slots, first = slot, np.arange(slot.size)
-    else:
         slots, first = np.unique(slot, return_index=True)
     grid_labels: Sequence[str | None]
     if labels is None:

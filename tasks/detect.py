@@ -397,9 +397,8 @@ def _tau(
     the FFT correlations that serve a whole series.
     """
     n = e.size
-    m = n - start
     H = np.column_stack([pats["AO"], pats["LS"], *pats["TC"].values()])
-    if start > 0 and m <= DIRECT_TAIL:
+    if _direct_tail(n, start):
         num, den = _tail_sums(e * w, w, H, start)
     else:
         num, den = _fft_sums(e * w, w, H)
@@ -428,6 +427,11 @@ def _tau(
 
 DIRECT_TAIL = 256
 """Longest tested tail whose statistics are summed directly rather than by FFT."""
+
+
+def _direct_tail(n: int, start: int) -> bool:
+    """Only a short tail from ``start`` is tested: direct sums, patterns that long."""
+    return start > 0 and n - start <= DIRECT_TAIL
 
 
 def _fft_sums(x: np.ndarray, w: np.ndarray, H: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -500,7 +504,7 @@ def _inner_loop(
     """
     n = e.size
     # A short tested tail needs the patterns only as far as the tail reaches.
-    reach = n - start if start > 0 and n - start <= DIRECT_TAIL else n
+    reach = n - start if _direct_tail(n, start) else n
     pats = residual_patterns(pi[:reach])
     e = e.copy()
     allowed = (w > 0) & (np.arange(n) >= start)

@@ -534,14 +534,9 @@ def linear_filter(b: np.ndarray, a: np.ndarray, x: np.ndarray) -> np.ndarray:
 def pi_weights(model: FittedModel | Estimate, n: int) -> np.ndarray:
     """Coefficients of pi(B) = phi(B) alpha(B) / theta(B), lag 0 first (pi_0 = 1)."""
     ar, ma = polynomials(model)
-    if ma.size == 1:  # no MA part: pi(B) is the AR polynomial itself
-        out = np.zeros(n)
-        m = min(n, ar.size)
-        out[:m] = ar[:m] / ma[0]
-        return out
     impulse = np.zeros(n)
     impulse[0] = 1.0
-    return lfilter(ar, ma, impulse)
+    return linear_filter(ar, ma, impulse)  # no MA part: the AR polynomial itself
 
 
 def psi_weights(model: FittedModel | Estimate, n: int) -> np.ndarray:
