@@ -4,10 +4,10 @@ Call :func:`publish_run_artifacts` at the end of a scan, backfill or refit
 flow (inside the flow run, so the artifacts belong to it).  Two keyed
 artifacts are created, so the Prefect UI keeps their history across runs:
 
-- ``omegascan-<kind>-summary`` (markdown): series analysed and failed, events
+- ``changekind-<kind>-summary`` (markdown): series analysed and failed, events
   new/changed/retracted, new events by type, the strongest events by |t|, and
   the failures;
-- ``omegascan-<kind>-events`` (table): the run's events, strongest first --
+- ``changekind-<kind>-events`` (table): the run's events, strongest first --
   those it wrote or changed (``last_run_id`` is the run) when the database is
   given, else the summary's strongest events.
 """
@@ -19,8 +19,8 @@ import re
 from collections.abc import Mapping, Sequence
 from typing import Any
 
-from omegascan.flows.pipeline import RunSummary
-from omegascan.tasks.types import EVENT_NAMES, REPORTED_TYPES, format_duration
+from changekind.flows.pipeline import RunSummary
+from changekind.tasks.types import EVENT_NAMES, REPORTED_TYPES, format_duration
 
 MAX_TABLE_ROWS = 1000
 """Most rows in the events table (strongest first); the description says how many were left out."""
@@ -33,8 +33,8 @@ _MD_SPECIAL = re.compile(r"([\\`*_{}\[\]<>()#+!|~])")
 
 
 def artifact_key(kind: str, what: str) -> str:
-    """``omegascan-<kind>-<what>`` in lowercase letters, digits and dashes (Prefect's rule)."""
-    raw = f"omegascan-{kind}-{what}".lower()
+    """``changekind-<kind>-<what>`` in lowercase letters, digits and dashes (Prefect's rule)."""
+    raw = f"changekind-{kind}-{what}".lower()
     return re.sub(r"-{2,}", "-", re.sub(r"[^a-z0-9-]+", "-", raw)).strip("-")
 
 
@@ -65,7 +65,7 @@ def run_markdown(summary: RunSummary, *, n_table_rows: int | None = None) -> str
     """
     s = summary
     lines = [
-        f"# omegascan {_md(s.kind)} run",
+        f"# changekind {_md(s.kind)} run",
         "",
         f"Run `{_md(s.run_id)}`, {format_duration(s.seconds)}, {s.batches} batch(es).",
         "",
@@ -145,7 +145,7 @@ def run_event_rows(
 ) -> list[dict[str, Any]]:
     """The events table: one row per event, strongest |t| first.
 
-    ``records`` are rows of :func:`omegascan.tasks.persist.read_events`; those
+    ``records`` are rows of :func:`changekind.tasks.persist.read_events`; those
     whose ``last_run_id`` is the run are kept.  Without records, the summary's
     strongest events.
     """
@@ -181,7 +181,7 @@ def publish_run_artifacts(
 
     records: list[dict[str, Any]] | None = None
     if db is not None:
-        from omegascan.tasks import persist
+        from changekind.tasks import persist
 
         frame = persist.read_events(db, include_retracted=True)
         frame = frame[frame["last_run_id"] == summary.run_id]
@@ -191,7 +191,7 @@ def publish_run_artifacts(
     create_markdown_artifact(
         markdown=run_markdown(summary, n_table_rows=len(shown)),
         key=artifact_key(summary.kind, "summary"),
-        description=f"omegascan {summary.kind} {summary.run_id}: counts, strongest events, "
+        description=f"changekind {summary.kind} {summary.run_id}: counts, strongest events, "
         "failures",
     )
     what = "events written, changed or retracted" if db is not None else "strongest events"
@@ -199,7 +199,7 @@ def publish_run_artifacts(
     create_table_artifact(
         table=shown,
         key=artifact_key(summary.kind, "events"),
-        description=f"omegascan {summary.kind} {summary.run_id}: {what}{more}",
+        description=f"changekind {summary.kind} {summary.run_id}: {what}{more}",
     )
 
 

@@ -1,11 +1,11 @@
-"""The ``omegascan`` command line.
+"""The ``changekind`` command line.
 
-``omegascan detect`` calls the engine's pure functions directly, in a process
+``changekind detect`` calls the engine's pure functions directly, in a process
 pool over the machine's cores: no Prefect flow, so no Prefect import (it costs
 seconds).  Commands that need Prefect import it inside their own function.
 
 The fleet commands (scan, backfill, refit, events, triage, demo) live in
-:mod:`omegascan.flows.cli_fleet`, which registers them on :data:`app` when
+:mod:`changekind.flows.cli_fleet`, which registers them on :data:`app` when
 imported at the bottom of this module (see DEVELOPERS.md).
 """
 
@@ -28,11 +28,11 @@ from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 from rich.table import Table
 
-from omegascan.flows.inputs import SeriesInput, read_series_file
-from omegascan.tasks.errors import OmegascanError, SeriesError, SourceError
+from changekind.flows.inputs import SeriesInput, read_series_file
+from changekind.tasks.errors import ChangekindError, SeriesError, SourceError
 
 if TYPE_CHECKING:
-    from omegascan.tasks.types import DetectionResult, Event
+    from changekind.tasks.types import DetectionResult, Event
 
 EXIT_SERIES_FAILED = 1
 """Some series could not be analysed (the others were)."""
@@ -40,11 +40,11 @@ EXIT_SERIES_FAILED = 1
 EXIT_USAGE = 2
 """Bad usage or unreadable input; nothing was analysed."""
 
-DEBUG_ENV = "OMEGASCAN_DEBUG"
+DEBUG_ENV = "CHANGEKIND_DEBUG"
 """Set to 1 to get the traceback of an unexpected error in a series."""
 
 app = typer.Typer(
-    name="omegascan",
+    name="changekind",
     help="Find and classify events (AO, LS, TC, IO) in fleets of metric series.",
     no_args_is_help=True,
     add_completion=False,
@@ -66,7 +66,7 @@ def _stderr() -> Console:
 
 def _fail_usage(message: str) -> typer.Exit:
     """Print one clear line on stderr; return the exit to raise."""
-    _stderr().print(f"omegascan: error: {message}", markup=False)
+    _stderr().print(f"changekind: error: {message}", markup=False)
     return typer.Exit(EXIT_USAGE)
 
 
@@ -93,7 +93,7 @@ def analyse_one(
 
     Runs in a worker process, so it takes and returns picklable values only.
     """
-    from omegascan.tasks.detect import analyse_series
+    from changekind.tasks.detect import analyse_series
 
     try:
         result = analyse_series(
@@ -101,7 +101,7 @@ def analyse_one(
         )
     except SeriesError as exc:
         return SeriesOutcome(item.series_id, None, exc.problem)
-    except OmegascanError as exc:
+    except ChangekindError as exc:
         return SeriesOutcome(item.series_id, None, str(exc))
     except Exception as exc:  # a bug: keep the other series going, but say so
         problem = f"internal error ({type(exc).__name__}: {exc}); please report it"
@@ -311,7 +311,7 @@ def report_problems(outcomes: Sequence[SeriesOutcome]) -> int:
     failed = [o for o in outcomes if o.problem is not None]
     for outcome in failed:
         err.print(
-            f"omegascan: series {outcome.series_id!r} skipped: {outcome.problem}", markup=False
+            f"changekind: series {outcome.series_id!r} skipped: {outcome.problem}", markup=False
         )
     return len(failed)
 
@@ -380,11 +380,11 @@ def detect(
     """Find events in every series of INPUT and say what kind they are."""
     worker = None
     if window is not None:
-        from omegascan.tasks.window import parse_window
+        from changekind.tasks.window import parse_window
 
         try:
             parse_window(window)
-        except OmegascanError as exc:
+        except ChangekindError as exc:
             raise _fail_usage(str(exc)) from None
         worker = functools.partial(_windowed_worker, window=window)
     try:
@@ -410,25 +410,25 @@ def detect(
 def _windowed_worker(
     item: SeriesInput, periods: tuple[int, ...] | None, critical: float | None, *, window: str
 ) -> SeriesOutcome:
-    from omegascan.flows.cli_window import analyse_windowed_one
+    from changekind.flows.cli_window import analyse_windowed_one
 
     return analyse_windowed_one(item, window, periods, critical)
 
 
 def main() -> None:
-    """Entry point of the ``omegascan`` console script."""
+    """Entry point of the ``changekind`` console script."""
     app()
 
 
 if __name__ == "__main__":
     # Run as ``python -m``, this file is ``__main__``; the commands register
     # themselves on the app of the importable module, so run that one.
-    from omegascan.flows.cli import main as _main
+    from changekind.flows.cli import main as _main
 
     _main()
 else:
     # The other commands register themselves on ``app`` when imported.
-    from omegascan.flows import (
+    from changekind.flows import (
         cli_fleet,  # noqa: F401
         cli_report,  # noqa: F401
         cli_window,  # noqa: F401

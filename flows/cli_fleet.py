@@ -1,13 +1,13 @@
-"""The fleet commands of ``omegascan``: scan, backfill, refit, events, triage, demo.
+"""The fleet commands of ``changekind``: scan, backfill, refit, events, triage, demo.
 
-They register themselves on the shared :data:`omegascan.flows.cli.app`, which
+They register themselves on the shared :data:`changekind.flows.cli.app`, which
 imports this module.  Importing it stays cheap (typer and rich only): Prefect,
 the flows, the database layer and the engine are imported inside the commands,
-so ``omegascan detect`` never loads Prefect.
+so ``changekind detect`` never loads Prefect.
 
 Every command checks its configuration in this process before any flow runs:
-the settings, the options, the source (:func:`~omegascan.tasks.fetch.open_source`)
-and the database (:func:`~omegascan.tasks.persist.connect`).  A flow wraps the
+the settings, the options, the source (:func:`~changekind.tasks.fetch.open_source`)
+and the database (:func:`~changekind.tasks.persist.connect`).  A flow wraps the
 errors raised inside it in its own machinery; checked here, bad configuration
 gets one clear line on stderr and exit code 2 instead.
 
@@ -46,7 +46,7 @@ from rich.progress import (
 )
 from rich.table import Table
 
-from omegascan.flows.cli import (
+from changekind.flows.cli import (
     DEBUG_ENV,
     EXIT_SERIES_FAILED,
     _fail_usage,
@@ -56,13 +56,13 @@ from omegascan.flows.cli import (
     _stdout,
     app,
 )
-from omegascan.tasks.errors import ConfigError
+from changekind.tasks.errors import ConfigError
 
 if TYPE_CHECKING:
     import pandas as pd
 
-    from omegascan.flows.pipeline import RunSummary
-    from omegascan.flows.settings import RunOptions
+    from changekind.flows.pipeline import RunSummary
+    from changekind.flows.settings import RunOptions
 
 EXIT_RUN_FAILED = 3
 """The run itself failed (not one series: the run); a rerun continues where it stopped."""
@@ -100,11 +100,11 @@ _OPTION_NAMES = {
     "workers": "--workers",
 }
 _SETTING_NAMES = {
-    "db_url": "OMEGASCAN_DB_URL",
-    "source": "OMEGASCAN_SOURCE",
-    "runner": "OMEGASCAN_RUNNER",
-    "workers": "OMEGASCAN_WORKERS",
-    "dask_address": "OMEGASCAN_DASK_ADDRESS",
+    "db_url": "CHANGEKIND_DB_URL",
+    "source": "CHANGEKIND_SOURCE",
+    "runner": "CHANGEKIND_RUNNER",
+    "workers": "CHANGEKIND_WORKERS",
+    "dask_address": "CHANGEKIND_DASK_ADDRESS",
 }
 
 
@@ -117,7 +117,7 @@ SourceOpt = Annotated[
         metavar="PATH",
         help="Where the series live, in long form (series id, timestamp, value): a Parquet "
         "file or dataset folder, a CSV file or folder, or a database URL with --table or "
-        "--query.  Default: $OMEGASCAN_SOURCE.",
+        "--query.  Default: $CHANGEKIND_SOURCE.",
         show_default=False,
     ),
 ]
@@ -127,8 +127,8 @@ DbOpt = Annotated[
         "--db",
         metavar="URL",
         help="Database for events, models and run records (sqlite:///FILE or "
-        "postgresql+psycopg://user@host/db).  Default: $OMEGASCAN_DB_URL, else "
-        "sqlite:///omegascan.db in the working folder.",
+        "postgresql+psycopg://user@host/db).  Default: $CHANGEKIND_DB_URL, else "
+        "sqlite:///changekind.db in the working folder.",
         show_default=False,
     ),
 ]
@@ -139,7 +139,7 @@ RunnerOpt = Annotated[
         metavar="RUNNER",
         help="Where batches run: threads (of this process), processes (workers on this "
         "machine) or dask (a Dask cluster; needs a Prefect server: PREFECT_API_URL).  "
-        "Default: $OMEGASCAN_RUNNER, else threads.",
+        "Default: $CHANGEKIND_RUNNER, else threads.",
         show_default=False,
     ),
 ]
@@ -149,7 +149,7 @@ DaskOpt = Annotated[
         "--dask-address",
         metavar="ADDR",
         help="Scheduler of an existing Dask cluster (tcp://host:8786) for --runner dask; "
-        "default: a local cluster of --workers processes.  Default: $OMEGASCAN_DASK_ADDRESS.",
+        "default: a local cluster of --workers processes.  Default: $CHANGEKIND_DASK_ADDRESS.",
         show_default=False,
     ),
 ]
@@ -159,7 +159,7 @@ WorkersOpt = Annotated[
         "--workers",
         metavar="N",
         help="Parallel batches (threads, processes or local Dask workers).  Default: "
-        "$OMEGASCAN_WORKERS, else the number of cores.",
+        "$CHANGEKIND_WORKERS, else the number of cores.",
         show_default=False,
     ),
 ]
@@ -246,7 +246,7 @@ ReportOpt = Annotated[
         "--report",
         metavar="DIR",
         help="Also write the HTML report of the run's new and changed events to DIR "
-        "(index.html and a picture per event, as omegascan report).",
+        "(index.html and a picture per event, as changekind report).",
         show_default=False,
     ),
 ]
@@ -300,10 +300,10 @@ def _validation_text(exc: Exception, names: Mapping[str, str]) -> str:
 
 
 def _settings():
-    """The deployment defaults (``OMEGASCAN_*``); a bad variable is a usage problem."""
+    """The deployment defaults (``CHANGEKIND_*``); a bad variable is a usage problem."""
     from pydantic import ValidationError
 
-    from omegascan.flows.settings import Settings
+    from changekind.flows.settings import Settings
 
     try:
         return Settings()
@@ -319,25 +319,25 @@ def _db_url(db: str | None) -> str:
 
 def _check_db(url: str) -> None:
     """Connect once (and let go): an unreachable database is a usage problem."""
-    from omegascan.tasks import persist
+    from changekind.tasks import persist
 
     engine = persist.connect(url)
     engine.dispose()
 
 
 def _require_tables(url: str) -> None:
-    """The database exists and holds omegascan's tables (reading commands only)."""
+    """The database exists and holds changekind's tables (reading commands only)."""
     import sqlalchemy as sa
 
-    from omegascan.tasks import persist
+    from changekind.tasks import persist
 
     parsed = sa.make_url(url) if "://" in url else None
     if parsed is not None and parsed.get_backend_name() == "sqlite":
         path = parsed.database
         if path and path != ":memory:" and not Path(path).exists():
             raise ConfigError(
-                f"no database at {path!r}; run 'omegascan scan' (or 'omegascan demo') first, "
-                "or point --db / OMEGASCAN_DB_URL at an existing one"
+                f"no database at {path!r}; run 'changekind scan' (or 'changekind demo') first, "
+                "or point --db / CHANGEKIND_DB_URL at an existing one"
             )
     engine = persist.connect(url)
     try:
@@ -346,8 +346,8 @@ def _require_tables(url: str) -> None:
         engine.dispose()
     if not present:
         raise ConfigError(
-            f"database {engine.url.render_as_string(hide_password=True)!r} holds no omegascan "
-            "tables yet; run 'omegascan scan' or 'omegascan backfill' against it first"
+            f"database {engine.url.render_as_string(hide_password=True)!r} holds no changekind "
+            "tables yet; run 'changekind scan' or 'changekind backfill' against it first"
         )
 
 
@@ -386,7 +386,7 @@ def fleet_config(
 
     Raises
     ------
-    ConfigError, OmegascanError
+    ConfigError, ChangekindError
         The first problem found, in words (the caller prints it).
 
     Notes
@@ -397,14 +397,14 @@ def fleet_config(
     """
     from pydantic import ValidationError
 
-    from omegascan.flows.settings import RunOptions
-    from omegascan.tasks.fetch import open_source
+    from changekind.flows.settings import RunOptions
+    from changekind.tasks.fetch import open_source
 
     # Step 1: environment settings.
     settings = _settings()
     source = source if source is not None else settings.source
     if not source:
-        raise ConfigError("no source given; pass --source PATH (or set OMEGASCAN_SOURCE)")
+        raise ConfigError("no source given; pass --source PATH (or set CHANGEKIND_SOURCE)")
     db = db if db is not None else settings.db_url
 
     # Step 2: runner.
@@ -426,7 +426,7 @@ def fleet_config(
         if value is not None:
             knobs[name] = value
     if window is not None:
-        from omegascan.tasks.window import window_text
+        from changekind.tasks.window import window_text
 
         knobs["window"] = window_text(window)  # a bad window: ConfigError in its own words
     knobs["workers"] = workers if workers is not None else settings.workers
@@ -542,15 +542,15 @@ def _console_without_tracebacks() -> Iterator[None]:
 
 
 def _known_cause(exc: BaseException) -> BaseException | None:
-    """The OmegascanError (or pydantic ValidationError) behind an exception, if any."""
+    """The ChangekindError (or pydantic ValidationError) behind an exception, if any."""
     from pydantic import ValidationError
 
-    from omegascan.tasks.errors import OmegascanError
+    from changekind.tasks.errors import ChangekindError
 
     seen: set[int] = set()
     current: BaseException | None = exc
     while current is not None and id(current) not in seen:
-        if isinstance(current, OmegascanError | ValidationError):
+        if isinstance(current, ChangekindError | ValidationError):
             return current
         seen.add(id(current))
         current = current.__cause__ or current.__context__
@@ -600,13 +600,13 @@ def run_fleet_flow(
     Raises
     ------
     ConfigError
-        An OmegascanError or validation error raised inside the flow.
+        An ChangekindError or validation error raised inside the flow.
     typer.Exit
         With :data:`EXIT_RUN_FAILED` when the run failed otherwise, or
         :data:`EXIT_INTERRUPTED` on Ctrl-C (the message printed).
     """
     prefect_defaults()
-    from omegascan.flows.pipeline import make_task_runner, progress_hook
+    from changekind.flows.pipeline import make_task_runner, progress_hook
 
     task_runner = make_task_runner(
         config.runner, workers=config.workers, dask_address=config.dask_address
@@ -622,7 +622,7 @@ def run_fleet_flow(
             return configured(**arguments)
     except KeyboardInterrupt:
         _stderr().print(
-            f"omegascan: {label} interrupted; run it again to continue from where each "
+            f"changekind: {label} interrupted; run it again to continue from where each "
             "series stopped",
             markup=False,
         )
@@ -634,7 +634,7 @@ def run_fleet_flow(
         first = " ".join(str(exc).split("\n")[0].split()) or type(exc).__name__
         hint = "" if os.environ.get(DEBUG_ENV) else f" (set {DEBUG_ENV}=1 for the traceback)"
         _stderr().print(
-            f"omegascan: error: the {label} run failed: {type(exc).__name__}: {first}; "
+            f"changekind: error: the {label} run failed: {type(exc).__name__}: {first}; "
             f"run it again to continue from where each series stopped{hint}",
             markup=False,
         )
@@ -676,11 +676,11 @@ def usage_errors() -> Iterator[None]:
     """Turn configuration problems into one stderr line and exit code 2."""
     from pydantic import ValidationError
 
-    from omegascan.tasks.errors import OmegascanError
+    from changekind.tasks.errors import ChangekindError
 
     try:
         yield
-    except OmegascanError as exc:  # ConfigError from the checks here, or from the steps
+    except ChangekindError as exc:  # ConfigError from the checks here, or from the steps
         raise _fail_usage(str(exc)) from None
     except ValidationError as exc:
         raise _fail_usage(_validation_text(exc, _OPTION_NAMES)) from None
@@ -770,7 +770,7 @@ def print_summary(console: Console, summary: RunSummary, *, wall: float | None =
 def _report_failures(summary: RunSummary) -> None:
     err = _stderr()
     for sid, stage, message in summary.failures:
-        err.print(f"omegascan: series {sid!r} failed ({stage}): {message}", markup=False)
+        err.print(f"changekind: series {sid!r} failed ({stage}): {message}", markup=False)
 
 
 def _finish(summary: RunSummary, *, as_json: bool, wall: float) -> None:
@@ -824,7 +824,7 @@ def scan(
     with usage_errors():
         config = fleet_config(**_fleet_arguments(locals()))
         until = _check_time(until, "--until", config.time_kind)
-        from omegascan.flows.scan import scan_flow
+        from changekind.flows.scan import scan_flow
 
         arguments = _flow_arguments(
             scan_flow, config, until=until, series=series or None, report_dir=_text(report)
@@ -891,7 +891,7 @@ def backfill(
         config = fleet_config(**_fleet_arguments(locals()))
         _check_time(start, "--start", config.time_kind)
         _check_time(end, "--end", config.time_kind)
-        from omegascan.flows.scan import backfill_flow, split_span
+        from changekind.flows.scan import backfill_flow, split_span
 
         split_span(start, end, chunk, warmup)  # a bad span or duration: ConfigError here
         arguments = _flow_arguments(
@@ -931,7 +931,7 @@ def refit(
     prefect_defaults()
     with usage_errors():
         config = fleet_config(**_fleet_arguments(locals()))
-        from omegascan.flows.scan import refit_flow
+        from changekind.flows.scan import refit_flow
 
         arguments = _flow_arguments(refit_flow, config, series=series or None)
         t0 = time.perf_counter()
@@ -944,7 +944,7 @@ def refit(
 
 def event_json_records(frame: pd.DataFrame) -> list[dict[str, Any]]:
     """Stored events as records of the ``detect --json`` contract (NaN as null)."""
-    from omegascan.tasks.persist import EVENT_COLUMNS
+    from changekind.tasks.persist import EVENT_COLUMNS
 
     records = []
     for row in frame.loc[:, list(EVENT_COLUMNS)].itertuples(index=False):
@@ -961,7 +961,7 @@ def event_json_records(frame: pd.DataFrame) -> list[dict[str, Any]]:
 
 def event_csv(frame: pd.DataFrame) -> str:
     """Stored events as CSV: the contract's columns, then triage and bookkeeping."""
-    from omegascan.tasks.persist import EVENT_COLUMNS, EVENT_EXTRA_COLUMNS
+    from changekind.tasks.persist import EVENT_COLUMNS, EVENT_EXTRA_COLUMNS
 
     out = frame.loc[:, [*EVENT_COLUMNS, *EVENT_EXTRA_COLUMNS]].copy()
     out["type_weights"] = [json.dumps(w, sort_keys=False) for w in out["type_weights"]]
@@ -1040,7 +1040,7 @@ def events(
     with usage_errors():
         url = _db_url(db)
         _require_tables(url)
-        from omegascan.tasks import persist
+        from changekind.tasks import persist
 
         frame = persist.read_events(
             url,
@@ -1076,13 +1076,13 @@ def _stored_time(url: str, series_id: str, event_time: str) -> str:
     """
     import pandas as pd
 
-    from omegascan.tasks import persist
+    from changekind.tasks import persist
 
     frame = persist.read_events(url, series_ids=[series_id], include_retracted=True)
     if frame.empty:
         raise ConfigError(
             f"series {series_id!r} has no stored events; list them with "
-            "'omegascan events' (series ids are case-sensitive)"
+            "'changekind events' (series ids are case-sensitive)"
         )
     if (frame["event_time"] == event_time).any():
         return event_time
@@ -1101,7 +1101,7 @@ def _stored_time(url: str, series_id: str, event_time: str) -> str:
     nearest = ", ".join(repr(t) for t in stored[:3])
     raise ConfigError(
         f"series {series_id!r} has no stored event at {event_time!r}; the nearest stored "
-        f"times are {nearest} (give one as 'omegascan events --series ID' prints it)"
+        f"times are {nearest} (give one as 'changekind events --series ID' prints it)"
     )
 
 
@@ -1114,7 +1114,7 @@ def triage(
         str,
         typer.Argument(
             metavar="EVENT_TIME",
-            help="The event's time as 'omegascan events' prints it (the same instant written "
+            help="The event's time as 'changekind events' prints it (the same instant written "
             "another way is matched too).",
             show_default=False,
         ),
@@ -1141,7 +1141,7 @@ def triage(
     """Record a person's verdict on a stored event; later scans keep it."""
     prefect_defaults()  # the database layer imports Prefect
     with usage_errors():
-        from omegascan.tasks import persist
+        from changekind.tasks import persist
 
         allowed = (*persist.TRIAGE_STATES, "clear")
         if state not in allowed:
@@ -1171,7 +1171,7 @@ def _pct(x: float) -> str:
 
 def _fresh_demo_files(out: Path, db_file: Path | None) -> Path:
     """Make ``out/fleet/`` empty of earlier demo files; remove the earlier demo database."""
-    from omegascan.flows.demo import DAY_FILE_GLOB
+    from changekind.flows.demo import DAY_FILE_GLOB
 
     folder = out / "fleet"
     folder.mkdir(parents=True, exist_ok=True)
@@ -1184,7 +1184,7 @@ def _fresh_demo_files(out: Path, db_file: Path | None) -> Path:
 
 
 def _demo_config(folder: Path, db: str, workers: int) -> FleetConfig:
-    from omegascan.flows.settings import RunOptions
+    from changekind.flows.settings import RunOptions
 
     options = RunOptions(workers=workers)
     return FleetConfig(
@@ -1200,7 +1200,7 @@ def _demo_config(folder: Path, db: str, workers: int) -> FleetConfig:
 
 
 def _by_type_table(frame: pd.DataFrame) -> Table:
-    from omegascan.tasks.types import REPORTED_TYPES
+    from changekind.tasks.types import REPORTED_TYPES
 
     found = Table(title="Events stored, by type", title_justify="left")
     for name in ("type", "confirmed", "provisional", "total"):
@@ -1213,7 +1213,7 @@ def _by_type_table(frame: pd.DataFrame) -> Table:
 
 
 def _score_table(score: Any, *, clean: int, on_clean: int) -> Table:
-    from omegascan.tasks.types import EVENT_TYPES
+    from changekind.tasks.types import EVENT_TYPES
 
     table = Table(
         title="Against the injected truth (found = an event within ±2 samples)",
@@ -1254,7 +1254,7 @@ def demo(
             "the report of the events (report/index.html) and the demo database demo.db "
             "(made afresh on every run)."
         ),
-    ] = Path("omegascan-demo"),
+    ] = Path("changekind-demo"),
     db: Annotated[
         str | None,
         typer.Option(
@@ -1276,7 +1276,7 @@ def demo(
     import numpy as np
     import pandas as pd
 
-    from omegascan.flows.demo import make_demo_fleet, score_against_truth, write_day_files
+    from changekind.flows.demo import make_demo_fleet, score_against_truth, write_day_files
 
     started = time.perf_counter()
     console = _stdout()
@@ -1305,7 +1305,7 @@ def demo(
         )
 
         # Step 2: backfill every day but the last.
-        from omegascan.flows.scan import backfill_flow, scan_flow
+        from changekind.flows.scan import backfill_flow, scan_flow
 
         config = _demo_config(folder, url, workers)
         start = (first + pd.Timedelta(days=DEMO_WARMUP_DAYS)).isoformat()
@@ -1341,7 +1341,7 @@ def demo(
         print_summary(console, _without_tops(scanned))
 
         # Step 4: what the table holds, against the truth.
-        from omegascan.tasks import persist
+        from changekind.tasks import persist
 
         stored = persist.read_events(url)
     (out / "events.json").write_text(
@@ -1356,10 +1356,10 @@ def demo(
     example = _example_event(stored)
 
     # Step 5: a picture of every stored event, for a person to look at.
-    from omegascan.flows.cli_report import write_stored_report
-    from omegascan.tasks.fetch import open_source
+    from changekind.flows.cli_report import write_stored_report
+    from changekind.tasks.fetch import open_source
 
-    console.print("\n3. Pictures of the stored events (omegascan report):", markup=False)
+    console.print("\n3. Pictures of the stored events (changekind report):", markup=False)
     with usage_errors():
         write_stored_report(url, open_source(folder), out / "report")
     console.print(
@@ -1367,21 +1367,21 @@ def demo(
         "Events are statistical evidence for a person to judge, not verdicts.\n"
         f"All events as JSON: {out / 'events.json'}; injected truth: {out / 'truth.csv'}.\n"
         "\nQuery the event table yourself:\n"
-        f"  omegascan events --db {url} --json\n"
-        f"  omegascan events --db {url} --since {end[:10]}\n"
+        f"  changekind events --db {url} --json\n"
+        f"  changekind events --db {url} --since {end[:10]}\n"
         "or with SQL, for example through the views for BI tools:\n"
         "  SELECT series_id, event_time, effect, effect_pct FROM open_level_shifts;\n"
         "  SELECT day, event_type, n_events, n_confirmed FROM daily_event_counts "
         "ORDER BY day, event_type;\n"
         "Record a verdict on an event (later scans keep it):\n"
-        f"  omegascan triage {example} acknowledged --reason 'change ticket' --db {url}\n"
+        f"  changekind triage {example} acknowledged --reason 'change ticket' --db {url}\n"
         "Scan again when new files arrive:\n"
-        f"  omegascan scan --source {folder} --db {url}",
+        f"  changekind scan --source {folder} --db {url}",
         markup=False,
     )
     failed = filled.failures + scanned.failures
     for sid, stage, message in failed:
-        _stderr().print(f"omegascan: series {sid!r} failed ({stage}): {message}", markup=False)
+        _stderr().print(f"changekind: series {sid!r} failed ({stage}): {message}", markup=False)
     if failed:
         raise typer.Exit(EXIT_SERIES_FAILED)
 
@@ -1404,7 +1404,7 @@ def _example_event(frame: pd.DataFrame) -> str:
 
 
 def _step_text(step: Any) -> str:
-    from omegascan.tasks.types import format_duration
+    from changekind.tasks.types import format_duration
 
     return format_duration(step.total_seconds())
 

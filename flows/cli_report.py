@@ -1,12 +1,12 @@
-"""``omegascan report``: an HTML page with one picture per stored event.
+"""``changekind report``: an HTML page with one picture per stored event.
 
 Reads the events from the database (all, or those of one run, since a time,
 of some series), the series' stored models, and the observations around each
-event from the source; :func:`omegascan.tasks.report.write_report` draws the
+event from the source; :func:`changekind.tasks.report.write_report` draws the
 pictures and writes ``index.html`` beside them.  No Prefect flow: a report is
 a read-only look at what the scans wrote.
 
-Registers itself on the shared :data:`omegascan.flows.cli.app` when imported.
+Registers itself on the shared :data:`changekind.flows.cli.app` when imported.
 """
 
 from __future__ import annotations
@@ -18,26 +18,26 @@ from typing import TYPE_CHECKING, Annotated
 
 import typer
 
-from omegascan.flows.cli import EXIT_SERIES_FAILED, _fail_usage, _stderr, _stdout, app
+from changekind.flows.cli import EXIT_SERIES_FAILED, _fail_usage, _stderr, _stdout, app
 
 if TYPE_CHECKING:
 
-    from omegascan.tasks.fetch import SourceSpec
-    from omegascan.tasks.reporting import WrittenReport
+    from changekind.tasks.fetch import SourceSpec
+    from changekind.tasks.reporting import WrittenReport
 
 
 def report(
     out: Annotated[
         Path,
         typer.Option("--out", metavar="DIR", help="Folder for index.html and the pictures."),
-    ] = Path("omegascan-report"),
+    ] = Path("changekind-report"),
     db: Annotated[
         str | None,
         typer.Option(
             "--db",
             metavar="URL",
-            help="Database the scans wrote to.  Default: OMEGASCAN_DB_URL, else "
-            "sqlite:///omegascan.db.",
+            help="Database the scans wrote to.  Default: CHANGEKIND_DB_URL, else "
+            "sqlite:///changekind.db.",
             show_default=False,
         ),
     ] = None,
@@ -47,7 +47,7 @@ def report(
             "--source",
             metavar="PATH",
             help="Where the series live (Parquet, CSV or a SQL URL), as given to the scan.  "
-            "Default: OMEGASCAN_SOURCE.",
+            "Default: CHANGEKIND_SOURCE.",
             show_default=False,
         ),
     ] = None,
@@ -105,9 +105,9 @@ def report(
     ] = None,
 ) -> None:
     """Write an HTML report of stored events, one picture per event."""
-    from omegascan.flows.settings import Settings
-    from omegascan.tasks.errors import OmegascanError
-    from omegascan.tasks.fetch import open_source
+    from changekind.flows.settings import Settings
+    from changekind.tasks.errors import ChangekindError
+    from changekind.tasks.fetch import open_source
 
     settings = Settings()
     db_url = db or settings.db_url
@@ -115,7 +115,7 @@ def report(
     if not location:
         raise _fail_usage(
             "the report needs the source the events came from: give --source PATH "
-            "(or set OMEGASCAN_SOURCE)"
+            "(or set CHANGEKIND_SOURCE)"
         )
     try:
         spec = open_source(
@@ -130,12 +130,12 @@ def report(
             timestamp_unit=timestamp_unit,
         )
         written = write_stored_report(db_url, spec, out, run=run, since=since, series=series)
-    except OmegascanError as exc:
+    except ChangekindError as exc:
         raise _fail_usage(str(exc)) from None
     missing = written.n_events - written.drawn
     if missing:
         _stderr().print(
-            f"omegascan: {missing} event(s) have no picture; the report says why for each",
+            f"changekind: {missing} event(s) have no picture; the report says why for each",
             markup=False,
         )
         raise typer.Exit(EXIT_SERIES_FAILED)
@@ -150,14 +150,14 @@ def write_stored_report(
     since: str | None = None,
     series: Sequence[str] | None = None,
 ) -> WrittenReport:
-    """:func:`omegascan.tasks.reporting.write_stored_report` with a progress bar, announced.
+    """:func:`changekind.tasks.reporting.write_stored_report` with a progress bar, announced.
 
-    Used by ``omegascan report`` and by the demo.  Damaged stored models are
+    Used by ``changekind report`` and by the demo.  Damaged stored models are
     said on stderr (their events are drawn without them).
     """
     from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
 
-    from omegascan.tasks import reporting
+    from changekind.tasks import reporting
 
     err = _stderr()
     # A progress bar on a terminal only; the same call either way.
@@ -177,7 +177,7 @@ def write_stored_report(
             db_url, spec, out, run=run, since=since, series=series, on_progress=on_progress
         )
     for sid, problem in written.problems:
-        err.print(f"omegascan: series {sid!r}: {problem}", markup=False)
+        err.print(f"changekind: series {sid!r}: {problem}", markup=False)
     _stdout().print(
         f"Report of {written.n_events} event(s) in {written.n_series} series, "
         f"{written.drawn} picture(s): {written.index}",

@@ -1,6 +1,6 @@
-"""``omegascan drill``: the raw points behind a windowed event; windowed detection helpers.
+"""``changekind drill``: the raw points behind a windowed event; windowed detection helpers.
 
-Registers the ``drill`` command on the shared :data:`omegascan.flows.cli.app`
+Registers the ``drill`` command on the shared :data:`changekind.flows.cli.app`
 when imported (``flows/cli.py`` imports this module).  Also offers the helpers
 the ``detect`` command uses for ``--window``: :func:`windowed_records` and
 :func:`analyse_windowed_one` (a drop-in for ``analyse_one`` in the process
@@ -23,7 +23,7 @@ from typing import TYPE_CHECKING, Annotated
 import typer
 from rich.table import Table
 
-from omegascan.flows.cli import (
+from changekind.flows.cli import (
     DEBUG_ENV,
     SeriesOutcome,
     _fail_usage,
@@ -31,7 +31,7 @@ from omegascan.flows.cli import (
     _stdout,
     app,
 )
-from omegascan.flows.cli_fleet import (
+from changekind.flows.cli_fleet import (
     QueryOpt,
     SeriesColOpt,
     SourceOpt,
@@ -39,14 +39,14 @@ from omegascan.flows.cli_fleet import (
     TimeColOpt,
     ValueColOpt,
 )
-from omegascan.tasks.errors import OmegascanError, SeriesError
-from omegascan.tasks.types import format_duration
+from changekind.tasks.errors import ChangekindError, SeriesError
+from changekind.tasks.types import format_duration
 
 if TYPE_CHECKING:
     import pandas as pd
 
-    from omegascan.flows.inputs import SeriesInput
-    from omegascan.tasks.types import Event
+    from changekind.flows.inputs import SeriesInput
+    from changekind.tasks.types import Event
 
 DEFAULT_AROUND = 2
 """Windows shown either side of the drilled one."""
@@ -67,9 +67,9 @@ def windowed_records(
     """Windowed detection of one series: its events (level events and VC), by window.
 
     Raises the ConfigError / SeriesError of
-    :func:`omegascan.tasks.window.detect_windowed`.
+    :func:`changekind.tasks.window.detect_windowed`.
     """
-    from omegascan.tasks.window import detect_windowed
+    from changekind.tasks.window import detect_windowed
 
     result = detect_windowed(
         series_id, timestamps, values, window, critical=critical, periods=periods
@@ -89,7 +89,7 @@ def analyse_windowed_one(
     ``detect`` command's table and JSON output apply unchanged (``nobs`` counts
     windows; a note gives the raw points).
     """
-    from omegascan.tasks.window import detect_windowed
+    from changekind.tasks.window import detect_windowed
 
     try:
         result = detect_windowed(
@@ -102,7 +102,7 @@ def analyse_windowed_one(
         )
     except SeriesError as exc:
         return SeriesOutcome(item.series_id, None, exc.problem)
-    except OmegascanError as exc:
+    except ChangekindError as exc:
         return SeriesOutcome(item.series_id, None, str(exc))
     except Exception as exc:  # a bug: keep the other series going, but say so
         problem = f"internal error ({type(exc).__name__}: {exc}); please report it"
@@ -123,7 +123,7 @@ def _windows_table(rows: pd.DataFrame, title: str) -> Table:
     """One line per window: count, first, min, median, max, last, spread."""
     import numpy as np
 
-    from omegascan.tasks.window import MAD_SCALE
+    from changekind.tasks.window import MAD_SCALE
 
     table = Table(title=title, title_justify="left")
     for name in ("window", "start", "points", "first", "min", "median", "max", "last", "spread"):
@@ -281,12 +281,12 @@ def drill_command(
     ] = "UTC",
 ) -> None:
     """Show the raw points of one window (and K windows either side) from the source."""
-    from omegascan.tasks.fetch import open_source
-    from omegascan.tasks.window import drill, parse_window
+    from changekind.tasks.fetch import open_source
+    from changekind.tasks.window import drill, parse_window
 
-    source = source if source is not None else os.environ.get("OMEGASCAN_SOURCE")
+    source = source if source is not None else os.environ.get("CHANGEKIND_SOURCE")
     if not source:
-        raise _fail_usage("no source given; pass --source PATH (or set OMEGASCAN_SOURCE)")
+        raise _fail_usage("no source given; pass --source PATH (or set CHANGEKIND_SOURCE)")
     columns = {
         key: name
         for key, name in (
@@ -307,7 +307,7 @@ def drill_command(
             timezone=timezone,
         )
         rows = drill(spec, series_id, event_time, width, around=around)
-    except OmegascanError as exc:
+    except ChangekindError as exc:
         raise _fail_usage(str(exc)) from None
 
     focus = rows.loc[rows["window_offset"] == 0, "window_start"].iloc[0]

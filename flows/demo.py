@@ -34,8 +34,8 @@ import numpy as np
 import pandas as pd
 from scipy.signal import lfilter
 
-from omegascan.tasks.errors import ConfigError
-from omegascan.tasks.types import EVENT_TYPES, Event
+from changekind.tasks.errors import ConfigError
+from changekind.tasks.types import EVENT_TYPES, Event
 
 TC_DECAY = 0.8
 """Decay per grid step of an injected temporary change (cache rebuild)."""
@@ -388,7 +388,7 @@ def score_against_truth(
     ----------
     events : sequence of Event, or pandas.DataFrame
         Detected events; a frame needs ``series_id, event_time, event_type``
-        (for example the records of ``omegascan detect --json``).
+        (for example the records of ``changekind detect --json``).
     truth : pandas.DataFrame
         Injected events with ``series_id, event_time, event_type``.
     step : str, pandas.Timedelta or float

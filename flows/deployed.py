@@ -2,18 +2,18 @@
 
 ``infra/prefect.yaml`` points its deployments here.  When a worker starts a
 flow run it imports this module, which reads the deployment settings
-(``OMEGASCAN_RUNNER``, ``OMEGASCAN_WORKERS``, ``OMEGASCAN_DASK_ADDRESS``; see
-:class:`omegascan.flows.settings.Settings`) and gives each flow the task
-runner they name: the same choice ``omegascan scan --runner ...`` makes on the
+(``CHANGEKIND_RUNNER``, ``CHANGEKIND_WORKERS``, ``CHANGEKIND_DASK_ADDRESS``; see
+:class:`changekind.flows.settings.Settings`) and gives each flow the task
+runner they name: the same choice ``changekind scan --runner ...`` makes on the
 command line.  The flows themselves (names, parameters) are those of
-:mod:`omegascan.flows.scan`.
+:mod:`changekind.flows.scan`.
 """
 
 from __future__ import annotations
 
-from omegascan.flows.pipeline import make_task_runner
-from omegascan.flows.scan import backfill_flow, refit_flow, scan_flow
-from omegascan.flows.settings import Settings
+from changekind.flows.pipeline import make_task_runner
+from changekind.flows.scan import backfill_flow, refit_flow, scan_flow
+from changekind.flows.settings import Settings
 
 __all__ = ["backfill", "refit", "scan"]
 

@@ -1,4 +1,4 @@
-"""Reading the INPUT file of ``omegascan detect``.
+"""Reading the INPUT file of ``changekind detect``.
 
 Two layouts are accepted, in CSV (optionally gzip-compressed) or Parquet:
 
@@ -21,7 +21,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from omegascan.tasks.errors import SourceError
+from changekind.tasks.errors import SourceError
 
 LONG_COLUMNS = ("series_id", "timestamp", "value")
 SHORT_COLUMNS = ("timestamp", "value")

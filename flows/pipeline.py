@@ -1,6 +1,6 @@
 """What the scan, backfill and refit flows share: planning, fan-out, writing.
 
-A run is: plan a :class:`~omegascan.tasks.batch.SeriesWork` per series from
+A run is: plan a :class:`~changekind.tasks.batch.SeriesWork` per series from
 the database's state, cut the work into batches of a few seconds each, submit
 the batches to the flow's task runner with a bounded number in flight (memory
 stays bounded however large the fleet), and write each finished batch in one
@@ -18,8 +18,8 @@ from dataclasses import dataclass, field
 
 import pandas as pd
 
-from omegascan.tasks import persist
-from omegascan.tasks.batch import (
+from changekind.tasks import persist
+from changekind.tasks.batch import (
     AnalysisOptions,
     BatchOutcome,
     SeriesOutcome,
@@ -28,11 +28,11 @@ from omegascan.tasks.batch import (
     plan_batches,
     warm_context,
 )
-from omegascan.tasks.fetch import SourceSpec
-from omegascan.tasks.types import REPORTED_TYPES, Event, FittedModel
+from changekind.tasks.fetch import SourceSpec
+from changekind.tasks.types import REPORTED_TYPES, Event, FittedModel
 
 Progress = Callable[[int, int, str], None]
-progress_hook: ContextVar[Progress | None] = ContextVar("omegascan_progress", default=None)
+progress_hook: ContextVar[Progress | None] = ContextVar("changekind_progress", default=None)
 """Set by the CLI to draw a progress bar: called with (done, total, what)."""
 
 
@@ -97,8 +97,8 @@ def make_task_runner(runner: str, *, workers: int, dask_address: str | None = No
 
 
 def start_workers(workers: int) -> list:
-    """Submit one :func:`~omegascan.tasks.batch.start_worker` per worker; wait with ``.wait()``."""
-    from omegascan.tasks.batch import start_worker_task
+    """Submit one :func:`~changekind.tasks.batch.start_worker` per worker; wait with ``.wait()``."""
+    from changekind.tasks.batch import start_worker_task
 
     return [start_worker_task.submit() for _ in range(max(1, workers))]
 
@@ -186,7 +186,7 @@ def execute(
     """
     from prefect.futures import as_completed
 
-    from omegascan.tasks.batch import run_batch_task
+    from changekind.tasks.batch import run_batch_task
 
     batches = plan_batches(works, target_seconds=batch_seconds, workers=workers)
     hook = progress_hook.get()

@@ -1,7 +1,7 @@
 """The fleet flows: hourly scan, historical backfill, refit.
 
 All three plan per-series work from the database's state and hand it to
-:func:`omegascan.flows.pipeline.execute`; they differ in what they read:
+:func:`changekind.flows.pipeline.execute`; they differ in what they read:
 
 - ``scan``: series with a cached model are tested on the points after their
   watermark; series without one are fitted on the history they have (at least
@@ -22,7 +22,7 @@ from pathlib import Path
 import pandas as pd
 from prefect import flow, get_run_logger
 
-from omegascan.flows.pipeline import (
+from changekind.flows.pipeline import (
     RunSummary,
     current_run_id,
     execute,
@@ -31,10 +31,10 @@ from omegascan.flows.pipeline import (
     stored_state,
     summarize,
 )
-from omegascan.flows.settings import DEFAULT_DB_URL, RunOptions
-from omegascan.tasks import persist
-from omegascan.tasks.errors import ConfigError
-from omegascan.tasks.fetch import ColumnMap, list_series, open_source
+from changekind.flows.settings import DEFAULT_DB_URL, RunOptions
+from changekind.tasks import persist
+from changekind.tasks.errors import ConfigError
+from changekind.tasks.fetch import ColumnMap, list_series, open_source
 
 
 def _columns(columns: dict[str, str] | None) -> ColumnMap | None:
@@ -138,7 +138,7 @@ def _run(
         events_retracted=summary.events_retracted,
     )
     try:
-        from omegascan.flows.artifacts import publish_run_artifacts
+        from changekind.flows.artifacts import publish_run_artifacts
 
         publish_run_artifacts(summary, db=db)
     except Exception as exc:  # the run's data is written; a missing page must not fail it
@@ -160,7 +160,7 @@ def _run(
     return summary
 
 
-@flow(name="omegascan-scan", log_prints=False)
+@flow(name="changekind-scan", log_prints=False)
 def scan_flow(
     source: str,
     db: str = DEFAULT_DB_URL,
@@ -177,7 +177,7 @@ def scan_flow(
     ``until`` stops reading at that time (exclusive); default all data.
     ``table`` or ``query`` say what to read when ``source`` is a database URL.
     ``report_dir``: also write the HTML report of the run's new and changed
-    events there (a picture each; see ``omegascan report``).
+    events there (a picture each; see ``changekind report``).
     """
     return _run(
         "scan",
@@ -193,7 +193,7 @@ def scan_flow(
     )
 
 
-@flow(name="omegascan-backfill", log_prints=False)
+@flow(name="changekind-backfill", log_prints=False)
 def backfill_flow(
     source: str,
     start: str,
@@ -232,7 +232,7 @@ def backfill_flow(
     )
 
 
-@flow(name="omegascan-refit", log_prints=False)
+@flow(name="changekind-refit", log_prints=False)
 def refit_flow(
     source: str,
     db: str = DEFAULT_DB_URL,
@@ -292,12 +292,12 @@ def split_span(start: str, end: str, chunk: str, warmup: str):
 
 def _write_report(logger, db: str, spec, report_dir: str, run_id: str) -> None:
     """The run's events as an HTML report with a picture each (never fails the run)."""
-    from omegascan.tasks.errors import OmegascanError
-    from omegascan.tasks.reporting import write_stored_report_task
+    from changekind.tasks.errors import ChangekindError
+    from changekind.tasks.reporting import write_stored_report_task
 
     try:
         written = write_stored_report_task(db, spec, Path(report_dir), run=run_id)
-    except (OmegascanError, OSError) as exc:
+    except (ChangekindError, OSError) as exc:
         logger.warning("could not write the run's report to %s: %s", report_dir, exc)
         return
     logger.info(

@@ -11,24 +11,24 @@ from typing import Literal
 from pydantic import BaseModel, ConfigDict, Field, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
-from omegascan.tasks.batch import AnalysisOptions
-from omegascan.tasks.errors import ConfigError
-from omegascan.tasks.window import window_text
+from changekind.tasks.batch import AnalysisOptions
+from changekind.tasks.errors import ConfigError
+from changekind.tasks.window import window_text
 
-DEFAULT_DB_URL = "sqlite:///omegascan.db"
+DEFAULT_DB_URL = "sqlite:///changekind.db"
 Runner = Literal["threads", "processes", "dask"]
 
 
 class Settings(BaseSettings):
-    """Deployment defaults, read from ``OMEGASCAN_*`` environment variables.
+    """Deployment defaults, read from ``CHANGEKIND_*`` environment variables.
 
-    ``OMEGASCAN_DB_URL`` (default ``sqlite:///omegascan.db`` in the working
+    ``CHANGEKIND_DB_URL`` (default ``sqlite:///changekind.db`` in the working
     directory; PostgreSQL as ``postgresql+psycopg://user@host/db``),
-    ``OMEGASCAN_SOURCE``, ``OMEGASCAN_RUNNER``, ``OMEGASCAN_WORKERS``,
-    ``OMEGASCAN_DASK_ADDRESS``.
+    ``CHANGEKIND_SOURCE``, ``CHANGEKIND_RUNNER``, ``CHANGEKIND_WORKERS``,
+    ``CHANGEKIND_DASK_ADDRESS``.
     """
 
-    model_config = SettingsConfigDict(env_prefix="OMEGASCAN_", extra="ignore")
+    model_config = SettingsConfigDict(env_prefix="CHANGEKIND_", extra="ignore")
 
     db_url: str = DEFAULT_DB_URL
     source: str | None = None

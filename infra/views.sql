@@ -1,4 +1,4 @@
--- omegascan's views for BI and on-call tools.
+-- changekind's views for BI and on-call tools.
 --
 -- The migrations create these views (infra/migrations/versions/); this file is
 -- the readable copy of the current definitions, and a test checks that it

@@ -35,13 +35,13 @@ import numpy as np
 import pandas as pd
 from scipy.special import chdtri
 
-from omegascan.tasks.decompose import MIN_POINTS, decompose, regularize
-from omegascan.tasks.detect import detect_events, reestimate, screen_new_points
-from omegascan.tasks.errors import OmegascanError, SeriesError
-from omegascan.tasks.fetch import SeriesWindow, SourceSpec, read_windows
-from omegascan.tasks.fit import pi_weights
-from omegascan.tasks.types import Event, FittedModel
-from omegascan.tasks.window import (
+from changekind.tasks.decompose import MIN_POINTS, decompose, regularize
+from changekind.tasks.detect import detect_events, reestimate, screen_new_points
+from changekind.tasks.errors import ChangekindError, SeriesError
+from changekind.tasks.fetch import SeriesWindow, SourceSpec, read_windows
+from changekind.tasks.fit import pi_weights
+from changekind.tasks.types import Event, FittedModel
+from changekind.tasks.window import (
     complete_windows,
     count_windows,
     detect_windowed,
@@ -50,7 +50,7 @@ from omegascan.tasks.window import (
     summarize_windows,
     windowed_model,
 )
-from omegascan.tasks.wrappers import TaskSpec, lazy_task
+from changekind.tasks.wrappers import TaskSpec, lazy_task
 
 Mode = Literal["cold", "warm", "unchanged", "deferred", "failed"]
 
@@ -88,10 +88,10 @@ class AnalysisOptions:
     report_from : str or None
         Events before this time are not reported (a backfill's warm-up).
     window : str or None
-        Windowed mode (omegascan.tasks.window): raw points are summarized into
+        Windowed mode (changekind.tasks.window): raw points are summarized into
         windows of this width and the engine models the window medians and
         spreads; ``min_points`` and ``context_points`` then count windows.
-        Canonical text (:func:`~omegascan.tasks.window.window_text`).
+        Canonical text (:func:`~changekind.tasks.window.window_text`).
     """
 
     critical: float | None = None
@@ -287,7 +287,7 @@ def analyse_series_work(
             outcome = _warm(work, timestamps, values, options)
     except SeriesError as exc:
         outcome = SeriesOutcome(work.series_id, "failed", failure=("prepare", exc.problem))
-    except OmegascanError as exc:
+    except ChangekindError as exc:
         outcome = SeriesOutcome(work.series_id, "failed", failure=("detect", str(exc)))
     except (ValueError, ArithmeticError, np.linalg.LinAlgError) as exc:
         outcome = SeriesOutcome(
@@ -429,7 +429,7 @@ def _reestimated(
         series = regularize(work.series_id, timestamps, values)
         model = reestimate(work.model, series, outcome.reestimate)
         done = replace(outcome, model=model, reestimate=None)
-    except (OmegascanError, ValueError, ArithmeticError, np.linalg.LinAlgError) as exc:
+    except (ChangekindError, ValueError, ArithmeticError, np.linalg.LinAlgError) as exc:
         done = replace(
             outcome, reestimate=None, note=f"{outcome.note}; failed ({exc}), cached model kept"
         )

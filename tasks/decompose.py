@@ -3,7 +3,7 @@
 Two pure steps:
 
 - :func:`regularize` turns raw ``(timestamp, value)`` pairs into a
-  :class:`~omegascan.tasks.types.RegularSeries` (sorted, duplicates resolved,
+  :class:`~changekind.tasks.types.RegularSeries` (sorted, duplicates resolved,
   gaps as NaN, spacing inferred) or raises a :class:`SeriesError` that names the
   series and the problem.
 - :func:`decompose` chooses seasonal periods and removes a robust seasonal
@@ -19,7 +19,7 @@ from collections.abc import Sequence
 import numpy as np
 import pandas as pd
 
-from omegascan.tasks.errors import (
+from changekind.tasks.errors import (
     AllMissingError,
     ConstantSeriesError,
     NonFiniteError,
@@ -28,8 +28,8 @@ from omegascan.tasks.errors import (
     TimestampError,
     TooShortError,
 )
-from omegascan.tasks.types import Decomposition, RegularSeries, StampLabels
-from omegascan.tasks.wrappers import TaskSpec, lazy_task
+from changekind.tasks.types import Decomposition, RegularSeries, StampLabels
+from changekind.tasks.wrappers import TaskSpec, lazy_task
 
 MIN_POINTS = 24
 """Fewest observed points the engine analyses (an ARIMA with a few terms and a

@@ -28,8 +28,8 @@ import numpy as np
 import pandas as pd
 from scipy.special import ndtr, ndtri
 
-from omegascan.tasks.decompose import decompose, profile_at, regularize
-from omegascan.tasks.fit import (
+from changekind.tasks.decompose import decompose, profile_at, regularize
+from changekind.tasks.fit import (
     Estimate,
     EstimationError,
     estimate,
@@ -41,8 +41,8 @@ from omegascan.tasks.fit import (
     polynomials,
     psi_weights,
 )
-from omegascan.tasks.threads import single_blas_thread
-from omegascan.tasks.types import (
+from changekind.tasks.threads import single_blas_thread
+from changekind.tasks.types import (
     EVENT_TYPES,
     Decomposition,
     DetectionResult,
@@ -53,7 +53,7 @@ from omegascan.tasks.types import (
     format_duration,
     round_sig,
 )
-from omegascan.tasks.wrappers import TaskSpec, lazy_task
+from changekind.tasks.wrappers import TaskSpec, lazy_task
 
 ALPHA = 0.2
 """Expected number of false events per clean series that the default critical
@@ -127,7 +127,7 @@ def analyse_series(
     """Run the whole engine on one series' raw observations.
 
     regularize -> decompose -> detect_events.  Raises the SeriesError
-    subclasses of :func:`~omegascan.tasks.decompose.regularize` on bad input.
+    subclasses of :func:`~changekind.tasks.decompose.regularize` on bad input.
     """
     series = regularize(series_id, timestamps, values)
     return detect_events(decompose(series, periods=periods), critical=critical)
@@ -830,7 +830,7 @@ def _as_model(
     decomp: Decomposition, fitted: FittedModel | Estimate, start: FittedModel | Estimate
 ) -> FittedModel:
     """The final estimate in the cacheable form (effects excluded)."""
-    from omegascan.tasks.fit import fingerprint
+    from changekind.tasks.fit import fingerprint
 
     if isinstance(fitted, FittedModel):
         return fitted
@@ -997,7 +997,7 @@ def reestimate(
     events found are not estimated again; stale models (by age or variance
     drift) get the full analysis.
     """
-    from omegascan.tasks.fit import fingerprint
+    from changekind.tasks.fit import fingerprint
 
     y = series.values - _seasonal_for(model, series) - known_effects(model, series, known)
     fitted = _refit(y, model)

@@ -1,4 +1,4 @@
-"""Errors raised by omegascan's steps.
+"""Errors raised by changekind's steps.
 
 One base class; narrow subclasses that are also ``ValueError`` where bad input
 is what they are.  Every message names the series (or source) and says what to
@@ -8,11 +8,11 @@ do about it.
 from __future__ import annotations
 
 
-class OmegascanError(Exception):
-    """Base class of every error omegascan raises on purpose."""
+class ChangekindError(Exception):
+    """Base class of every error changekind raises on purpose."""
 
 
-class SeriesError(OmegascanError, ValueError):
+class SeriesError(ChangekindError, ValueError):
     """A series cannot be analysed as given.
 
     Parameters
@@ -56,13 +56,13 @@ class TimestampError(SeriesError):
     """Timestamps that cannot be parsed or put on a regular grid."""
 
 
-class ModelError(OmegascanError, ValueError):
+class ModelError(ChangekindError, ValueError):
     """A fitted-model value is malformed (for example a damaged cache row)."""
 
 
-class SourceError(OmegascanError):
+class SourceError(ChangekindError):
     """A data source is missing, unreadable or has the wrong columns."""
 
 
-class ConfigError(OmegascanError, ValueError):
+class ConfigError(ChangekindError, ValueError):
     """A setting or parameter is out of range or inconsistent."""

@@ -56,8 +56,8 @@ import pyarrow.csv as pacsv
 import pyarrow.dataset as ds
 import sqlalchemy as sa
 
-from omegascan.tasks.errors import ConfigError, SourceError
-from omegascan.tasks.wrappers import TaskSpec, lazy_task
+from changekind.tasks.errors import ConfigError, SourceError
+from changekind.tasks.wrappers import TaskSpec, lazy_task
 
 SourceKind = Literal["parquet", "csv", "sql"]
 TimeKind = Literal["datetime", "numeric", "text"]
@@ -1313,7 +1313,7 @@ class _SqlReader:
             table = sa.Table(name, sa.MetaData(), schema=schema or None, autoload_with=self.conn)
             available = list(table.c.keys())
         else:
-            probe = sa.text(spec.query).columns().subquery("omegascan_source")  # type: ignore[arg-type]
+            probe = sa.text(spec.query).columns().subquery("changekind_source")  # type: ignore[arg-type]
             try:
                 result = self.conn.execute(
                     sa.select(sa.literal_column("*")).select_from(probe).limit(0)
@@ -1328,7 +1328,7 @@ class _SqlReader:
             table = (
                 sa.text(spec.query)
                 .columns(*(sa.column(n) for n in cols.source_names() if n in available))
-                .subquery("omegascan_source")
+                .subquery("changekind_source")
             )
         for role in LONG_COLUMNS:
             name = getattr(cols, role)

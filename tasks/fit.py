@@ -17,9 +17,9 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.signal import lfilter
 
-from omegascan.tasks.threads import single_blas_thread
-from omegascan.tasks.types import Decomposition, FittedModel, round_sig
-from omegascan.tasks.wrappers import TaskSpec, lazy_task
+from changekind.tasks.threads import single_blas_thread
+from changekind.tasks.types import Decomposition, FittedModel, round_sig
+from changekind.tasks.wrappers import TaskSpec, lazy_task
 
 MAX_SEASONAL_LAG = 52
 """Longest season given seasonal ARIMA terms automatically.  A seasonal term at
@@ -724,7 +724,7 @@ def _outlying(y: np.ndarray, d: int) -> np.ndarray:
 
 
 def _natural_lags(decomp: Decomposition) -> tuple[int, ...]:
-    from omegascan.tasks.decompose import natural_periods
+    from changekind.tasks.decompose import natural_periods
 
     n = decomp.series.nobs
     return tuple(p for p in natural_periods(decomp.series.step_seconds) if n >= 4 * p)

@@ -46,8 +46,8 @@ from sqlalchemy.dialects import sqlite as sqlite_dialect
 from sqlalchemy.engine import URL, Connection, Engine
 from sqlalchemy.exc import ArgumentError, DBAPIError, NoSuchModuleError
 
-from omegascan.tasks.errors import ConfigError, ModelError, SourceError
-from omegascan.tasks.types import REPORTED_TYPES, Event, FittedModel
+from changekind.tasks.errors import ConfigError, ModelError, SourceError
+from changekind.tasks.types import REPORTED_TYPES, Event, FittedModel
 
 __all__ = [
     "BOOKKEEPING_COLUMNS",
@@ -85,10 +85,10 @@ __all__ = [
     "write_events",
 ]
 
-DEFAULT_URL = "sqlite:///omegascan.db"
+DEFAULT_URL = "sqlite:///changekind.db"
 """The embedded database used when no URL is given (a file in the working folder)."""
 
-VERSION_TABLE = "omegascan_schema_version"
+VERSION_TABLE = "changekind_schema_version"
 """Alembic's version table; named for the project so a shared database stays readable."""
 
 CONNECT_TIMEOUT_SECONDS = 5
@@ -148,7 +148,7 @@ metadata = sa.MetaData(
         "pk": "pk_%(table_name)s",
     }
 )
-"""The one MetaData every table of omegascan lives on."""
+"""The one MetaData every table of changekind lives on."""
 
 series_events = sa.Table(
     "series_events",
@@ -470,7 +470,7 @@ def _parse_url(url: str | URL) -> URL:
     backend = parsed.get_backend_name()
     if backend not in _INSERTS:
         raise ConfigError(
-            f"database {_masked(parsed)!r} uses {backend!r}; omegascan supports "
+            f"database {_masked(parsed)!r} uses {backend!r}; changekind supports "
             "sqlite and postgresql URLs only"
         )
     if parsed.drivername == "postgresql":  # SQLAlchemy's default driver is not ours
@@ -498,7 +498,7 @@ def connect(url: str | URL = DEFAULT_URL, *, timeout: float = CONNECT_TIMEOUT_SE
 
     Parameters
     ----------
-    url : str or sqlalchemy.engine.URL, default='sqlite:///omegascan.db'
+    url : str or sqlalchemy.engine.URL, default='sqlite:///changekind.db'
         A SQLite or PostgreSQL URL.  ``postgresql://`` means the psycopg 3 driver.
     timeout : float, default=5
         Seconds to wait for a database server (ignored for SQLite files).
@@ -522,7 +522,7 @@ def connect(url: str | URL = DEFAULT_URL, *, timeout: float = CONNECT_TIMEOUT_SE
     except (NoSuchModuleError, ImportError) as exc:
         raise ConfigError(
             f"database {_masked(parsed)!r} needs a driver that is not installed ({exc}); "
-            "for PostgreSQL install psycopg 3 (pip install 'omegascan[postgres]') and "
+            "for PostgreSQL install psycopg 3 (pip install 'changekind[postgres]') and "
             "use a postgresql+psycopg:// URL"
         ) from None
     except (ArgumentError, TypeError) as exc:
@@ -584,13 +584,13 @@ def migrations_dir() -> Path:
     Raises
     ------
     ConfigError
-        When omegascan runs from an installation without the ``infra`` folder.
+        When changekind runs from an installation without the ``infra`` folder.
     """
     path = Path(__file__).resolve().parent.parent / "infra" / "migrations"
     if not (path / "env.py").is_file():
         raise ConfigError(
             f"the database migrations were not found (looked for {path / 'env.py'}); "
-            "run omegascan from a source checkout or an editable install "
+            "run changekind from a source checkout or an editable install "
             "(pip install -e .), which keeps the infra/ folder beside tasks/"
         )
     return path
@@ -609,7 +609,7 @@ def migrate(db: Database = DEFAULT_URL, *, revision: str = "head") -> None:
 
     Parameters
     ----------
-    db : Engine or str, default='sqlite:///omegascan.db'
+    db : Engine or str, default='sqlite:///changekind.db'
         The database (see the module notes).
     revision : str, default='head'
         An Alembic revision identifier.
@@ -1412,7 +1412,7 @@ def record_failures(
 
 
 def table_snapshot(db: Database) -> dict[str, list[tuple[Any, ...]]]:
-    """Every row of every omegascan table, sorted: for comparing database states.
+    """Every row of every changekind table, sorted: for comparing database states.
 
     Rows are sorted on their values' text (None last), so two snapshots compare
     equal exactly when the tables hold the same rows.

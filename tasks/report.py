@@ -1,12 +1,12 @@
 """Pictures and an HTML page of stored events, for people to look at.
 
-Pure building blocks of the ``omegascan report`` command (which reads the
+Pure building blocks of the ``changekind report`` command (which reads the
 database and the source; nothing here does):
 
 - :func:`effect_curve` -- the fitted effect of one event on a window of its
   series, placed by time: a pulse for an AO, a step for an LS, a fading jump
   omega delta^k for a TC and the shock propagated through the model's psi
-  weights for an IO (the shapes of :mod:`omegascan.tasks.detect`);
+  weights for an IO (the shapes of :mod:`changekind.tasks.detect`);
 - :func:`event_figure` -- one matplotlib figure per event: the observed series
   around it, the series with the effect removed, the effect curve, the type
   weights and the model and effect in words;
@@ -38,10 +38,10 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import pandas as pd
 
-from omegascan.tasks.detect import SETTLE, series_shape
-from omegascan.tasks.errors import ConfigError, SeriesError
-from omegascan.tasks.fit import psi_weights
-from omegascan.tasks.types import EVENT_NAMES, EVENT_TYPES, REPORTED_TYPES, Event, FittedModel
+from changekind.tasks.detect import SETTLE, series_shape
+from changekind.tasks.errors import ConfigError, SeriesError
+from changekind.tasks.fit import psi_weights
+from changekind.tasks.types import EVENT_NAMES, EVENT_TYPES, REPORTED_TYPES, Event, FittedModel
 
 if TYPE_CHECKING:
     from matplotlib.figure import Figure
@@ -147,7 +147,7 @@ class ReportSummary:
     """Counts shown at the top of a report.
 
     ``by_type`` holds ``(type, confirmed, provisional, total)`` per type in
-    :data:`~omegascan.tasks.types.REPORTED_TYPES` order; ``by_group`` holds
+    :data:`~changekind.tasks.types.REPORTED_TYPES` order; ``by_group`` holds
     ``(group, counts per type in the same order, total)`` per series group,
     groups sorted by name; ``strongest`` the indices of the events, largest
     |t| first.
@@ -166,7 +166,7 @@ def series_group(series_id: str) -> str:
 
 
 def event_from_record(record: Mapping[str, Any]) -> Event:
-    """An Event from a row of :func:`omegascan.tasks.persist.read_events`.
+    """An Event from a row of :func:`changekind.tasks.persist.read_events`.
 
     ``position`` is -1: stored events are placed by time, not by grid index.
     """
@@ -721,7 +721,7 @@ def render_report(
     pictures: Mapping[tuple[str, str], str],
     summary: ReportSummary,
     *,
-    title: str = "omegascan events",
+    title: str = "changekind events",
     facts: Sequence[tuple[str, str]] = (),
     notes: Mapping[tuple[str, str], str] | None = None,
 ) -> str:
@@ -878,7 +878,7 @@ def write_report(
     out_dir: str | Path,
     views: Sequence[EventView],
     *,
-    title: str = "omegascan events",
+    title: str = "changekind events",
     facts: Sequence[tuple[str, str]] = (),
     dpi: int = FIGURE_DPI,
     on_progress: Callable[[int, int], None] | None = None,

@@ -1,12 +1,12 @@
 """What a report shows, read from the database and the source, and the report of a run.
 
-:mod:`omegascan.tasks.report` draws and writes; this module gathers what it
+:mod:`changekind.tasks.report` draws and writes; this module gathers what it
 draws: the stored events of a selection (all, one run's, since a time, some
 series), the series' stored models, and the observations around each event
 from the source (window medians, or spreads for a variance change, when the
 model was fitted on windows).  :func:`write_stored_report` puts the two
 together; ``write_stored_report_task`` is the Prefect task the fleet flows run
-after a scan or backfill when asked for a report, and ``omegascan report``
+after a scan or backfill when asked for a report, and ``changekind report``
 calls the same function.
 """
 
@@ -20,10 +20,10 @@ import pandas as pd
 import sqlalchemy as sa
 from sqlalchemy.exc import DBAPIError
 
-from omegascan.tasks import persist
-from omegascan.tasks.errors import ConfigError, ModelError, SeriesError, SourceError
-from omegascan.tasks.fetch import SourceSpec, read_series
-from omegascan.tasks.report import (
+from changekind.tasks import persist
+from changekind.tasks.errors import ConfigError, ModelError, SeriesError, SourceError
+from changekind.tasks.fetch import SourceSpec, read_series
+from changekind.tasks.report import (
     PICTURE_PATTERN,
     EventView,
     event_from_record,
@@ -31,9 +31,9 @@ from omegascan.tasks.report import (
     window_bounds,
     write_report,
 )
-from omegascan.tasks.types import Event, FittedModel
-from omegascan.tasks.window import summarize_windows
-from omegascan.tasks.wrappers import TaskSpec, lazy_task
+from changekind.tasks.types import Event, FittedModel
+from changekind.tasks.window import summarize_windows
+from changekind.tasks.wrappers import TaskSpec, lazy_task
 
 
 @dataclass(frozen=True, slots=True)
@@ -65,7 +65,7 @@ def write_stored_report(
 
     Raises
     ------
-    OmegascanError
+    ChangekindError
         The database or source cannot be read, or ``out`` cannot be written.
     """
     frame = read_selected_events(db, run=run, since=since, series=series)
@@ -111,7 +111,7 @@ def _check_sqlite_file(db: str) -> None:
     if not Path(url.database).is_file():
         raise ConfigError(
             f"database file {url.database!r} does not exist; give the --db of a scan "
-            "(or set OMEGASCAN_DB_URL), or run a scan first"
+            "(or set CHANGEKIND_DB_URL), or run a scan first"
         )
 
 
@@ -133,7 +133,7 @@ def read_selected_events(
         first = str(getattr(exc, "orig", exc)).splitlines()[0]
         raise SourceError(
             f"cannot read events from {masked_url(db)} ({first}); is it the database of an "
-            "omegascan scan? run a scan first or give another --db"
+            "changekind scan? run a scan first or give another --db"
         ) from None
     if run is not None:
         frame = frame[(frame["first_run_id"] == run) | (frame["last_run_id"] == run)]

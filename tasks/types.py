@@ -16,13 +16,13 @@ from typing import Any, Literal
 import numpy as np
 import pandas as pd
 
-from omegascan.tasks.errors import ModelError
+from changekind.tasks.errors import ModelError
 
 EventType = Literal["AO", "LS", "TC", "IO", "VC"]
 EVENT_TYPES: tuple[EventType, ...] = ("AO", "LS", "TC", "IO")
 """The four intervention types the engine classifies.  ``"VC"`` (variance
 change) is not among them: windowed mode reports it from a step in the window
-spreads (omegascan.tasks.window)."""
+spreads (changekind.tasks.window)."""
 REPORTED_TYPES: tuple[EventType, ...] = (*EVENT_TYPES, "VC")
 """Every type an event row can carry: the four, and windowed mode's variance change."""
 EVENT_NAMES: dict[str, str] = {
@@ -179,7 +179,7 @@ class FittedModel:
     ``"given"`` for fixed orders, ``"baseline"`` for the robust fallback) and
     ``fallback`` why a simpler model was taken, if one was.
 
-    A model fitted in windowed mode (omegascan.tasks.window) is the model of
+    A model fitted in windowed mode (changekind.tasks.window) is the model of
     the window medians; ``window`` names the width (pandas offset text such as
     ``"10s"``) and ``spread`` holds the model of the log window spreads (None
     when the spreads could not be modelled).

@@ -33,8 +33,8 @@ import pandas as pd
 from pandas.tseries.frequencies import to_offset
 from scipy.special import ndtri
 
-from omegascan.tasks.decompose import MAX_GRID_RATIO, MIN_POINTS
-from omegascan.tasks.errors import (
+from changekind.tasks.decompose import MAX_GRID_RATIO, MIN_POINTS
+from changekind.tasks.errors import (
     AllMissingError,
     ConfigError,
     NonFiniteError,
@@ -44,10 +44,10 @@ from omegascan.tasks.errors import (
     TimestampError,
     TooShortError,
 )
-from omegascan.tasks.types import DetectionResult, Event, FittedModel, format_duration
+from changekind.tasks.types import DetectionResult, Event, FittedModel, format_duration
 
 if TYPE_CHECKING:
-    from omegascan.tasks.fetch import SourceSpec
+    from changekind.tasks.fetch import SourceSpec
 
 MIN_WINDOWS = MIN_POINTS
 """Fewest windows with data that windowed detection accepts (the engine's own
@@ -476,7 +476,7 @@ def detect_windowed(
     Tsay, R. S. (1988). Outliers, level shifts, and variance changes in time
     series. Journal of Forecasting 7(1), 1-20.
     """
-    from omegascan.tasks.detect import analyse_series
+    from changekind.tasks.detect import analyse_series
 
     # Step 1: windows.
     summary = summarize_windows(series_id, timestamps, values, window)
@@ -627,7 +627,7 @@ def screen_windowed(
 
     The warm counterpart of :func:`detect_windowed`, for the fleet flows: no
     estimation, only the engine's filter of new points
-    (:func:`~omegascan.tasks.detect.screen_new_points`) on the window medians
+    (:func:`~changekind.tasks.detect.screen_new_points`) on the window medians
     and on the log window spreads.
 
     Parameters
@@ -659,8 +659,8 @@ def screen_windowed(
     events are in series units and removed as they are.  Known variance
     changes are removed from the log spreads as steps of log(ratio).
     """
-    from omegascan.tasks.decompose import regularize
-    from omegascan.tasks.detect import screen_new_points
+    from changekind.tasks.decompose import regularize
+    from changekind.tasks.detect import screen_new_points
 
     width = summary.window
     sid = summary.series_id
@@ -727,7 +727,7 @@ def drill(
     Parameters
     ----------
     spec : SourceSpec
-        From :func:`omegascan.tasks.fetch.open_source`.
+        From :func:`changekind.tasks.fetch.open_source`.
     series_id : str
     event_time : str or pandas.Timestamp
         Any time inside the window (an event's ``event_time`` or
@@ -759,12 +759,12 @@ def drill(
     Notes
     -----
     1. Floor the time to its window (UTC for a time with a zone).
-    2. Read the span with :func:`~omegascan.tasks.fetch.read_series`, which
+    2. Read the span with :func:`~changekind.tasks.fetch.read_series`, which
        pushes the series and time filters down to the storage.
     3. Offsets of the rows from the window, compared exactly as the read
        compared them (naive times in the source's time zone).
     """
-    from omegascan.tasks.fetch import _Axis, read_series
+    from changekind.tasks.fetch import _Axis, read_series
 
     width = parse_window(window)
     if isinstance(around, bool) or not isinstance(around, int | np.integer):
@@ -1033,7 +1033,7 @@ def _absent(
     asked: object,
 ) -> SourceError | ConfigError:
     """The error for a drill that finds no point: no such series, or no such time."""
-    from omegascan.tasks.fetch import _Axis, list_series, read_series
+    from changekind.tasks.fetch import _Axis, list_series, read_series
 
     ids = list_series(spec)
     if series_id not in ids:

@@ -1,6 +1,6 @@
 """Thin Prefect wrappers, built on first use.
 
-``import prefect`` costs one to two seconds, which a one-off ``omegascan detect``
+``import prefect`` costs one to two seconds, which a one-off ``changekind detect``
 should not pay.  Each step module therefore declares its wrappers in a dict and
 forwards attribute look-ups here (PEP 562 module ``__getattr__``); the wrapper is
 built once, with ``prefect.task``, the first time a flow asks for it.

@@ -1,1 +1,1 @@
-"""omegascan test suite."""
+"""changekind test suite."""

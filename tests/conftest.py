@@ -5,7 +5,7 @@
 ``pg_url``
     A fresh, empty schema on the real PostgreSQL server (default
     ``postgresql+psycopg://postgres@127.0.0.1:5432/test``; set
-    ``OMEGASCAN_TEST_PG_URL`` to use another), reached through ``search_path``
+    ``CHANGEKIND_TEST_PG_URL`` to use another), reached through ``search_path``
     and dropped after the test.  When the server cannot be reached the test is
     skipped with the reason, except under ``CI=true``, where it fails: CI must
     run the PostgreSQL tests.
@@ -23,14 +23,14 @@ import sqlalchemy as sa
 from sqlalchemy.pool import NullPool
 
 PG_BASE_URL = os.environ.get(
-    "OMEGASCAN_TEST_PG_URL", "postgresql+psycopg://postgres@127.0.0.1:5432/test"
+    "CHANGEKIND_TEST_PG_URL", "postgresql+psycopg://postgres@127.0.0.1:5432/test"
 )
 
 
 @pytest.fixture
 def sqlite_url(tmp_path: Path) -> str:
     """URL of a SQLite database file in ``tmp_path``."""
-    return f"sqlite:///{tmp_path / 'omegascan.db'}"
+    return f"sqlite:///{tmp_path / 'changekind.db'}"
 
 
 def _absent(reason: str) -> None:
@@ -45,7 +45,7 @@ def _pg_server() -> Iterator[sa.Engine | str]:
     try:
         import psycopg  # noqa: F401
     except ImportError:
-        yield "psycopg (PostgreSQL driver) is not installed; pip install 'omegascan[dev]'"
+        yield "psycopg (PostgreSQL driver) is not installed; pip install 'changekind[dev]'"
         return
     url = sa.make_url(PG_BASE_URL)
     engine = sa.create_engine(url, poolclass=NullPool, connect_args={"connect_timeout": 3})
@@ -57,7 +57,7 @@ def _pg_server() -> Iterator[sa.Engine | str]:
         first = str(exc.orig).splitlines()[0] if exc.orig else str(exc)
         yield (
             f"PostgreSQL is not reachable at {url.render_as_string(hide_password=True)} "
-            f"({first}); start it or set OMEGASCAN_TEST_PG_URL"
+            f"({first}); start it or set CHANGEKIND_TEST_PG_URL"
         )
         return
     yield engine
@@ -70,7 +70,7 @@ def pg_url(_pg_server: sa.Engine | str) -> Iterator[str]:
     if isinstance(_pg_server, str):
         _absent(_pg_server)
     assert isinstance(_pg_server, sa.Engine)
-    schema = f"omegascan_test_{uuid.uuid4().hex[:12]}"
+    schema = f"changekind_test_{uuid.uuid4().hex[:12]}"
     with _pg_server.begin() as conn:
         conn.execute(sa.text(f'CREATE SCHEMA "{schema}"'))
     url = _pg_server.url.update_query_dict({"options": f"-csearch_path={schema}"})

@@ -1,8 +1,8 @@
-"""Alembic environment for omegascan's database.
+"""Alembic environment for changekind's database.
 
 Used two ways:
 
-* programmatically by ``omegascan.tasks.persist.migrate``, which passes an open
+* programmatically by ``changekind.tasks.persist.migrate``, which passes an open
   connection in ``config.attributes["connection"]``;
 * from the command line with ``infra/alembic.ini``, e.g.
   ``alembic -c infra/alembic.ini -x url=postgresql+psycopg://user@host/db upgrade head``
@@ -16,7 +16,7 @@ from logging.config import fileConfig
 from alembic import context
 from sqlalchemy.engine import Connection
 
-from omegascan.tasks.persist import VERSION_TABLE, connect, metadata
+from changekind.tasks.persist import VERSION_TABLE, connect, metadata
 
 config = context.config
 target_metadata = metadata
@@ -27,7 +27,7 @@ if config.config_file_name is not None and config.attributes.get("connection") i
 
 def _url() -> str:
     url = context.get_x_argument(as_dictionary=True).get("url")
-    return url or config.get_main_option("sqlalchemy.url") or "sqlite:///omegascan.db"
+    return url or config.get_main_option("sqlalchemy.url") or "sqlite:///changekind.db"
 
 
 def _options(dialect_name: str) -> dict[str, object]:

@@ -21,8 +21,8 @@ import numpy as np
 import pandas as pd
 from scipy.signal import lfilter
 
-from omegascan.tasks.decompose import regularize
-from omegascan.tasks.detect import analyse_series, screen_new_points
+from changekind.tasks.decompose import regularize
+from changekind.tasks.detect import analyse_series, screen_new_points
 
 STAGES = {
     "order selection + tests": ("select_orders", "choose_d", "_outlying"),

@@ -1,4 +1,4 @@
-"""Reading speed of omegascan.tasks.fetch on a 1,000-series x 720-point Parquet dataset.
+"""Reading speed of changekind.tasks.fetch on a 1,000-series x 720-point Parquet dataset.
 
 Run by hand (it is not collected by pytest)::
 
@@ -32,7 +32,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from omegascan.tasks import fetch
+from changekind.tasks import fetch
 
 
 def build(root: Path, n_series: int, n_points: int, rng: np.random.Generator) -> pd.DataFrame:

@@ -129,9 +129,9 @@ def inject_new_events(rng: np.random.Generator, y: np.ndarray, new: int) -> None
 def run_flow_child(args: argparse.Namespace) -> None:
     """``run-flow``: run one flow, write a JSON report (called in a fresh process)."""
     t_proc = time.perf_counter()
-    from omegascan.flows.pipeline import make_task_runner
-    from omegascan.flows.scan import backfill_flow, scan_flow
-    from omegascan.flows.settings import RunOptions
+    from changekind.flows.pipeline import make_task_runner
+    from changekind.flows.scan import backfill_flow, scan_flow
+    from changekind.flows.settings import RunOptions
 
     t_imported = time.perf_counter()
     options = RunOptions(workers=args.workers)
@@ -459,12 +459,12 @@ def engine_profile(db: str, source: Path, sample: int) -> None:
     """Warm analysis of a sample of series in this process, by outcome (no Prefect).
 
     Planned from the database as it was after the cold scan; batches of 200
-    through :func:`omegascan.tasks.batch.run_batch`, one process, serially.
+    through :func:`changekind.tasks.batch.run_batch`, one process, serially.
     """
-    from omegascan.flows.pipeline import plan_works, stored_state
-    from omegascan.flows.settings import RunOptions
-    from omegascan.tasks.batch import run_batch
-    from omegascan.tasks.fetch import list_series, open_source
+    from changekind.flows.pipeline import plan_works, stored_state
+    from changekind.flows.settings import RunOptions
+    from changekind.tasks.batch import run_batch
+    from changekind.tasks.fetch import list_series, open_source
 
     options = RunOptions().analysis()
     spec = open_source(str(source))
@@ -530,8 +530,8 @@ def profile_warm_path(spec, works, options) -> None:
     import cProfile
     import pstats
 
-    from omegascan.tasks.batch import analyse_series_work
-    from omegascan.tasks.fetch import SeriesWindow, read_windows
+    from changekind.tasks.batch import analyse_series_work
+    from changekind.tasks.fetch import SeriesWindow, read_windows
 
     if not works:
         return
@@ -719,13 +719,13 @@ def main(argv: list[str] | None = None) -> None:
     if unknown:
         parser.error(f"unknown part(s) {sorted(unknown)}; use warm, cold, backfill")
     cleanup = args.workdir is None
-    args.workdir = Path(args.workdir or tempfile.mkdtemp(prefix="omegascan-bench-")).resolve()
+    args.workdir = Path(args.workdir or tempfile.mkdtemp(prefix="changekind-bench-")).resolve()
     args.workdir.mkdir(parents=True, exist_ok=True)
     args.results = {}
     args.server_pid = None
     home = args.workdir / "prefect-home"
     server = None
-    print(f"# omegascan fleet benchmark ({args.workers} workers, work dir {args.workdir})")
+    print(f"# changekind fleet benchmark ({args.workers} workers, work dir {args.workdir})")
     try:
         if args.api_url:
             url = args.api_url

@@ -153,16 +153,16 @@ class SeriesOutcome:
 
 
 def engine_available() -> bool:
-    """True when ``omegascan.tasks.detect`` can be imported."""
+    """True when ``changekind.tasks.detect`` can be imported."""
     try:
-        import omegascan.tasks.detect  # noqa: F401
+        import changekind.tasks.detect  # noqa: F401
     except ImportError:
         return False
     return True
 
 
 def _run_engine(series: SimulatedSeries, critical: float | None) -> tuple[Detection, ...]:
-    from omegascan.tasks.detect import analyse_series
+    from changekind.tasks.detect import analyse_series
 
     result = analyse_series(series.series_id, series.timestamps, series.values, critical=critical)
     return tuple(
@@ -843,7 +843,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         methods.remove(ENGINE)
     elif not engine_available():
         print(
-            "omegascan.tasks.detect is not importable; running baselines and oracle only.",
+            "changekind.tasks.detect is not importable; running baselines and oracle only.",
             file=sys.stderr,
         )
         methods.remove(ENGINE)
@@ -869,7 +869,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     wall = time.perf_counter() - start
     crit = args.critical
     if crit is None and ENGINE in methods:
-        from omegascan.tasks.detect import default_critical
+        from changekind.tasks.detect import default_critical
 
         crit = default_critical(args.n)
     print(report(outcomes, methods, wall=wall, jobs=args.jobs, critical=crit))

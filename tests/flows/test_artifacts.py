@@ -26,13 +26,13 @@ from prefect.types.names import ArtifactKey
 from pydantic import TypeAdapter
 from typer.testing import CliRunner
 
-import omegascan.flows.cli_report  # noqa: F401  (registers ``report`` on the app)
-from omegascan.flows.artifacts import artifact_key, publish_run_artifacts, run_markdown
-from omegascan.flows.cli import app
-from omegascan.flows.scan import scan_flow
-from omegascan.flows.settings import RunOptions
-from omegascan.tasks import persist
-from omegascan.tasks.types import EVENT_NAMES, EVENT_TYPES
+import changekind.flows.cli_report  # noqa: F401  (registers ``report`` on the app)
+from changekind.flows.artifacts import artifact_key, publish_run_artifacts, run_markdown
+from changekind.flows.cli import app
+from changekind.flows.scan import scan_flow
+from changekind.flows.settings import RunOptions
+from changekind.tasks import persist
+from changekind.tasks.types import EVENT_NAMES, EVENT_TYPES
 from tests.flows.fleet import make_fleet, write_source
 from tests.tasks.test_report import check_page, png_size
 
@@ -44,7 +44,7 @@ def _publish_in_a_flow(summary, db):
     from prefect import flow
     from prefect.runtime import flow_run
 
-    @flow(name="omegascan-test-publish")
+    @flow(name="changekind-test-publish")
     def publish() -> str:
         publish_run_artifacts(summary, db=db)
         return str(flow_run.id)
@@ -107,17 +107,17 @@ def test_artifact_keys_follow_prefects_rule():
             key = artifact_key(kind, what)
             assert re.fullmatch(r"[a-z0-9]+(-[a-z0-9]+)*", key), key
             assert validate.validate_python(key) == key
-    assert artifact_key("scan", "summary") == "omegascan-scan-summary"
+    assert artifact_key("scan", "summary") == "changekind-scan-summary"
 
 
 def test_scan_artifacts_hold_the_counts_and_the_runs_events(scanned):
     db = scanned["db"]
     for summary, publish_id, events_then in scanned["runs"]:
         artifacts = _artifacts_of(publish_id)
-        assert set(artifacts) == {"omegascan-scan-summary", "omegascan-scan-events"}
-        markdown = artifacts["omegascan-scan-summary"].data
+        assert set(artifacts) == {"changekind-scan-summary", "changekind-scan-events"}
+        markdown = artifacts["changekind-scan-summary"].data
         assert markdown == run_markdown(
-            summary, n_table_rows=len(json.loads(artifacts["omegascan-scan-events"].data))
+            summary, n_table_rows=len(json.loads(artifacts["changekind-scan-events"].data))
         )
         counts = dict(summary.by_type)
         assert (
@@ -130,7 +130,7 @@ def test_scan_artifacts_hold_the_counts_and_the_runs_events(scanned):
         # The constant series failed in every run and is named with the reason.
         assert "shelf-x/stuck" in markdown and "constant" in markdown
 
-        rows = pd.DataFrame(json.loads(artifacts["omegascan-scan-events"].data))
+        rows = pd.DataFrame(json.loads(artifacts["changekind-scan-events"].data))
         # Reference: the database as it was right after the run.
         stored = (
             events_then
@@ -154,7 +154,7 @@ def test_scan_artifacts_hold_the_counts_and_the_runs_events(scanned):
         assert (rows["t"].abs().diff().dropna() <= 0).all()  # strongest first
     # The first scan's table holds the injected events (reference: the truth).
     first_rows = pd.DataFrame(
-        json.loads(_artifacts_of(scanned["runs"][0][1])["omegascan-scan-events"].data)
+        json.loads(_artifacts_of(scanned["runs"][0][1])["changekind-scan-events"].data)
     )
     assert _matches(first_rows, scanned["truth"]) >= len(scanned["truth"]) - 1
 

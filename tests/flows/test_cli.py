@@ -1,4 +1,4 @@
-"""``omegascan detect``: input layouts, the JSON contract, bad series, bad usage.
+"""``changekind detect``: input layouts, the JSON contract, bad series, bad usage.
 
 References
 ----------
@@ -24,9 +24,9 @@ from scipy.signal import lfilter
 from statsmodels.tsa.arima.model import ARIMA
 from typer.testing import CliRunner
 
-from omegascan.flows.cli import analyse_inputs, app
-from omegascan.flows.inputs import SeriesInput, read_series_file
-from omegascan.tasks.types import EVENT_TYPES
+from changekind.flows.cli import analyse_inputs, app
+from changekind.flows.inputs import SeriesInput, read_series_file
+from changekind.tasks.types import EVENT_TYPES
 
 N, T_SHIFT, PHI, SHIFT = 300, 150, 0.5, 8.0  # shift of 8 innovation sds at t = 150
 STAMP_FORMAT = "%Y-%m-%d %H:%M"  # deliberately not ISO's "T": must come back as given
@@ -302,8 +302,8 @@ def test_bad_options_exit_2(tmp_path, args):
 
 
 def _console_script() -> list[str]:
-    script = Path(sys.executable).with_name("omegascan")
-    return [str(script)] if script.exists() else [sys.executable, "-m", "omegascan.flows.cli"]
+    script = Path(sys.executable).with_name("changekind")
+    return [str(script)] if script.exists() else [sys.executable, "-m", "changekind.flows.cli"]
 
 
 def test_console_script_exit_codes_and_streams(tmp_path):
@@ -335,7 +335,7 @@ def test_detect_does_not_import_prefect(tmp_path):
     code = (
         "import sys\n"
         "from typer.testing import CliRunner\n"
-        "from omegascan.flows.cli import app\n"
+        "from changekind.flows.cli import app\n"
         f"r = CliRunner().invoke(app, ['detect', {str(path)!r}, '--json'])\n"
         "assert r.exit_code == 0, r.stderr\n"
         "print('prefect' in sys.modules)\n"

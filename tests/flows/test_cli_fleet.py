@@ -30,16 +30,18 @@ import pandas as pd
 import pytest
 from typer.testing import CliRunner
 
-from omegascan.flows.cli import app
-from omegascan.flows.demo import score_against_truth
-from omegascan.tasks import persist  # imports Prefect here, so its logging binds to the real stderr
-from omegascan.tasks.report import picture_name
+from changekind.flows.cli import app
+from changekind.flows.demo import score_against_truth
+from changekind.tasks import (
+    persist,  # imports Prefect here, so its logging binds to the real stderr
+)
+from changekind.tasks.report import picture_name
 from tests.flows.fleet import make_fleet, write_source
 from tests.tasks.test_report import check_page, png_size
 
 runner = CliRunner()
 
-RECORD_FIELDS = [  # README, "Usage: omegascan detect": one record of --json output
+RECORD_FIELDS = [  # README, "Usage: changekind detect": one record of --json output
     "series_id",
     "event_time",
     "event_type",
@@ -335,8 +337,8 @@ def _bad_cases(good: Path, tmp: Path) -> list[tuple[list[str], str]]:
 
 
 def test_bad_configuration_gets_one_line_and_exit_2(good_source, tmp_path, monkeypatch):
-    monkeypatch.delenv("OMEGASCAN_SOURCE", raising=False)
-    monkeypatch.delenv("OMEGASCAN_DB_URL", raising=False)
+    monkeypatch.delenv("CHANGEKIND_SOURCE", raising=False)
+    monkeypatch.delenv("CHANGEKIND_DB_URL", raising=False)
     persist.migrate(f"sqlite:///{tmp_path / 'x.db'}")  # so the events cases reach their check
     for args, named in _bad_cases(good_source, tmp_path):
         result = _invoke(*args)
@@ -345,7 +347,7 @@ def test_bad_configuration_gets_one_line_and_exit_2(good_source, tmp_path, monke
         )
         assert result.exit_code == 2, shown
         assert result.stdout == "", shown
-        assert result.stderr.count("\n") == 1 and result.stderr.startswith("omegascan: error:"), (
+        assert result.stderr.count("\n") == 1 and result.stderr.startswith("changekind: error:"), (
             shown
         )
         assert named in result.stderr, shown
@@ -380,10 +382,10 @@ def test_scan_reads_a_database_table(prefect_server, good_source, tmp_path):
 def test_errors_inside_the_flow_reach_the_user_without_a_traceback(
     prefect_server, good_source, tmp_path, monkeypatch, capfd
 ):
-    from omegascan.flows import scan as scan_module
-    from omegascan.tasks.errors import ConfigError
+    from changekind.flows import scan as scan_module
+    from changekind.tasks.errors import ConfigError
 
-    monkeypatch.delenv("OMEGASCAN_DEBUG", raising=False)  # debugging shows the traceback
+    monkeypatch.delenv("CHANGEKIND_DEBUG", raising=False)  # debugging shows the traceback
     db = f"sqlite:///{tmp_path / 'x.db'}"
     args = ("scan", "--source", str(good_source), "--db", db)
 
@@ -393,7 +395,7 @@ def test_errors_inside_the_flow_reach_the_user_without_a_traceback(
     monkeypatch.setattr(scan_module, "execute", bad_config)
     result = _invoke(*args)
     assert result.exit_code == 2
-    assert result.stderr == "omegascan: error: the batch size 0 is not usable; give 1 or more\n"
+    assert result.stderr == "changekind: error: the batch size 0 is not usable; give 1 or more\n"
 
     def lost_database(*_args, **_kwargs):
         raise OSError("disk I/O error")
@@ -409,9 +411,9 @@ def test_errors_inside_the_flow_reach_the_user_without_a_traceback(
 
 
 def test_bad_environment_setting_is_named(good_source, tmp_path, monkeypatch):
-    monkeypatch.setenv("OMEGASCAN_RUNNER", "rockets")
+    monkeypatch.setenv("CHANGEKIND_RUNNER", "rockets")
     result = _invoke("scan", "--source", str(good_source), "--db", f"sqlite:///{tmp_path / 'x.db'}")
-    assert result.exit_code == 2 and "OMEGASCAN_RUNNER 'rockets'" in result.stderr
+    assert result.exit_code == 2 and "CHANGEKIND_RUNNER 'rockets'" in result.stderr
 
 
 def test_dask_runner_without_a_prefect_server_says_how_to_start_one(good_source, tmp_path):
@@ -422,7 +424,7 @@ def test_dask_runner_without_a_prefect_server_says_how_to_start_one(good_source,
         [
             sys.executable,
             "-m",
-            "omegascan.flows.cli",
+            "changekind.flows.cli",
             "scan",
             "--source",
             str(good_source),
@@ -472,7 +474,7 @@ def test_demo_runs_the_pipeline_and_scores_the_stored_events(prefect_server, tmp
     # events.json is the stored table in the detect contract.
     records = json.loads((out / "events.json").read_text())
     assert [r["event_time"] for r in records] == stored["event_time"].tolist()
-    assert f"omegascan events --db {db} --json" in result.stdout
+    assert f"changekind events --db {db} --json" in result.stdout
     assert "open_level_shifts" in result.stdout and "daily_event_counts" in result.stdout
 
     # The report of the demo run: every stored event has its picture, so every
@@ -504,7 +506,7 @@ def test_demo_runs_the_pipeline_and_scores_the_stored_events(prefect_server, tmp
 
 
 def test_day_files_hold_one_utc_day_each_and_the_whole_fleet_together(tmp_path):
-    from omegascan.flows.demo import make_demo_fleet, write_day_files
+    from changekind.flows.demo import make_demo_fleet, write_day_files
 
     fleet = make_demo_fleet(np.random.default_rng(0), n_controllers=2, days=4, step="1h")
     early = write_day_files(fleet.data, tmp_path, last=3)

@@ -14,10 +14,10 @@ from pathlib import Path
 import dask
 import distributed
 
-from omegascan.flows.pipeline import make_task_runner
-from omegascan.flows.scan import scan_flow
-from omegascan.flows.settings import RunOptions
-from omegascan.tasks import persist
+from changekind.flows.pipeline import make_task_runner
+from changekind.flows.scan import scan_flow
+from changekind.flows.settings import RunOptions
+from changekind.tasks import persist
 from tests.flows.fleet import make_fleet, write_source
 
 # Small batches so the fleet's nine series become several tasks spread over

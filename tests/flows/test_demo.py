@@ -22,15 +22,15 @@ import pytest
 from numpy.testing import assert_allclose
 from statsmodels.tsa.arima.model import ARIMA
 
-from omegascan.flows.demo import (
+from changekind.flows.demo import (
     EFFECT_SIGMAS,
     TC_DECAY,
     DemoFleet,
     make_demo_fleet,
     score_against_truth,
 )
-from omegascan.tasks.errors import ConfigError
-from omegascan.tasks.types import Event
+from changekind.tasks.errors import ConfigError
+from changekind.tasks.types import Event
 
 PER_DAY = 288  # five-minute samples in a day
 

@@ -23,14 +23,14 @@ from pathlib import Path
 import pytest
 import yaml
 
-from omegascan.flows import scan
-from omegascan.flows.settings import RunOptions
-from omegascan.tasks import persist
+from changekind.flows import scan
+from changekind.flows.settings import RunOptions
+from changekind.tasks import persist
 from tests.flows.fleet import make_fleet, write_source
 
 ROOT = Path(__file__).resolve().parents[2]
 PREFECT_FILE = ROOT / "infra" / "prefect.yaml"
-POOL = "omegascan-process"
+POOL = "changekind-process"
 
 # deployment name -> (flow object it must load, cron or None)
 EXPECTED = {
@@ -39,8 +39,8 @@ EXPECTED = {
     "nightly-refit": (scan.refit_flow, "30 2 * * *"),
 }
 ENV = {
-    "OMEGASCAN_SOURCE": "/srv/metrics/fleet",
-    "OMEGASCAN_DB_URL": "postgresql+psycopg://omegascan@db.internal/omegascan",
+    "CHANGEKIND_SOURCE": "/srv/metrics/fleet",
+    "CHANGEKIND_DB_URL": "postgresql+psycopg://changekind@db.internal/changekind",
 }
 # A backfill run supplies its span (``prefect deployment run ... --param``).
 RUN_PARAMETERS = {"backfill": {"start": "2026-05-01", "end": "2026-06-01"}}
@@ -69,7 +69,7 @@ def test_prefect_yaml_declares_the_three_deployments_on_one_process_pool():
     for name, config in deployments.items():
         assert config["work_pool"]["name"] == POOL, name
         assert config["entrypoint"].startswith("flows/deployed.py:"), name
-        assert config["work_pool"]["job_variables"]["env"]["OMEGASCAN_RUNNER"] == "processes"
+        assert config["work_pool"]["job_variables"]["env"]["CHANGEKIND_RUNNER"] == "processes"
     raw = yaml.safe_load(PREFECT_FILE.read_text())
     assert not raw.get("build") and not raw.get("push")  # code is installed on the worker
 
@@ -90,25 +90,25 @@ def test_entrypoints_load_our_flows(monkeypatch):
     ("env", "runner"),
     [
         ({}, "ThreadPoolTaskRunner"),
-        ({"OMEGASCAN_RUNNER": "processes", "OMEGASCAN_WORKERS": "3"}, "ProcessPoolTaskRunner"),
+        ({"CHANGEKIND_RUNNER": "processes", "CHANGEKIND_WORKERS": "3"}, "ProcessPoolTaskRunner"),
         (
-            {"OMEGASCAN_RUNNER": "dask", "OMEGASCAN_DASK_ADDRESS": "tcp://10.0.0.5:8786"},
+            {"CHANGEKIND_RUNNER": "dask", "CHANGEKIND_DASK_ADDRESS": "tcp://10.0.0.5:8786"},
             "DaskTaskRunner",
         ),
     ],
 )
 def test_deployed_flows_take_the_task_runner_from_the_environment(monkeypatch, env, runner):
-    """A worker importing the entrypoints gets the runner OMEGASCAN_RUNNER names."""
+    """A worker importing the entrypoints gets the runner CHANGEKIND_RUNNER names."""
     import importlib
 
     from prefect.flows import load_flow_from_entrypoint
 
-    for key in ("OMEGASCAN_RUNNER", "OMEGASCAN_WORKERS", "OMEGASCAN_DASK_ADDRESS"):
+    for key in ("CHANGEKIND_RUNNER", "CHANGEKIND_WORKERS", "CHANGEKIND_DASK_ADDRESS"):
         monkeypatch.delenv(key, raising=False)
     for key, value in env.items():
         monkeypatch.setenv(key, value)
     monkeypatch.chdir(ROOT)
-    import omegascan.flows.deployed as deployed
+    import changekind.flows.deployed as deployed
 
     importlib.reload(deployed)  # settings are read at import, as on a worker
     for name, config in _deployments().items():
@@ -128,8 +128,8 @@ def test_parameters_are_accepted_by_the_flows_and_the_server_schema(monkeypatch)
     for name, config in _deployments().items():
         flow = EXPECTED[name][0]
         params = {**_templated(config, monkeypatch)["parameters"], **RUN_PARAMETERS.get(name, {})}
-        assert params["db"] == ENV["OMEGASCAN_DB_URL"], name
-        assert params["source"] == ENV["OMEGASCAN_SOURCE"], name
+        assert params["db"] == ENV["CHANGEKIND_DB_URL"], name
+        assert params["source"] == ENV["CHANGEKIND_SOURCE"], name
         # The server's check on a deployment's run parameters (enforce_parameter_schema).
         validate(params, parameter_schema(flow).model_dump(), raise_on_error=True)
         # The flow's own pydantic validation, done when a run starts.
@@ -212,8 +212,8 @@ def test_prefect_deploy_all_then_a_worker_runs_the_scan(prefect_server, tmp_path
         "PREFECT_HOME": str(tmp_path / "prefect-home"),
         "PREFECT_SERVER_ANALYTICS_ENABLED": "false",
         "PREFECT_CLI_PROMPT": "false",
-        "OMEGASCAN_SOURCE": str(source),
-        "OMEGASCAN_DB_URL": db,
+        "CHANGEKIND_SOURCE": str(source),
+        "CHANGEKIND_DB_URL": db,
     }
     _cli("work-pool", "create", POOL, "--type", "process", "--overwrite", env=env)
     _cli("deploy", "--all", "--prefect-file", str(PREFECT_FILE), env=env)

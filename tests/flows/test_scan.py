@@ -14,13 +14,13 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
-from omegascan.flows.pipeline import plan_works
-from omegascan.flows.scan import backfill_flow, refit_flow, scan_flow, split_span
-from omegascan.flows.settings import RunOptions
-from omegascan.tasks import persist
-from omegascan.tasks.batch import AnalysisOptions, plan_batches
-from omegascan.tasks.errors import ConfigError
-from omegascan.tasks.types import Event
+from changekind.flows.pipeline import plan_works
+from changekind.flows.scan import backfill_flow, refit_flow, scan_flow, split_span
+from changekind.flows.settings import RunOptions
+from changekind.tasks import persist
+from changekind.tasks.batch import AnalysisOptions, plan_batches
+from changekind.tasks.errors import ConfigError
+from changekind.tasks.types import Event
 from tests.flows.fleet import make_fleet, write_source
 
 OPTIONS = RunOptions(workers=2)
@@ -59,8 +59,8 @@ def test_split_span_into_chunks():
 
 
 def test_plan_batches_sizes_by_cost():
-    from omegascan.tasks.batch import SeriesWork
-    from omegascan.tasks.types import FittedModel
+    from changekind.tasks.batch import SeriesWork
+    from changekind.tasks.types import FittedModel
 
     model = FittedModel(
         "x", (1, 0, 0), (0, 0, 0, 0), "c", (("sigma2", 1.0),), 1.0, 100, "mle", True
@@ -84,7 +84,7 @@ def test_plan_batches_sizes_by_cost():
 
 
 def test_plan_works_warm_after_watermark_and_skip_when_done():
-    from omegascan.tasks.types import FittedModel
+    from changekind.tasks.types import FittedModel
 
     model = FittedModel(
         "a",
@@ -261,8 +261,8 @@ def test_refit_reestimates_and_keeps_events(prefect_server, fleet, tmp_path):
 _BACKFILL = textwrap.dedent(
     """
     import sys
-    from omegascan.flows.scan import backfill_flow
-    from omegascan.flows.settings import RunOptions
+    from changekind.flows.scan import backfill_flow
+    from changekind.flows.settings import RunOptions
     backfill_flow(sys.argv[1], "2026-06-03", "2026-06-22", sys.argv[2], chunk="1D",
                   warmup="2D", options=RunOptions(workers=1, batch_seconds=0.5))
     """

@@ -15,10 +15,10 @@ import pandas as pd
 import pytest
 from typer.testing import CliRunner
 
-from omegascan.flows.cli import app
-from omegascan.flows.scan import backfill_flow, scan_flow
-from omegascan.flows.settings import RunOptions
-from omegascan.tasks import persist
+from changekind.flows.cli import app
+from changekind.flows.scan import backfill_flow, scan_flow
+from changekind.flows.settings import RunOptions
+from changekind.tasks import persist
 from tests.tasks.test_report import check_page, png_size
 from tests.tasks.test_window import LS_AT, SID, START, TC_AT, VC_AT, make_second_series
 

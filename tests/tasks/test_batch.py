@@ -23,15 +23,15 @@ from numpy.testing import assert_allclose
 from scipy.signal import lfilter
 from statsmodels.tsa.arima.model import ARIMA
 
-from omegascan.tasks.batch import (
+from changekind.tasks.batch import (
     AnalysisOptions,
     SeriesWork,
     analyse_series_work,
     run_batch,
 )
-from omegascan.tasks.decompose import regularize
-from omegascan.tasks.detect import reestimate
-from omegascan.tasks.fetch import open_source
+from changekind.tasks.decompose import regularize
+from changekind.tasks.detect import reestimate
+from changekind.tasks.fetch import open_source
 
 SID = "edge-004/node-17"
 HISTORY, NEW = 480, 60
@@ -163,7 +163,7 @@ def test_windowed_cold_with_a_window_longer_than_the_history_is_deferred(frame):
 
 def test_series_needing_their_history_share_one_read(cold, frame, tmp_path, monkeypatch):
     """Two series of a batch both refit (one by age, one after a confirmed LS): one extra read."""
-    import omegascan.tasks.batch as batch
+    import changekind.tasks.batch as batch
 
     other = frame.assign(series_id="edge-004/node-18")
     pd.concat([frame, other]).to_parquet(tmp_path / "part-0.parquet", index=False)
@@ -187,7 +187,7 @@ def test_a_work_batch_is_one_opaque_value_that_pickles_whole(cold):
     import cloudpickle
     from prefect.utilities.collections import visit_collection
 
-    from omegascan.tasks.batch import WorkBatch
+    from changekind.tasks.batch import WorkBatch
 
     works = [_warm_work(cold), SeriesWork("edge-004/node-18")]
     batch = WorkBatch(works)

@@ -7,8 +7,8 @@ import pandas as pd
 import pytest
 from numpy.testing import assert_allclose
 
-from omegascan.tasks.decompose import MIN_POINTS, decompose, natural_periods, regularize
-from omegascan.tasks.errors import (
+from changekind.tasks.decompose import MIN_POINTS, decompose, natural_periods, regularize
+from changekind.tasks.errors import (
     AllMissingError,
     ConstantSeriesError,
     NonFiniteError,
@@ -126,7 +126,7 @@ def test_long_profiles_are_smoothed_and_found_patterns_are_not():
     phase = np.arange(n) % 288
     truth = 2.0 * np.cos(2 * np.pi * phase / 288)
     y = truth + rng.normal(size=n)
-    from omegascan.tasks.decompose import seasonal_profile
+    from changekind.tasks.decompose import seasonal_profile
 
     sharp, _ = seasonal_profile(y, 288, smooth=False)
     smooth, _ = seasonal_profile(y, 288)

@@ -12,15 +12,15 @@ from scipy.signal import lfilter
 from statsmodels.datasets import nile
 from statsmodels.tsa.arima.model import ARIMA
 
-from omegascan.tasks.decompose import decompose, regularize
-from omegascan.tasks.detect import (
+from changekind.tasks.decompose import decompose, regularize
+from changekind.tasks.detect import (
     MAX_OUTER,
     analyse_series,
     default_critical,
     detect_events,
     screen_new_points,
 )
-from omegascan.tasks.types import EVENT_TYPES
+from changekind.tasks.types import EVENT_TYPES
 
 
 def _ar1(rng: np.random.Generator, n: int, phi: float = 0.6, level: float = 50.0) -> np.ndarray:
@@ -266,7 +266,7 @@ def test_effect_statistics_equal_their_definition_at_every_tested_time(start, ga
     the effect estimates in the residuals), for the FFT path (a whole series)
     and the direct path (a short tested tail, as in a warm screen).
     """
-    from omegascan.tasks.detect import _tau, residual_patterns
+    from changekind.tasks.detect import _tau, residual_patterns
 
     rng = np.random.default_rng(11)
     n, sigma = 300, 1.3

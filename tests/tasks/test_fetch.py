@@ -1,4 +1,4 @@
-"""Tests of omegascan.tasks.fetch against real files and databases.
+"""Tests of changekind.tasks.fetch against real files and databases.
 
 Every read is checked row for row against pandas filtering the same in-memory
 frame the sources were written from (pandas is the oracle: boolean masks on
@@ -21,9 +21,9 @@ import sqlalchemy as sa
 from numpy.testing import assert_array_equal
 from prefect.states import Failed
 
-from omegascan.tasks import fetch
-from omegascan.tasks.errors import ConfigError, SourceError
-from omegascan.tasks.fetch import (
+from changekind.tasks import fetch
+from changekind.tasks.errors import ConfigError, SourceError
+from changekind.tasks.fetch import (
     ColumnMap,
     SeriesWindow,
     SourceSpec,

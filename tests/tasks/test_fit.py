@@ -10,10 +10,10 @@ from numpy.testing import assert_allclose
 from scipy.signal import lfilter
 from statsmodels.tsa.statespace.sarimax import SARIMAX
 
-from omegascan.tasks.decompose import decompose, regularize
-from omegascan.tasks.errors import ModelError
-from omegascan.tasks.fit import choose_d, fit_model, innovations, pi_weights, psi_weights
-from omegascan.tasks.types import FittedModel
+from changekind.tasks.decompose import decompose, regularize
+from changekind.tasks.errors import ModelError
+from changekind.tasks.fit import choose_d, fit_model, innovations, pi_weights, psi_weights
+from changekind.tasks.types import FittedModel
 
 
 def _air_passengers() -> pd.DataFrame:
@@ -138,7 +138,7 @@ def test_pi_weights_and_the_filter_equal_scipy_lfilter(params, order):
     """Reference: scipy.signal.lfilter of the model's polynomials (statsmodels' sign convention)."""
     from scipy.signal import lfilter
 
-    from omegascan.tasks.fit import linear_filter, polynomials
+    from changekind.tasks.fit import linear_filter, polynomials
 
     model = FittedModel(
         "x", order, (0, 0, 0, 0), "n", (*params, ("sigma2", 1.0)), 1.0, 100, "mle", True

@@ -291,7 +291,7 @@ def test_engine_recall_near_the_oracle_bound(small_study) -> None:
     estimate with the true regressor at the true time (cov_type="oim") has
     |t| above the engine's critical value; the engine must search for time and
     type, the oracle is told both, so the bound is optimistic."""
-    from omegascan.tasks.detect import default_critical
+    from changekind.tasks.detect import default_critical
 
     injected = [o for o in small_study if o.key.event_type is not None]
     bound = oracle_power(injected, default_critical(injected[0].nobs))

@@ -28,9 +28,9 @@ from alembic.script import ScriptDirectory
 from prefect.cache_policies import NO_CACHE
 from prefect.states import Failed
 
-from omegascan.tasks import persist
-from omegascan.tasks.errors import ConfigError, ModelError, SourceError
-from omegascan.tasks.persist import (
+from changekind.tasks import persist
+from changekind.tasks.errors import ConfigError, ModelError, SourceError
+from changekind.tasks.persist import (
     EVENT_COLUMNS,
     EVENT_EXTRA_COLUMNS,
     VERSION_TABLE,
@@ -52,7 +52,7 @@ from omegascan.tasks.persist import (
     update_watermarks,
     write_events,
 )
-from omegascan.tasks.types import Event, FittedModel
+from changekind.tasks.types import Event, FittedModel
 
 T0 = datetime(2024, 3, 1, 12, 0, tzinfo=UTC)
 VIEW_NAMES = {"open_level_shifts", "daily_event_counts", "events_needing_triage"}
@@ -144,7 +144,7 @@ def event_row(engine: sa.Engine, series_id: str, event_time: str) -> dict[str, A
 
 def load_migration(name: str) -> ModuleType:
     path = migrations_dir() / "versions" / name
-    spec = importlib.util.spec_from_file_location(f"omegascan_migration_{path.stem}", path)
+    spec = importlib.util.spec_from_file_location(f"changekind_migration_{path.stem}", path)
     assert spec is not None and spec.loader is not None
     module = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(module)
@@ -745,7 +745,7 @@ def test_sqlite_in_a_missing_folder(tmp_path: Path) -> None:
     [
         ("not a url", r"database URL 'not a url' cannot be read"),
         ("", r"database URL '' is empty"),
-        ("mysql://u:pw@host/db", r"uses 'mysql'; omegascan supports sqlite and postgresql"),
+        ("mysql://u:pw@host/db", r"uses 'mysql'; changekind supports sqlite and postgresql"),
         ("postgresql+nosuchdriver://h/db", r"needs a driver that is not installed"),
     ],
 )

@@ -3,7 +3,7 @@
 References
 ----------
 - Effect shapes are the definitions of Chen & Liu (1993), section 2 (and the
-  table in omegascan.tasks.detect): AO a pulse, LS a step, TC omega delta^k,
+  table in changekind.tasks.detect): AO a pulse, LS a step, TC omega delta^k,
   IO omega psi_k.  Each curve is checked against a series into which the
   effect was injected by an independent computation (an explicit ARMA
   recursion for the IO); the injected truth is the reference.
@@ -30,10 +30,10 @@ from numpy.testing import assert_allclose
 from PIL import Image
 from statsmodels.tsa.arima_process import arma2ma
 
-from omegascan.tasks import persist
-from omegascan.tasks.detect import SETTLE, analyse_series
-from omegascan.tasks.errors import SeriesError
-from omegascan.tasks.report import (
+from changekind.tasks import persist
+from changekind.tasks.detect import SETTLE, analyse_series
+from changekind.tasks.errors import SeriesError
+from changekind.tasks.report import (
     ADJUSTED_STYLE,
     OBSERVED_STYLE,
     TYPE_STYLES,
@@ -50,7 +50,7 @@ from omegascan.tasks.report import (
     window_points,
     write_report,
 )
-from omegascan.tasks.types import EVENT_TYPES, REPORTED_TYPES, Event, FittedModel
+from changekind.tasks.types import EVENT_TYPES, REPORTED_TYPES, Event, FittedModel
 from tests.flows.fleet import make_fleet
 
 N, T_EVENT, PHI, THETA, OMEGA, DELTA = 240, 120, 0.6, 0.3, 7.5, 0.7
@@ -176,7 +176,7 @@ def clean_and_injected(kind: str, seed: int = 3) -> tuple[np.ndarray, np.ndarray
     """ARMA(1,1) + mean 20, and the same with an effect of OMEGA injected at T_EVENT.
 
     Built by the explicit recursion y_t = phi y_(t-1) + a_t + theta a_(t-1), so
-    the IO (a shock added to a_T) does not go through any code of omegascan.
+    the IO (a shock added to a_T) does not go through any code of changekind.
     """
     rng = np.random.default_rng(seed)
     a = rng.normal(size=N)

@@ -30,12 +30,12 @@ from scipy.signal import lfilter
 from scipy.stats import median_abs_deviation
 from typer.testing import CliRunner
 
-from omegascan.flows import cli_window  # importing it registers `drill` on the app
-from omegascan.flows.cli import app
-from omegascan.tasks.errors import ConfigError, SeriesError, SourceError, TooShortError
-from omegascan.tasks.fetch import open_source
-from omegascan.tasks.types import EVENT_NAMES, EVENT_TYPES, FittedModel
-from omegascan.tasks.window import (
+from changekind.flows import cli_window  # importing it registers `drill` on the app
+from changekind.flows.cli import app
+from changekind.tasks.errors import ConfigError, SeriesError, SourceError, TooShortError
+from changekind.tasks.fetch import open_source
+from changekind.tasks.types import EVENT_NAMES, EVENT_TYPES, FittedModel
+from changekind.tasks.window import (
     MIN_WINDOWS,
     complete_windows,
     detect_windowed,
@@ -420,7 +420,7 @@ def test_drill_reads_a_database_table_with_its_own_column_names(sqlite_url, raw)
 
 
 def test_drill_pushes_the_window_bounds_down_to_the_read(sources, monkeypatch):
-    import omegascan.tasks.fetch as fetch
+    import changekind.tasks.fetch as fetch
 
     seen = {}
     real = fetch.read_series
@@ -529,20 +529,20 @@ def test_drill_command_bad_input_exits_2_with_one_line(sources, args, message):
     result = runner.invoke(app, ["drill", "--source", source, *args])
     assert result.exit_code == 2
     lines = result.stderr.strip().splitlines()
-    assert len(lines) == 1 and lines[0].startswith("omegascan: error: "), result.stderr
+    assert len(lines) == 1 and lines[0].startswith("changekind: error: "), result.stderr
     assert re.search(message, lines[0])
     assert "Traceback" not in result.stderr + result.stdout
 
 
 def test_drill_command_without_a_source_says_how_to_give_one(monkeypatch):
-    monkeypatch.delenv("OMEGASCAN_SOURCE", raising=False)
+    monkeypatch.delenv("CHANGEKIND_SOURCE", raising=False)
     result = runner.invoke(app, ["drill", SID, "2026-03-03T08:00:00", "--window", "1min"])
     assert result.exit_code == 2
-    assert "pass --source PATH (or set OMEGASCAN_SOURCE)" in result.stderr
+    assert "pass --source PATH (or set CHANGEKIND_SOURCE)" in result.stderr
 
 
 def test_detect_helpers_for_the_command_line(raw):
-    from omegascan.flows.inputs import SeriesInput
+    from changekind.flows.inputs import SeriesInput
 
     day = raw[(raw["timestamp"] >= START + pd.Timedelta(days=1))
               & (raw["timestamp"] < START + pd.Timedelta(days=1, hours=16))]
