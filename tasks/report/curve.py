@@ -62,13 +62,12 @@ def effect_reach(event: Event, model: FittedModel | None = None, *, horizon: int
         path is still that large at ``horizon`` (a step, or a fade slower than
         the horizon).  0 for an AO.
     """
-    path = np.abs(unit_path(event, int(horizon) + 1, model))
+    path = np.abs(unit_path(event, int(horizon) + 2, model))  # one step past the horizon
     peak = float(path.max()) if path.size else 0.0
     if not math.isfinite(peak) or peak == 0.0:
         return 0
-    above = np.flatnonzero(path >= REACH_FLOOR * peak)
-    last = int(above[-1])
-    return None if last >= horizon else last
+    last = int(np.flatnonzero(path >= REACH_FLOOR * peak)[-1])
+    return None if last > horizon else last
 
 
 def effect_curve(
