@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import textwrap
 from collections.abc import Sequence
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -39,7 +40,6 @@ from changekind.tasks.report.style import (
     OBSERVED_STYLE,
     PAPER,
     RULE_COLOUR,
-    TYPE_STYLES,
     style_of,
 )
 from changekind.tasks.report.views import Verdict
@@ -67,8 +67,20 @@ _SHAPE_WORDS = {
     "IO": "shock through the model, omega x psi_k",
     "VC": "step in the window spread from the event on",
 }
-_OBSERVED_WORDS = {True: "window median", False: "observed"}
-"""What the top line shows; a windowed VC is drawn on the window spreads instead."""
+
+
+@dataclass(frozen=True, slots=True)
+class _Placed:
+    """The observations on the picture's grid: ticks ``x``, values ``y``, the fitted
+    effect at each, grid steps ``k`` from the event at tick ``at``, the step."""
+
+    kind: TimeKind
+    x: np.ndarray
+    y: np.ndarray
+    effect: np.ndarray
+    k: np.ndarray
+    at: Any
+    step: float
 
 
 def event_figure(
@@ -119,7 +131,34 @@ def event_figure(
     3. The fitted effect on the same time axis.
     4. The facts in words.  5. The type weights.
     """
-    # Step 1: the axis.
+    placed = _place(event, timestamps, values, model)  # Step 1
+
+    fig = Figure(figsize=FIGURE_SIZE, dpi=dpi, layout="constrained", facecolor=PAPER)
+    grid = fig.add_gridspec(2, 2, width_ratios=(2.3, 1.0), height_ratios=(2.2, 1.0))
+    ax_obs = fig.add_subplot(grid[0, 0], label=PANELS[0])
+    ax_eff = fig.add_subplot(grid[1, 0], sharex=ax_obs, label=PANELS[1])
+    ax_txt = fig.add_subplot(grid[0, 1], label=PANELS[2])
+    ax_w = fig.add_subplot(grid[1, 1], label=PANELS[3])
+    fig.suptitle(
+        f"{event.series_id}: {type_name(event.event_type)} at {event.event_time}",
+        x=0.01,
+        ha="left",
+        fontsize=11,
+        color=INK,
+    )
+
+    _draw_series(ax_obs, event, placed, neighbours, unit)  # Step 2
+    _draw_effect(ax_eff, event, placed, unit)  # Step 3
+    _format_time_axis(ax_eff, placed.kind, event)
+    ax_obs.tick_params(labelbottom=False)
+    _draw_facts(ax_txt, event, model, verdict)  # Step 4
+    _draw_weights(ax_w, event)  # Step 5
+    return fig
+
+
+def _place(event: Event, timestamps: Any, values: Any, model: FittedModel | None) -> _Placed:
+    """The observations sorted by time on the grid, and the effect; refuses data that
+    does not reach the event."""
     sid = event.series_id
     y = pd.to_numeric(pd.Series(values).reset_index(drop=True), errors="coerce")
     y = y.to_numpy(dtype=float)
@@ -141,54 +180,32 @@ def event_figure(
             "events came from",
         )
     effect = effect_curve(event, ticks, model=model, step_seconds=step)
+    return _Placed(kind, ticks, y, effect, k, at, step)
 
-    fig = Figure(figsize=FIGURE_SIZE, dpi=dpi, layout="constrained", facecolor=PAPER)
-    grid = fig.add_gridspec(2, 2, width_ratios=(2.3, 1.0), height_ratios=(2.2, 1.0))
-    ax_obs = fig.add_subplot(grid[0, 0], label=PANELS[0])
-    ax_eff = fig.add_subplot(grid[1, 0], sharex=ax_obs, label=PANELS[1])
-    ax_txt = fig.add_subplot(grid[0, 1], label=PANELS[2])
-    ax_w = fig.add_subplot(grid[1, 1], label=PANELS[3])
-    fig.suptitle(
-        f"{sid}: {type_name(event.event_type)} at {event.event_time}",
-        x=0.01,
-        ha="left",
-        fontsize=11,
-        color=INK,
-    )
 
-    _draw_series(ax_obs, event, ticks, y, effect, k, at, kind, step, neighbours, unit)  # Step 2
-    _draw_effect(ax_eff, event, ticks, effect, at, unit)  # Step 3
-    _format_time_axis(ax_eff, kind, event)
-    ax_obs.tick_params(labelbottom=False)
-    _draw_facts(ax_txt, event, model, verdict)  # Step 4
-    _draw_weights(ax_w, event)  # Step 5
-    return fig
+def _observed_words(event: Event) -> str:
+    """What the top line shows: the raw series, or the window series a windowed event is in."""
+    if event.window_start is None:
+        return "observed"
+    return "window spread" if event.event_type == "VC" else "window median"
 
 
 def _draw_series(
     ax: Axes,
     event: Event,
-    x: np.ndarray,
-    y: np.ndarray,
-    effect: np.ndarray,
-    k: np.ndarray,
-    at: Any,
-    kind: TimeKind,
-    step: float,
+    placed: _Placed,
     neighbours: Sequence[Event],
     unit: str | None,
 ) -> None:
     style = style_of(event.event_type)
-    windowed = event.window_start is not None
-    observed = "window spread" if windowed and event.event_type == "VC" else None
-    observed = observed or _OBSERVED_WORDS[windowed]
+    x, y = placed.x, placed.y
     line_style = dict(OBSERVED_STYLE)
     if x.size > MARKERS_UP_TO:
         line_style["marker"] = None
-    ax.plot(x, y, label=observed, **line_style)
-    ax.plot(x, y - effect, label="with this event's effect removed", **ADJUSTED_STYLE)
-    ax.axvline(at, color=style.colour, linestyle=":", linewidth=1.8, zorder=1)
-    hit = np.flatnonzero(k == 0)
+    ax.plot(x, y, label=_observed_words(event), **line_style)
+    ax.plot(x, y - placed.effect, label="with this event's effect removed", **ADJUSTED_STYLE)
+    ax.axvline(placed.at, color=style.colour, linestyle=":", linewidth=1.8, zorder=1)
+    hit = np.flatnonzero(placed.k == 0)
     if hit.size and not np.isnan(y[hit[0]]):
         ax.plot(
             [x[hit[0]]],
@@ -201,7 +218,8 @@ def _draw_series(
             zorder=4,
             label=f"this {event.event_type}",
         )
-    for kind_name, where in _neighbours_in_view(event, neighbours, x, kind, step).items():
+    in_view = _neighbours_in_view(event, neighbours, x, placed.kind, placed.step)
+    for kind_name, where in in_view.items():
         own = style_of(kind_name)
         for tick in where:
             ax.axvline(tick, color=own.colour, linestyle=(0, (5, 3)), linewidth=1.3, zorder=1)
@@ -256,23 +274,21 @@ def _step_on_axis(step: float, kind: TimeKind) -> Any:
     return np.timedelta64(int(step * 1e9), "ns") if kind == "datetime" else step
 
 
-def _draw_effect(
-    ax: Axes, event: Event, x: np.ndarray, effect: np.ndarray, at: Any, unit: str | None
-) -> None:
+def _draw_effect(ax: Axes, event: Event, placed: _Placed, unit: str | None) -> None:
     style = style_of(event.event_type)
     ax.axhline(0.0, color=RULE_COLOUR, linewidth=0.8)
     ax.plot(
-        x,
-        effect,
+        placed.x,
+        placed.effect,
         color=style.colour,
         linestyle="-.",
         linewidth=1.6,
-        marker=style.marker if x.size <= MARKERS_UP_TO else None,
+        marker=style.marker if placed.x.size <= MARKERS_UP_TO else None,
         markersize=3.5,
         markeredgecolor=INK,
         markeredgewidth=0.4,
     )
-    ax.axvline(at, color=style.colour, linestyle=":", linewidth=1.8)
+    ax.axvline(placed.at, color=style.colour, linestyle=":", linewidth=1.8)
     ax.set_title(
         f"fitted {event.event_type}: {_SHAPE_WORDS.get(event.event_type, '')}",
         loc="left",
@@ -295,9 +311,7 @@ def _format_time_axis(ax: Axes, kind: TimeKind, event: Event) -> None:
         ax.set_xlabel("index", color=INK)
 
 
-def _draw_facts(
-    ax: Axes, event: Event, model: FittedModel | None, verdict: Verdict | None
-) -> None:
+def _draw_facts(ax: Axes, event: Event, model: FittedModel | None, verdict: Verdict | None) -> None:
     """The event in words on a card framed in the type's colour, filling its own panel."""
     style = style_of(event.event_type)
     ax.set_xticks([])
@@ -358,7 +372,7 @@ def _draw_weights(ax: Axes, event: Event) -> None:
     kinds = list(weights) if weights else list(EVENT_TYPES)
     rows = np.arange(len(kinds))[::-1]
     for row, kind_name in zip(rows, kinds, strict=True):
-        own = TYPE_STYLES.get(kind_name, style_of(kind_name))
+        own = style_of(kind_name)
         share = weights.get(kind_name, 0.0)
         # The hatch in white on the dark fill, then the outline (thick for the event's type).
         ax.barh(row, share, color=own.colour, hatch=own.hatch, edgecolor=PAPER, linewidth=0.0)

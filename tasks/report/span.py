@@ -75,10 +75,6 @@ class Span:
     before: int
     after: int
 
-    @property
-    def points(self) -> int:
-        return self.before + self.after + 1
-
 
 def _steps_between(event: Event, other: Event, step: float) -> int:
     """Grid steps from ``event`` to ``other`` of the same series (negative when earlier)."""
@@ -110,6 +106,13 @@ def shown_span(
     Returns
     -------
     Span
+
+    Notes
+    -----
+    1. The event's own reach, twice, on each side (between :data:`MIN_SIDE_POINTS`
+       and :data:`MAX_OWN_SIDE_POINTS`).
+    2. Each side stretched to :data:`MIN_SIDE_POINTS` beyond the series' other
+       events within :data:`NEIGHBOUR_POINTS` steps or a day.
     """
     if not (math.isfinite(step_seconds) and step_seconds > 0):
         raise ConfigError(f"step_seconds must be positive, got {step_seconds!r}")
