@@ -14,17 +14,7 @@ from typer.testing import CliRunner
 import changekind.flows.cli_report  # noqa: F401  (registers ``report`` on the app)
 from changekind.flows.cli import app
 from changekind.flows.cli_report import parse_units
-from changekind.tasks import persist
-from tests.tasks.report.pair import (
-    SERIES,
-    STAMPS,
-    T_DOWN,
-    T_GLITCH,
-    T_UP,
-    pair_events,
-    pair_model,
-    pair_series,
-)
+from tests.tasks.report.pair import STAMPS, T_DOWN, T_GLITCH, T_UP, store_pair
 from tests.tasks.test_report import check_page
 
 runner = CliRunner()
@@ -32,17 +22,7 @@ runner = CliRunner()
 
 @pytest.fixture
 def stored(tmp_path, sqlite_url):
-    persist.migrate(sqlite_url)
-    persist.write_batch(
-        sqlite_url,
-        "run-1",
-        events=pair_events(),
-        models=[pair_model()],
-        watermarks={SERIES: STAMPS[-1].isoformat()},
-    )
-    persist.set_triage(sqlite_url, SERIES, STAMPS[T_GLITCH].isoformat(), "dismissed", "agent")
-    source = tmp_path / "series.csv"
-    pair_series().to_csv(source, index=False)
+    source = store_pair(sqlite_url, tmp_path)
     return ["--db", sqlite_url, "--source", str(source)]
 
 

@@ -8,10 +8,13 @@ later.  The injected events are the truth the report tests check against.
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import numpy as np
 import pandas as pd
 from scipy.signal import lfilter
 
+from changekind.tasks import persist
 from changekind.tasks.types import Event, FittedModel
 
 SERIES = "broker-3/queue-depth"
@@ -74,3 +77,20 @@ def pair_events() -> list[Event]:
         pair_event(T_UP, "LS", +SHIFT, 9.3),
         pair_event(T_GLITCH, "AO", GLITCH, 14.0),
     ]
+
+
+def store_pair(db: str, folder: Path, *, reason: str = "metrics agent restart") -> Path:
+    """Write the events and model to ``db`` through the persistence layer, dismiss the
+    glitch with ``reason``, and the series as ``folder/series.csv``; returns that path."""
+    persist.migrate(db)
+    persist.write_batch(
+        db,
+        "run-1",
+        events=pair_events(),
+        models=[pair_model()],
+        watermarks={SERIES: STAMPS[-1].isoformat()},
+    )
+    persist.set_triage(db, SERIES, STAMPS[T_GLITCH].isoformat(), "dismissed", reason)
+    path = folder / "series.csv"
+    pair_series().to_csv(path, index=False)
+    return path

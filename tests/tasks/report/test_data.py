@@ -36,7 +36,7 @@ from tests.tasks.report.pair import (
     T_UP,
     pair_events,
     pair_model,
-    pair_series,
+    store_pair,
 )
 from tests.tasks.test_report import check_page
 
@@ -44,20 +44,9 @@ from tests.tasks.test_report import check_page
 @pytest.fixture
 def stored(tmp_path, sqlite_url):
     """The pair's events and model in a database, the glitch dismissed; the source as CSV."""
-    persist.migrate(sqlite_url)
-    data = pair_series()
-    persist.write_batch(
-        sqlite_url,
-        "run-1",
-        events=pair_events(),
-        models=[pair_model()],
-        watermarks={SERIES: STAMPS[-1].isoformat()},
-    )
+    source = store_pair(sqlite_url, tmp_path)
     glitch = STAMPS[T_GLITCH].isoformat()
-    persist.set_triage(sqlite_url, SERIES, glitch, "dismissed", "metrics agent restart")
-    path = tmp_path / "series.csv"
-    data.to_csv(path, index=False)
-    return {"db": sqlite_url, "spec": open_source(str(path)), "glitch": glitch}
+    return {"db": sqlite_url, "spec": open_source(str(source)), "glitch": glitch}
 
 
 def test_verdicts_come_from_the_triage_columns(stored):
