@@ -1,10 +1,11 @@
 """``changekind report``: an HTML page with one picture per stored event.
 
 Reads the events from the database (all, or those of one run, since a time,
-of some series), the series' stored models, and the observations around each
-event from the source; :func:`changekind.tasks.report.write_report` draws the
-pictures and writes ``index.html`` beside them.  No Prefect flow: a report is
-a read-only look at what the scans wrote.
+of some series) with their verdicts, the series' stored models and other
+events, and the observations around each event from the source;
+:func:`changekind.tasks.report.write_stored_report` draws the pictures and
+writes ``index.html`` beside them.  No Prefect flow: a report is a read-only
+look at what the scans wrote.
 
 Registers itself on the shared :data:`changekind.flows.cli.app` when imported.
 """
@@ -14,16 +15,15 @@ from __future__ import annotations
 import contextlib
 from collections.abc import Sequence
 from pathlib import Path
-from typing import TYPE_CHECKING, Annotated
+from typing import TYPE_CHECKING, Annotated, Any
 
 import typer
 
 from changekind.flows.cli import EXIT_SERIES_FAILED, _fail_usage, _stderr, _stdout, app
 
 if TYPE_CHECKING:
-
     from changekind.tasks.fetch import SourceSpec
-    from changekind.tasks.reporting import WrittenReport
+    from changekind.tasks.report.data import WrittenReport
 
 
 def report(
@@ -103,12 +103,40 @@ def report(
             show_default=False,
         ),
     ] = None,
+    sort: Annotated[
+        str,
+        typer.Option(
+            "--sort",
+            metavar="ORDER",
+            help="Order of the list: effect_pct (largest |effect %| first), effect "
+            "(largest |effect| in the series' units), t (largest |t|) or time (newest "
+            "first).  Ties by |t|, then series and time; dismissed events always last.",
+        ),
+    ] = "effect_pct",
+    hide_dismissed: Annotated[
+        bool,
+        typer.Option(
+            "--hide-dismissed",
+            help="Leave out events a person dismissed (changekind triage ... dismissed).",
+        ),
+    ] = False,
+    unit: Annotated[
+        list[str] | None,
+        typer.Option(
+            "--unit",
+            metavar="PATTERN=UNIT",
+            help="Unit of the series matching PATTERN (a series id or a shell pattern such "
+            "as '*/write-latency-ms'), shown on the pictures' axes; repeat for several.",
+            show_default=False,
+        ),
+    ] = None,
 ) -> None:
     """Write an HTML report of stored events, one picture per event."""
     from changekind.flows.settings import Settings
     from changekind.tasks.errors import ChangekindError
     from changekind.tasks.fetch import open_source
 
+    units = parse_units(unit or [])
     settings = Settings()
     db_url = db or settings.db_url
     location = source or settings.source
@@ -129,7 +157,17 @@ def report(
             query=query,
             timestamp_unit=timestamp_unit,
         )
-        written = write_stored_report(db_url, spec, out, run=run, since=since, series=series)
+        written = write_stored_report(
+            db_url,
+            spec,
+            out,
+            run=run,
+            since=since,
+            series=series,
+            sort=sort,
+            hide_dismissed=hide_dismissed,
+            units=units,
+        )
     except ChangekindError as exc:
         raise _fail_usage(str(exc)) from None
     missing = written.n_events - written.drawn
@@ -141,6 +179,20 @@ def report(
         raise typer.Exit(EXIT_SERIES_FAILED)
 
 
+def parse_units(given: Sequence[str]) -> dict[str, str]:
+    """``--unit PATTERN=UNIT`` options as a mapping (the last ``=`` splits)."""
+    units: dict[str, str] = {}
+    for text in given:
+        pattern, sep, name = text.rpartition("=")
+        if not sep or not pattern.strip() or not name.strip():
+            raise _fail_usage(
+                f"--unit {text!r} is not PATTERN=UNIT; give for example "
+                "--unit '*/write-latency-ms=ms'"
+            )
+        units[pattern.strip()] = name.strip()
+    return units
+
+
 def write_stored_report(
     db_url: str,
     spec: SourceSpec,
@@ -149,15 +201,18 @@ def write_stored_report(
     run: str | None = None,
     since: str | None = None,
     series: Sequence[str] | None = None,
+    **options: Any,
 ) -> WrittenReport:
-    """:func:`changekind.tasks.reporting.write_stored_report` with a progress bar, announced.
+    """:func:`changekind.tasks.report.write_stored_report` with a progress bar, announced.
+
+    ``options`` are its keywords (``sort``, ``hide_dismissed``, ``units``).
 
     Used by ``changekind report`` and by the demo.  Damaged stored models are
     said on stderr (their events are drawn without them).
     """
     from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
 
-    from changekind.tasks import reporting
+    from changekind.tasks.report import data
 
     err = _stderr()
     # A progress bar on a terminal only; the same call either way.
@@ -173,13 +228,21 @@ def write_stored_report(
             def on_progress(done: int, total: int) -> None:
                 bar.update(task_id, completed=done, total=total)
 
-        written = reporting.write_stored_report(
-            db_url, spec, out, run=run, since=since, series=series, on_progress=on_progress
+        written = data.write_stored_report(
+            db_url,
+            spec,
+            out,
+            run=run,
+            since=since,
+            series=series,
+            on_progress=on_progress,
+            **options,
         )
     for sid, problem in written.problems:
         err.print(f"changekind: series {sid!r}: {problem}", markup=False)
+    hidden = f" ({written.n_hidden} dismissed left out)" if written.n_hidden else ""
     _stdout().print(
-        f"Report of {written.n_events} event(s) in {written.n_series} series, "
+        f"Report of {written.n_events} event(s) in {written.n_series} series{hidden}, "
         f"{written.drawn} picture(s): {written.index}",
         markup=False,
     )

@@ -293,7 +293,7 @@ def split_span(start: str, end: str, chunk: str, warmup: str):
 def _write_report(logger, db: str, spec, report_dir: str, run_id: str) -> None:
     """The run's events as an HTML report with a picture each (never fails the run)."""
     from changekind.tasks.errors import ChangekindError
-    from changekind.tasks.reporting import write_stored_report_task
+    from changekind.tasks.report.data import write_stored_report_task
 
     try:
         written = write_stored_report_task(db, spec, Path(report_dir), run=run_id)

@@ -31,7 +31,7 @@ from PIL import Image
 from statsmodels.tsa.arima_process import arma2ma
 
 from changekind.tasks import persist
-from changekind.tasks.detect import SETTLE, analyse_series
+from changekind.tasks.detect import analyse_series
 from changekind.tasks.errors import SeriesError
 from changekind.tasks.report import (
     ADJUSTED_STYLE,
@@ -44,10 +44,10 @@ from changekind.tasks.report import (
     event_from_record,
     render_report,
     series_group,
+    shown_span,
     slice_window,
     summarize_events,
     window_bounds,
-    window_points,
     write_report,
 )
 from changekind.tasks.types import EVENT_TYPES, REPORTED_TYPES, Event, FittedModel
@@ -253,17 +253,18 @@ def test_numeric_grid_without_a_model_uses_the_data_spacing():
     assert np.count_nonzero(io) == 1 and io[T_EVENT] == OMEGA
 
 
-def test_window_is_three_settle_spans_either_side():
-    # Reference: SETTLE points, or two TC half-lives ln(0.5)/ln(delta) when longer.
-    assert window_points(make_event("AO")) == max(24, 3 * SETTLE)
+def test_span_shows_a_tc_fading_out_twice_over():
+    # Reference: delta^k falls below 5 % of its start after ln(0.05)/ln(delta) steps
+    # (the closed form); twice that is shown on each side.
     slow = make_event("TC", decay=0.9)
-    half = math.log(0.5) / math.log(0.9)  # 6.58 steps
-    assert window_points(slow) == math.ceil(3 * 2 * half) == 40
+    reach = math.floor(math.log(0.05) / math.log(0.9))  # 28 steps (0.9^28 = 0.052)
+    span = shown_span(slow, step_seconds=3600.0)
+    assert span.before == span.after == 2 * reach == 56
     start, end = window_bounds(slow, step_seconds=3600.0, time_kind="datetime")
-    assert start == STAMPS[T_EVENT] - pd.Timedelta(hours=40)
-    assert end == STAMPS[T_EVENT] + pd.Timedelta(hours=41)  # end is exclusive
+    assert start == STAMPS[T_EVENT] - pd.Timedelta(hours=56)
+    assert end == STAMPS[T_EVENT] + pd.Timedelta(hours=57)  # end is exclusive
     ts, vals = slice_window(slow, STAMPS, np.arange(N, dtype=float), model=model_arma())
-    assert ts[0] == STAMPS[T_EVENT - 40] and ts[-1] == STAMPS[T_EVENT + 40] and len(vals) == 81
+    assert ts[0] == STAMPS[T_EVENT - 56] and ts[-1] == STAMPS[T_EVENT + 56] and len(vals) == 113
 
 
 # --------------------------------------------------------------------------- figures
@@ -284,13 +285,12 @@ def test_figure_of_each_type_is_a_readable_png(kind):
     rgb = np.asarray(Image.open(io.BytesIO(buf.getvalue())).convert("RGB")).reshape(-1, 3)
     fill = tuple(int(TYPE_STYLES[kind].colour[i : i + 2], 16) for i in (1, 3, 5))
     assert (rgb == fill).all(axis=1).sum() > 200
+    removed_label = "with this event's effect removed"
     styles = {line.get_label(): line.get_linestyle() for line in fig.axes[0].get_lines()}
-    assert styles["observed"] != styles["with the effect removed"]
+    assert styles["observed"] != styles[removed_label]
     # The drawn effect-removed line is the clean series (the injected truth).
-    removed = next(
-        line for line in fig.axes[0].get_lines() if line.get_label() == "with the effect removed"
-    )
-    lo = T_EVENT - window_points(event)
+    removed = next(line for line in fig.axes[0].get_lines() if line.get_label() == removed_label)
+    lo = T_EVENT - shown_span(event, step_seconds=3600.0, model=model_arma(ma=THETA)).before
     assert_allclose(removed.get_ydata(), clean[lo : lo + len(vals)], atol=1e-9)
 
 
@@ -343,7 +343,7 @@ def test_summary_counts_by_type_and_group_and_orders_by_strength():
         make_event("LS", series_id="rack-b/psu", t_stat=30.0),
         make_event("IO", series_id="lonely", t_stat=4.0),
     ]
-    summary = summarize_events(events)
+    summary = summarize_events(events, sort="t")
     # Reference: the same counts by collections.Counter over the input.
     by_type = Counter(e.event_type for e in events)
     assert {k: total for k, _, _, total in summary.by_type} == {
@@ -352,7 +352,7 @@ def test_summary_counts_by_type_and_group_and_orders_by_strength():
     assert dict((k, p) for k, _, p, _ in summary.by_type)["LS"] == 1
     groups = Counter(series_group(e.series_id) for e in events)
     assert {g: total for g, _, total in summary.by_group} == dict(groups)
-    assert [abs(events[i].t_stat) for i in summary.strongest] == sorted(
+    assert [abs(events[i].t_stat) for i in summary.order] == sorted(
         (abs(e.t_stat) for e in events), reverse=True
     )
     assert series_group("lonely") == "lonely" and series_group("a/b/c") == "a"
@@ -384,7 +384,7 @@ def test_write_report_links_only_pictures_it_wrote(tmp_path):
         views.append(EventView(event, STAMPS, observed, model_arma(ma=THETA)))
     gone = make_event("LS", series_id="rack-z/gone", t_stat=4.0)
     views.append(EventView(gone, note="the source holds no observations of 'rack-z/gone'"))
-    index = write_report(out, views, facts=[("database", "sqlite:///x.db")])
+    index = write_report(out, views, facts=[("database", "sqlite:///x.db")], sort="t")
     page = check_page(index)
     pictures = sorted(p.name for p in out.glob("event-*.png"))
     assert len(pictures) == 4 and "event-0009-stale.png" not in pictures

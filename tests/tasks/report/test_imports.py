@@ -1,0 +1,49 @@
+"""Importing the report does not import Prefect; its Prefect task is built on first use.
+
+Like ``test_detect_does_not_import_prefect`` in tests/flows/test_cli.py: a
+fresh interpreter imports every module of the package and says whether
+``prefect`` got loaded.  Read-only commands (``changekind report``) must not
+pay Prefect's start-up for a look at the database.
+"""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+
+CODE = """
+import importlib, pkgutil, sys
+import changekind.tasks.report as report
+names = [m.name for m in pkgutil.walk_packages(report.__path__, report.__name__ + ".")]
+for name in names:
+    importlib.import_module(name)
+assert "changekind.tasks.report.data" in names and "changekind.tasks.report.html" in names
+report.render_report([], {}, report.summarize_events([]))  # templates load and render
+print(len(names), "prefect" in sys.modules)
+"""
+
+
+def test_importing_every_report_module_does_not_load_prefect():
+    env = {**os.environ, "PYTHONWARNINGS": "ignore"}
+    done = subprocess.run(
+        [sys.executable, "-c", CODE],
+        capture_output=True,
+        text=True,
+        timeout=300,
+        check=False,
+        env=env,
+    )
+    assert done.returncode == 0, done.stderr
+    n_modules, loaded = done.stdout.split()
+    assert int(n_modules) >= 10 and loaded == "False"
+
+
+def test_the_flows_prefect_task_is_built_on_first_use():
+    from prefect import Task
+
+    from changekind.tasks.report import data
+
+    task = data.write_stored_report_task
+    assert isinstance(task, Task) and task.fn is data.write_stored_report
+    assert task.name == "write-report"
