@@ -103,6 +103,7 @@ __all__ = [
     "incident_identity",
     "label_shares",
     "reconcile_incidents",
+    "span_to_load",
 ]
 
 TIME_TOLERANCE: dict[str, float] = {"AO": 0.5, "IO": 1.5, "TC": 2.5, "LS": 3.5, "VC": 3.5}
@@ -1005,6 +1006,33 @@ def _check_span(span: Any, what: str) -> Span:
     if out[1] < out[0]:
         raise ConfigError(f"{what} ends ({out[1]}) before it starts ({out[0]}); swap them")
     return out
+
+
+def span_to_load(span: tuple[Any, Any], stored: Sequence[Incident]) -> Span:
+    """``span`` widened to every stored incident that overlaps it (and so on).
+
+    A recomputation must see all members of the stored incidents it may
+    change, or it would take a member it did not load for a member that left.
+    The span a writer groups is therefore: the span of the events a run
+    changed (new, changed and retracted ones), widened by this function, then
+    by :attr:`IncidentSet.needed` until :attr:`IncidentSet.complete`,
+    widening by this function again after each step::
+
+        span = span_to_load(changed, stored)
+        while not (result := group_incidents(events_in(span), ..., loaded=span)).complete:
+            span = span_to_load(result.needed, stored)
+        changes = reconcile_incidents(stored_overlapping(span), result, span=span)
+    """
+    lo, hi = _check_span(span, "span")
+    for _ in range(len(stored) + 1):
+        wider_lo, wider_hi = lo, hi
+        for inc in stored:
+            if inc.start <= hi and inc.end >= lo:
+                wider_lo, wider_hi = min(wider_lo, inc.start), max(wider_hi, inc.end)
+        if (wider_lo, wider_hi) == (lo, hi):
+            break
+        lo, hi = wider_lo, wider_hi
+    return (lo, hi)
 
 
 # --------------------------------------------------------------------------- shared attributes
