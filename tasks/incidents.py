@@ -16,24 +16,38 @@ Grouping rule
 Each event is given a time interval ``[t - h, t + h]`` with the half-width
 ``h = TIME_TOLERANCE[event_type] * step`` (``step``: the sampling interval of
 its own series), so the window scales with the sampling interval and with how
-sure the event's time is for its type.  Two events are *linked* when they move
-the same quantity (the level for AO, LS, TC and IO; the spread for VC) in the
-same direction (sign of ``effect``) and their intervals overlap,
-``|t_a - t_b| <= h_a + h_b``.  An incident is a connected set of linked events
-(single linkage): a chain A-B-C is one incident even when A and C are far apart.
-That is what a rollout looks like (controller after controller, each within a
-few samples of the previous one), and components of a graph depend only on the
-set of events, never on the order in which they arrive or are processed.
-Within an incident each series keeps one member, its event of largest
-``|t_stat|`` (then the earliest, then the smaller ``event_time`` text); an
-incident needs ``min_series`` distinct series (default 2: a lone event is not an
-incident).  Retracted events and events without a date-time (numeric grids) are
-never members.
+sure the event's time is for its type (measured; see :data:`TIME_TOLERANCE`).
+Two events of different series are *neighbours* when they move the same
+quantity (the level for AO, LS, TC and IO; the spread for VC) in the same
+direction (sign of ``effect``) and their intervals overlap,
+``|t_a - t_b| <= h_a + h_b``.
 
-Chains are the price of the rule: in a fleet where chance events of one
-direction are dense (about one or more per link window across the fleet),
-unrelated events chain into long incidents.  Raise ``min_series``, narrow the
-tolerances, or judge an incident by its ``span`` and shared attributes.
+Plain chaining of neighbours (single linkage) is deterministic but, in a fleet
+where events are dense, chains everything: 1,000 random events a day on 10,000
+series chained a firmware rollout, a rack spike eight hours later and hundreds
+of unrelated events into one incident (tests/benchmarks/bench_incidents.py),
+and the span a writer must reread grows without end.  So chains run only
+through *core* events, in the manner of density-based clustering (DBSCAN): an
+event is core when it has at least ``min_series - 1`` neighbours and that many
+would come by chance with probability at most ``CORE_ALPHA`` (Poisson upper
+tail) at its local background rate: the median count of events of the same
+quantity and direction over the ``BACKGROUND_BINS`` bins of the window of
+``BACKGROUND_SAMPLES`` samples either side (a median, so that the burst itself,
+filling less than half of the window, does not count as background).  Core events that
+are neighbours are in one group (a chain A-B-C of core events is one incident
+even when A and C are far apart: a rollout moves controller after controller);
+an event that is not core joins the group of its nearest core neighbour.  In a
+quiet fleet two events that coincide are core (nothing else explains them); in
+a busy one, coincidences at the background's rate are not, and a burst lasting
+longer than half the background window becomes its own background, which
+bounds the chains.  Every step depends only on the set of events, never on the order in
+which they arrive or are processed.
+
+Within a group each series keeps one member, its event of largest
+``|t_stat|`` (then the earliest, then the smaller ``event_time`` text); an
+incident needs ``min_series`` distinct series (default 2: a lone event is not
+an incident).  Retracted events and events without a date-time (numeric grids)
+are never members.
 
 Identity rule
 -------------
@@ -59,10 +73,23 @@ tail ``P(X >= k)``, ``X ~ Hypergeometric(N, K, n)`` (``scipy.stats.hypergeom``),
 with ``k`` members of ``n`` carrying the value and ``K`` series of ``N`` in the
 fleet.  The p-values of all values tested for one incident are adjusted by
 Holm's step-down method (family-wise error at most ``alpha``, default 1 %);
-a value is *shared* when its adjusted p-value is at most ``alpha``.
+a value is *shared* when its adjusted p-value is at most ``alpha`` and at least
+half of the members carry it (``MIN_MEMBER_SHARE``: the value describes the
+incident, not a small cluster inside it).
+
+Updating
+--------
+:func:`update_incidents` is the whole protocol after a run, with the reading
+of stored events and incidents left to the caller: recompute the incidents of
+the span the run's changed events can act on (widened until nothing outside
+can change them) and :func:`reconcile_incidents` them with the stored ones.
 
 References
 ----------
+Ester, M., Kriegel, H.-P., Sander, J. and Xu, X. (1996). A density-based
+algorithm for discovering clusters in large spatial databases with noise.
+Proceedings of KDD-96, 226-231.
+
 Holm, S. (1979). A simple sequentially rejective multiple test procedure.
 Scandinavian Journal of Statistics 6, 65-70.
 """
@@ -72,7 +99,7 @@ from __future__ import annotations
 import hashlib
 import math
 from collections import Counter
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any, Literal
 
@@ -83,20 +110,26 @@ from changekind.tasks.errors import ConfigError
 from changekind.tasks.types import REPORTED_TYPES, round_sig
 
 __all__ = [
+    "BACKGROUND_BINS",
+    "BACKGROUND_SAMPLES",
     "CHANGE_KINDS",
+    "CORE_ALPHA",
     "EVENT_STATUSES",
     "MIN_CARRIERS",
+    "MIN_MEMBER_SHARE",
     "MIN_SERIES",
     "QUANTITY",
     "REQUIRED_COLUMNS",
     "SHARED_ALPHA",
     "TIME_TOLERANCE",
     "FleetLabels",
+    "GroupingRule",
     "Incident",
     "IncidentChange",
     "IncidentChanges",
     "IncidentMember",
     "IncidentSet",
+    "IncidentUpdate",
     "LabelShare",
     "fleet_labels",
     "group_incidents",
@@ -104,6 +137,7 @@ __all__ = [
     "label_shares",
     "reconcile_incidents",
     "span_to_load",
+    "update_incidents",
 ]
 
 TIME_TOLERANCE: dict[str, float] = {"AO": 0.5, "IO": 1.5, "TC": 2.5, "LS": 3.5, "VC": 3.5}
@@ -144,6 +178,27 @@ carrier of a rare value (a host name, say) gives a small hypergeometric tail,
 
 SHARED_ALPHA = 0.01
 """Family-wise level (Holm) below which a label value counts as shared."""
+
+MIN_MEMBER_SHARE = 0.5
+"""A shared value is carried by at least this share of the members (with a known
+value).  The test alone also flags small sub-clusters: in a rack-wide incident,
+both series of every host of the rack are members, and each host name is
+over-represented (2 of 2 series) without describing the incident."""
+
+CORE_ALPHA = 0.001
+"""An event is a core event of a group when as many neighbours as it has (events of
+other series whose intervals overlap its own) would come by chance with at most
+this probability (Poisson upper tail) under its local background."""
+
+BACKGROUND_SAMPLES = 144.0
+"""Half-width of the background window around an event, in samples of its own
+series: 12 hours at 5-minute sampling, about 20 times the widest link (7 samples
+for two LS), so that a burst is a small part of its own background."""
+
+BACKGROUND_BINS = 24
+"""The background window is cut into this many bins (one hour each at 5-minute
+sampling); the median count over the bins is the background rate, which a burst
+filling less than half of the window does not move."""
 
 EVENT_STATUSES: tuple[str, ...] = ("provisional", "confirmed", "retracted")
 
@@ -202,7 +257,7 @@ class LabelShare:
     ``fleet_known`` (N) series of the fleet do.  ``p_value`` is the
     hypergeometric upper tail ``P(X >= k)``; ``p_adjusted`` is Holm's
     adjustment over every value tested for the incident; ``shared`` is
-    ``p_adjusted <= alpha``.
+    ``p_adjusted <= alpha`` and ``k >= MIN_MEMBER_SHARE * n``.
     """
 
     label: str
@@ -391,32 +446,94 @@ class Incident:
 
 
 @dataclass(frozen=True, slots=True)
+class GroupingRule:
+    """The knobs of the grouping, one value for the grouping and the span helpers.
+
+    ``tolerance`` gives the half-width of an event's time interval in samples
+    of its series, by type (a mapping is accepted and completed from
+    :data:`TIME_TOLERANCE`); ``min_series`` the fewest series of an incident;
+    ``core_alpha`` the level of the core test (1 turns it off: every event
+    with ``min_series - 1`` neighbours is core, plain chaining);
+    ``background`` the half-width of the background window in samples;
+    ``alpha`` the family-wise level of the shared-attribute test.
+    """
+
+    tolerance: tuple[tuple[str, float], ...] = tuple(sorted(TIME_TOLERANCE.items()))
+    min_series: int = MIN_SERIES
+    core_alpha: float = CORE_ALPHA
+    background: float = BACKGROUND_SAMPLES
+    alpha: float = SHARED_ALPHA
+
+    def __post_init__(self) -> None:
+        given = dict(self.tolerance)
+        for key, value in given.items():
+            if key not in TIME_TOLERANCE:
+                raise ConfigError(
+                    f"tolerance names the unknown type {key!r}; use {', '.join(TIME_TOLERANCE)}"
+                )
+            if isinstance(value, bool) or not (
+                isinstance(value, int | float) and math.isfinite(value) and value >= 0
+            ):
+                raise ConfigError(f"tolerance of {key} is {value!r}; give a number of samples >= 0")
+        full = {**TIME_TOLERANCE, **{k: float(v) for k, v in given.items()}}
+        object.__setattr__(self, "tolerance", tuple(sorted(full.items())))
+        m = self.min_series
+        if isinstance(m, bool) or not isinstance(m, int) or m < 2:
+            raise ConfigError(
+                f"min_series is {m!r}; give a whole number >= 2 (a lone event is not an incident)"
+            )
+        _check_alpha(self.core_alpha, "core_alpha", one=True)
+        _check_alpha(self.alpha, "alpha")
+        b = self.background
+        widest = 2 * max(full.values())
+        if (
+            isinstance(b, bool)
+            or not (isinstance(b, int | float) and math.isfinite(b))
+            or b <= widest
+        ):
+            raise ConfigError(
+                f"background is {b!r}; give a number of samples above the widest link "
+                f"({widest:g} samples), e.g. {BACKGROUND_SAMPLES:g}"
+            )
+
+    def margin(self, step_ns: float) -> int:
+        """How far (ns) events can act on a group: the background plus two links.
+
+        An event acts on another's core test within the background window and
+        on its links within two half-widths; a group can take in an event one
+        link beyond its own events.  Used to say which span must be read.
+        """
+        return math.ceil((self.background + 4 * max(v for _, v in self.tolerance)) * step_ns)
+
+
+@dataclass(frozen=True, slots=True)
 class IncidentSet:
     """What :func:`group_incidents` found in a set of events.
 
     ``n_events`` rows came in; ``n_retracted`` were retracted and
-    ``n_untimed`` had no date-time (both never members); ``n_members`` events
-    are members of an incident.  ``loaded`` is the time span the caller said the
-    events are complete for, and ``needed`` the span that must be loaded so
-    that no incident is cut at its edges (equal to ``loaded`` when nothing is
-    missing; see :attr:`complete`).
+    ``n_untimed`` had no date-time (both never members); ``n_core`` events
+    passed the core test; ``n_members`` events are members of an incident.
+    ``span`` is the span whose incidents were asked for (None: all);
+    ``loaded`` the span the events are complete for, and ``needed`` the span
+    that must be loaded for the incidents of ``span`` to be exact (equal to
+    ``loaded`` when nothing is missing; see :attr:`complete`).
     """
 
     incidents: tuple[Incident, ...]
     n_events: int
     n_retracted: int
     n_untimed: int
+    n_core: int
     n_members: int
     fleet_size: int
-    min_series: int
-    alpha: float
-    tolerance: tuple[tuple[str, float], ...]
+    rule: GroupingRule
+    span: Span | None = None
     loaded: Span | None = None
     needed: Span | None = None
 
     @property
     def complete(self) -> bool:
-        """True unless events outside ``loaded`` could still join an incident."""
+        """True unless events outside ``loaded`` could still change an incident of ``span``."""
         return self.needed == self.loaded
 
     def by_id(self) -> dict[str, Incident]:
@@ -766,9 +883,8 @@ def group_incidents(
     labels: FleetLabels | pd.DataFrame | Mapping[str, Mapping[str, Any]],
     *,
     step_seconds: float | pd.Timedelta | Mapping[str, float | pd.Timedelta],
-    tolerance: Mapping[str, float] | None = None,
-    min_series: int = MIN_SERIES,
-    alpha: float = SHARED_ALPHA,
+    rule: GroupingRule | None = None,
+    span: tuple[Any, Any] | None = None,
     loaded: tuple[Any, Any] | None = None,
 ) -> IncidentSet:
     """Group the events of a fleet into incidents.
@@ -786,17 +902,16 @@ def group_incidents(
     step_seconds : float, pandas.Timedelta or mapping, keyword-only
         The sampling interval, one for all series or per series id (every
         series with events needs one; for windowed series, the window).
-    tolerance : mapping, optional
-        Half-width of an event's time interval in samples, by type; defaults
-        to :data:`TIME_TOLERANCE` (types left out keep their default).
-    min_series : int, default=2
-        Fewest distinct series an incident needs.
-    alpha : float, default=0.01
-        Family-wise level of the shared-attribute test (see :func:`label_shares`).
+    rule : GroupingRule, optional
+        Tolerances, ``min_series``, the core test and the shared-attribute
+        level; default ``GroupingRule()``.
+    span : (start, end), optional
+        Only incidents that overlap this span are returned (default: all).
     loaded : (start, end), optional
-        The time span the events are complete for.  When given, ``needed`` on
-        the result says how far to widen it so that no event outside could
-        join an incident (naive times are UTC).
+        The span the events are complete for (needs ``span``).  ``needed`` on
+        the result then says how far to widen it so that every incident
+        overlapping ``span`` is exactly what all events would give.  Naive
+        times are UTC.
 
     Returns
     -------
@@ -808,40 +923,38 @@ def group_incidents(
     ConfigError
         Missing columns, unknown types or statuses, non-finite effects or t
         statistics, duplicate events, labels without a row for a series that
-        has events, missing or non-positive sampling intervals, bad knobs.
+        has events, missing or non-positive sampling intervals, bad spans.
 
     Notes
     -----
     1. Validate; drop retracted and untimed rows.
-    2. Each event's interval: ``t +- h``, ``h = tolerance[type] * step``.
+    2. Each event's interval ``t +- h``, ``h = tolerance[type] * step``, and its
+       background window ``t +- B``, ``B = background * step``.
     3. For each quantity (level, spread) and direction (sign of ``effect``),
-       sort the intervals by their start and sweep: an interval that starts
-       after every earlier one has ended begins a new group (the connected
-       components of the overlap graph, single linkage).
+       in a canonical order (time, series id, event time):
+       a. neighbours: events of other series whose intervals overlap;
+       b. core events: at least ``min_series - 1`` neighbours, and the Poisson
+          upper tail of that count at most ``core_alpha``, its mean
+          ``2 (h_i + h_mean) r``: ``r`` the median count over the
+          ``BACKGROUND_BINS`` bins of ``t +- B`` per unit time, ``h_mean`` the
+          mean half-width of the window's events;
+       c. groups: connected components of core events linked to core events;
+       d. an event that is not core joins the group of its nearest core
+          neighbour (then the earlier, then the first in canonical order).
     4. In each group, one member per series (largest ``|t_stat|``, then the
        earliest, then the smaller ``event_time``); keep groups of at least
        ``min_series`` series.
     5. Summaries and the id from the anchor (:func:`incident_identity`).
     6. Shared attributes (:func:`label_shares`).
-    7. With ``loaded``: the span needed so that no unseen event could link.
+    7. With ``loaded``: the span needed (see :meth:`GroupingRule.margin`).
     """
-    tol = dict(TIME_TOLERANCE)
-    if tolerance is not None:
-        for key, value in tolerance.items():
-            if key not in TIME_TOLERANCE:
-                raise ConfigError(
-                    f"tolerance names the unknown type {key!r}; use {', '.join(TIME_TOLERANCE)}"
-                )
-            if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
-                raise ConfigError(f"tolerance of {key} is {value!r}; give a number of samples >= 0")
-            tol[key] = float(value)
-    if isinstance(min_series, bool) or not isinstance(min_series, int) or min_series < 2:
-        raise ConfigError(
-            f"min_series is {min_series!r}; give a whole number >= 2 (a lone event is not "
-            "an incident)"
-        )
-    _check_alpha(alpha)
-    span = None if loaded is None else _check_span(loaded, "loaded")
+    rule = GroupingRule() if rule is None else rule
+    if not isinstance(rule, GroupingRule):
+        raise ConfigError(f"rule must be a GroupingRule, got {type(rule).__name__}")
+    want = None if span is None else _check_span(span, "span")
+    have = None if loaded is None else _check_span(loaded, "loaded")
+    if have is not None and want is None:
+        raise ConfigError("loaded needs span: say which span's incidents must be complete")
     # Step 1
     fleet = fleet_labels(labels)
     rows = _check_events(events)
@@ -853,59 +966,117 @@ def group_incidents(
             f"labels has no row for series {', '.join(map(repr, absent[:3]))}{more}, which "
             "have events; give every series of the fleet a row (without labels if it has none)"
         )
-    # Step 2
+    # Step 2 (integer ns for times and half-widths: exact, order-free comparisons)
     step_ns, max_step_ns = _step_ns(step_seconds, rows.series)
-    half = np.array([tol[t] for t in rows.types.tolist()], dtype=float) * step_ns
-    half_ns = np.ceil(half).astype(np.int64)  # integer ns: exact, order-free comparisons
+    tol = dict(rule.tolerance)
+    half = np.ceil(np.array([tol[t] for t in rows.types.tolist()]) * step_ns).astype(np.int64)
+    background = np.ceil(rule.background * step_ns).astype(np.int64)
     # Step 3
     quantity = np.array([QUANTITY[t] for t in rows.types.tolist()], dtype=object)
     sign = np.sign(rows.effect).astype(int)
+    codes = pd.factorize(rows.series)[0]
     incidents: list[Incident] = []
+    extents: list[tuple[int, int]] = []  # every group's first and last event time (ns)
+    n_core = 0
     for qty in ("level", "spread"):
         for direction, s in (("up", 1), ("down", -1)):
             idx = np.flatnonzero((quantity == qty) & (sign == s))
-            if idx.size < min_series:
+            if idx.size < 2:
                 continue
-            for group in _components(rows.ts[idx], half_ns[idx]):
+            idx = idx[np.lexsort((rows.times[idx], rows.series[idx], rows.ts[idx]))]
+            groups, core = _groups(rows.ts[idx], half[idx], background[idx], codes[idx], rule)
+            n_core += int(core.sum())
+            for group in groups:
+                extents.append((int(rows.ts[idx[group[0]]]), int(rows.ts[idx[group[-1]]])))
                 # Step 4
                 chosen = _one_per_series(rows, idx[group])
-                if len(chosen) < min_series:
+                if len(chosen) < rule.min_series:
                     continue
                 # Step 5
                 members = tuple(sorted((_member(rows, i) for i in chosen), key=_anchor_order))
-                incidents.append(_summarize(members, qty, direction, fleet, positions, alpha))
+                incidents.append(_summarize(members, qty, direction, fleet, positions, rule.alpha))
+    if want is not None:
+        incidents = [i for i in incidents if i.start <= want[1] and i.end >= want[0]]
     incidents.sort(key=lambda i: (i.start, i.incident_id))
     # Step 7
     needed = None
-    if span is not None:
-        reach = max(tol.values()) * max_step_ns
-        needed = _needed_span(span, rows.ts, half_ns, reach)
+    if have is not None and want is not None:
+        margin = rule.margin(max_step_ns)
+        lo, hi = want[0].value - margin, want[1].value + margin
+        for first, last in extents:
+            if first <= want[1].value and last >= want[0].value:
+                lo, hi = min(lo, first - margin), max(hi, last + margin)
+        needed = (
+            min(have[0], pd.Timestamp(lo, unit="ns", tz="UTC")),
+            max(have[1], pd.Timestamp(hi, unit="ns", tz="UTC")),
+        )
     return IncidentSet(
         incidents=tuple(incidents),
         n_events=rows.n_events,
         n_retracted=rows.n_retracted,
         n_untimed=rows.n_untimed,
+        n_core=n_core,
         n_members=sum(i.n_series for i in incidents),
         fleet_size=fleet.size,
-        min_series=min_series,
-        alpha=float(alpha),
-        tolerance=tuple(sorted(tol.items())),
-        loaded=span,
+        rule=rule,
+        span=want,
+        loaded=have,
         needed=needed,
     )
 
 
-def _components(ts: np.ndarray, half: np.ndarray) -> list[np.ndarray]:
-    """Connected components of overlapping intervals ``[ts - half, ts + half]``.
+def _groups(
+    ts: np.ndarray, half: np.ndarray, background: np.ndarray, codes: np.ndarray, rule: GroupingRule
+) -> tuple[list[np.ndarray], np.ndarray]:
+    """Step 3 for one quantity and direction: groups (positions, in order) and the core mask.
 
-    Positions into ``ts``; the result depends only on the set of intervals.
+    The arrays are in canonical order (time, series id, event time).
     """
-    lo = ts - half
-    hi = ts + half
-    order = np.lexsort((hi, lo))
-    reach = np.maximum.accumulate(hi[order])
-    starts = np.flatnonzero(lo[order][1:] > reach[:-1]) + 1
-    return [part for part in np.split(order, starts) if part.size > 1]
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+    from scipy.special import gammainc
+
+    n = ts.size
+    # Step 3a: pairs (i, j) of other series whose intervals overlap.
+    reach = int(half.max())
+    lo = np.searchsorted(ts, ts - half - reach, "left")
+    hi = np.searchsorted(ts, ts + half + reach, "right")
+    counts = hi - lo
+    i = np.repeat(np.arange(n), counts)
+    j = np.arange(int(counts.sum())) - np.repeat(np.cumsum(counts) - counts, counts)
+    j += np.repeat(lo, counts)
+    keep = (codes[i] != codes[j]) & (np.abs(ts[i] - ts[j]) <= half[i] + half[j])
+    i, j = i[keep], j[keep]
+    # Step 3b: core events.  The background rate is the median count over BACKGROUND_BINS
+    # bins of the window (a burst filling less than half the window does not move it).
+    half_s = half / 1e9
+    n_near = np.bincount(i, minlength=n)
+    k = np.arange(BACKGROUND_BINS + 1)
+    edges = (ts - background)[:, None] + (2 * background)[:, None] * k // BACKGROUND_BINS
+    pos = np.searchsorted(ts, edges.ravel(), "left").reshape(n, BACKGROUND_BINS + 1)
+    rate = np.median(np.diff(pos, axis=1), axis=1) / (2 * background / 1e9 / BACKGROUND_BINS)
+    csum = np.concatenate(([0.0], np.cumsum(half_s)))
+    h_mean = (csum[pos[:, -1]] - csum[pos[:, 0]]) / np.maximum(pos[:, -1] - pos[:, 0], 1)
+    mean = rate * 2 * (half_s + h_mean)  # events overlapping i at that rate
+    tail = np.where(n_near > 0, gammainc(np.maximum(n_near, 1), mean), 1.0)  # P(N >= n_near)
+    core = (n_near >= rule.min_series - 1) & (tail <= rule.core_alpha)
+    # Step 3c: components of core events.
+    both = core[i] & core[j]
+    graph = coo_matrix((np.ones(int(both.sum())), (i[both], j[both])), shape=(n, n))
+    _, component = connected_components(graph, directed=False)
+    group = np.where(core, component, -1)
+    # Step 3d: other events join their nearest core neighbour's group.
+    edge = ~core[i] & core[j]
+    if edge.any():
+        bi, bj = i[edge], j[edge]
+        order = np.lexsort((bj, np.abs(ts[bi] - ts[bj]), bi))
+        bi, bj = bi[order], bj[order]
+        first = np.concatenate(([True], bi[1:] != bi[:-1]))
+        group[bi[first]] = component[bj[first]]
+    placed = np.flatnonzero(group >= 0)
+    placed = placed[np.argsort(group[placed], kind="stable")]
+    cuts = np.flatnonzero(np.diff(group[placed])) + 1
+    return [np.sort(g) for g in np.split(placed, cuts) if g.size], core
 
 
 def _one_per_series(rows: _Rows, idx: np.ndarray) -> list[int]:
@@ -972,27 +1143,10 @@ def _summarize(
     )
 
 
-def _needed_span(span: Span, ts: np.ndarray, half: np.ndarray, reach: float) -> Span:
-    """``span`` widened so that no event outside it could link to one inside.
-
-    An unseen event before ``start`` (half-width at most ``reach``) could link
-    to a seen one at ``t`` when ``t - h < start + reach``; then everything from
-    ``t - h - reach`` on must be seen.  Likewise after ``end``.  Callers load
-    the wider span and group again until nothing changes.
-    """
-    start, end = span
-    lo_ns, hi_ns = start.value, end.value
-    reach_ns = math.ceil(reach)
-    lo = ts - half - reach_ns
-    hi = ts + half + reach_ns
-    new_lo = int(lo.min()) if ts.size and lo.min() < lo_ns else lo_ns
-    new_hi = int(hi.max()) if ts.size and hi.max() > hi_ns else hi_ns
-    return (pd.Timestamp(new_lo, unit="ns", tz="UTC"), pd.Timestamp(new_hi, unit="ns", tz="UTC"))
-
-
-def _check_alpha(alpha: float) -> None:
-    if not (isinstance(alpha, int | float) and 0 < alpha < 1):
-        raise ConfigError(f"alpha is {alpha!r}; give a probability between 0 and 1, e.g. 0.01")
+def _check_alpha(alpha: Any, what: str = "alpha", *, one: bool = False) -> None:
+    top = 1.0 if one else math.nextafter(1.0, 0.0)
+    if isinstance(alpha, bool) or not (isinstance(alpha, int | float) and 0 < alpha <= top):
+        raise ConfigError(f"{what} is {alpha!r}; give a probability between 0 and 1, e.g. 0.01")
 
 
 def _check_span(span: Any, what: str) -> Span:
@@ -1012,16 +1166,7 @@ def span_to_load(span: tuple[Any, Any], stored: Sequence[Incident]) -> Span:
     """``span`` widened to every stored incident that overlaps it (and so on).
 
     A recomputation must see all members of the stored incidents it may
-    change, or it would take a member it did not load for a member that left.
-    The span a writer groups is therefore: the span of the events a run
-    changed (new, changed and retracted ones), widened by this function, then
-    by :attr:`IncidentSet.needed` until :attr:`IncidentSet.complete`,
-    widening by this function again after each step::
-
-        span = span_to_load(changed, stored)
-        while not (result := group_incidents(events_in(span), ..., loaded=span)).complete:
-            span = span_to_load(result.needed, stored)
-        changes = reconcile_incidents(stored_overlapping(span), result, span=span)
+    change, or it would take a member it did not read for a member that left.
     """
     lo, hi = _check_span(span, "span")
     for _ in range(len(stored) + 1):
@@ -1055,7 +1200,7 @@ def label_shares(
         The fleet and its labels (see :func:`fleet_labels`).
     alpha : float, default=0.01
         Family-wise level: a value is shared when its Holm-adjusted p-value is
-        at most ``alpha``.
+        at most ``alpha`` (and :data:`MIN_MEMBER_SHARE` of the members carry it).
 
     Returns
     -------
@@ -1074,6 +1219,7 @@ def label_shares(
     3. Holm's step-down adjustment over the ``m`` values tested: the ``i``-th
        smallest p (from 1) is multiplied by ``m - i + 1``, then made
        non-decreasing, capped at 1.
+    4. Shared: adjusted p at most ``alpha`` and ``k >= MIN_MEMBER_SHARE * n``.
 
     References
     ----------
@@ -1115,6 +1261,7 @@ def label_shares(
     stepped = np.minimum(1.0, np.maximum.accumulate(p[order] * (m - np.arange(m))))
     adjusted = np.empty(m)
     adjusted[order] = stepped
+    # Step 4
     shares = [
         LabelShare(
             label=name,
@@ -1125,7 +1272,7 @@ def label_shares(
             fleet_known=N,
             p_value=round_sig(float(p[i])),
             p_adjusted=round_sig(float(adjusted[i])),
-            shared=bool(adjusted[i] <= alpha),
+            shared=bool(adjusted[i] <= alpha and k >= MIN_MEMBER_SHARE * n),
         )
         for i, (name, value, k, n, K, N) in enumerate(tested)
     ]
@@ -1297,3 +1444,128 @@ def _same(a: Any, b: Any) -> bool:
     if isinstance(a, list | tuple) and isinstance(b, list | tuple):
         return len(a) == len(b) and all(_same(x, y) for x, y in zip(a, b, strict=True))
     return a == b
+
+
+# --------------------------------------------------------------------------- one update
+
+
+@dataclass(frozen=True, slots=True)
+class IncidentUpdate:
+    """What :func:`update_incidents` recomputed and what changed.
+
+    ``span`` is the span whose incidents were recomputed (every stored and
+    computed incident in it is compared); ``loaded`` the span of events read;
+    ``reads`` how many times events were read.
+    """
+
+    result: IncidentSet
+    changes: IncidentChanges
+    span: Span
+    loaded: Span
+    reads: int
+
+
+def update_incidents(
+    changed: tuple[Any, Any],
+    *,
+    read_events: Callable[[Span], pd.DataFrame],
+    read_incidents: Callable[[Span], Sequence[Incident]],
+    labels: FleetLabels | pd.DataFrame | Mapping[str, Mapping[str, Any]],
+    step_seconds: float | pd.Timedelta | Mapping[str, float | pd.Timedelta],
+    rule: GroupingRule | None = None,
+    max_rounds: int = 50,
+) -> IncidentUpdate:
+    """Recompute the incidents that a run's changed events can affect.
+
+    The protocol a writer follows after each run, with the reading left to
+    it: ``read_events(span)`` returns every stored event row (retracted ones
+    included) with ``event_ts`` in ``span``, ``read_incidents(span)`` every
+    stored incident that overlaps ``span``.  Nothing is written here; the
+    writer stores :attr:`IncidentChanges.to_write` and notifies
+    :attr:`IncidentChanges.to_notify`.
+
+    Parameters
+    ----------
+    changed : (start, end)
+        The times of the events the run added, changed or retracted.
+    read_events, read_incidents : callable, keyword-only
+        Readers of stored events and stored incidents (see above).
+    labels, step_seconds, rule
+        As for :func:`group_incidents`; ``step_seconds`` should cover the
+        whole fleet (its largest value sets how far events act).
+    max_rounds : int, default=50
+        Bound on the widening rounds.
+
+    Returns
+    -------
+    IncidentUpdate
+
+    Raises
+    ------
+    ConfigError
+        As :func:`group_incidents`; also when the span has not settled after
+        ``max_rounds`` rounds (a fleet so dense that incidents chain without
+        end: raise ``core_alpha``'s strictness or ``min_series``).
+
+    Notes
+    -----
+    1. ``span``: ``changed`` widened by the rule's margin (events act that
+       far), then to the stored incidents overlapping it (:func:`span_to_load`).
+    2. Read the events of ``span`` widened by the margin; group; while the
+       result is not complete, read the span it needs and group again.
+    3. Widen ``span`` to the computed incidents overlapping it and again to
+       the stored ones; if it grew, back to 2.
+    4. Reconcile the stored incidents of ``span`` with the computed ones.
+    """
+    rule = GroupingRule() if rule is None else rule
+    fleet = fleet_labels(labels)
+    lo, hi = _check_span(changed, "changed")
+    margin = pd.Timedelta(rule.margin(_max_step_ns(step_seconds)), unit="ns")
+    # Step 1
+    span = span_to_load((lo - margin, hi + margin), read_incidents((lo - margin, hi + margin)))
+    loaded = (span[0] - margin, span[1] + margin)
+    reads = 0
+    for _ in range(max_rounds):
+        # Step 2
+        reads += 1
+        result = group_incidents(
+            read_events(loaded),
+            fleet,
+            step_seconds=step_seconds,
+            rule=rule,
+            span=span,
+            loaded=loaded,
+        )
+        if not result.complete:
+            loaded = result.needed  # type: ignore[assignment]
+            continue
+        # Step 3
+        reach = (
+            min([span[0], *(i.start for i in result.incidents)]),
+            max([span[1], *(i.end for i in result.incidents)]),
+        )
+        wider = span_to_load(reach, read_incidents(reach))
+        if wider == span:
+            break
+        span = wider
+        loaded = (min(loaded[0], span[0] - margin), max(loaded[1], span[1] + margin))
+    else:
+        raise ConfigError(
+            f"the incidents around {lo} .. {hi} did not settle after {max_rounds} reads "
+            f"(last span {span[0]} .. {span[1]}); events chain without end: make the rule "
+            "stricter (smaller core_alpha, larger min_series)"
+        )
+    # Step 4
+    stored = [i for i in read_incidents(span) if i.start <= span[1] and i.end >= span[0]]
+    changes = reconcile_incidents(stored, result, span=span)
+    return IncidentUpdate(result=result, changes=changes, span=span, loaded=loaded, reads=reads)
+
+
+def _max_step_ns(step_seconds: float | pd.Timedelta | Mapping[str, float | pd.Timedelta]) -> float:
+    """The largest sampling interval given, in ns (validated)."""
+    if isinstance(step_seconds, Mapping):
+        if not step_seconds:
+            raise ConfigError("step_seconds is an empty mapping; give each series' interval")
+        series = np.array(list(step_seconds), dtype=object)
+        return _step_ns(step_seconds, series)[1]
+    return _step_ns(step_seconds, np.array([], dtype=object))[1]

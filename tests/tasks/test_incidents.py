@@ -32,7 +32,9 @@ from statsmodels.stats.multitest import multipletests
 from changekind.tasks.errors import ConfigError
 from changekind.tasks.incidents import (
     MIN_CARRIERS,
+    MIN_MEMBER_SHARE,
     TIME_TOLERANCE,
+    GroupingRule,
     Incident,
     IncidentSet,
     fleet_labels,
@@ -40,7 +42,7 @@ from changekind.tasks.incidents import (
     incident_identity,
     label_shares,
     reconcile_incidents,
-    span_to_load,
+    update_incidents,
 )
 
 STEP = 300.0  # five-minute sampling
@@ -252,31 +254,36 @@ class Store:
         self.labels = labels
         self.events: dict[tuple[str, str], dict] = {}
         self.incidents: dict[str, Incident] = {}
+        self.reads: list[tuple[pd.Timestamp, pd.Timestamp]] = []
+
+    def read_events(self, span):
+        self.reads.append(span)
+        frame = pd.DataFrame(list(self.events.values()), columns=list(_row("x", DAY, "AO", 1)))
+        ts = pd.to_datetime(frame["event_ts"], utc=True)
+        return frame[(ts >= span[0]) & (ts <= span[1])]
+
+    def read_incidents(self, span):
+        return [i for i in self.incidents.values() if i.start <= span[1] and i.end >= span[0]]
 
     def run(self, rows: list[dict]):
-        """Write a batch of event rows, regroup their span, apply the changes."""
+        """Write a batch of event rows, update the incidents, apply the changes."""
         for r in rows:
             self.events[(r["series_id"], r["event_time"])] = r
-        frame = pd.DataFrame(list(self.events.values()))
         times = pd.to_datetime(pd.Series([r["event_ts"] for r in rows]), utc=True)
-        stored = list(self.incidents.values())
-        span = span_to_load((times.min(), times.max()), stored)
-        for _ in range(100):  # widen until no unseen event could join
-            inside = frame[(frame["event_ts"] >= span[0]) & (frame["event_ts"] <= span[1])]
-            result = group_incidents(inside, self.labels, step_seconds=STEP, loaded=span)
-            if result.complete:
-                break
-            span = span_to_load(result.needed, stored)
-        else:
-            raise AssertionError("span did not settle")
-        changes = reconcile_incidents(list(self.incidents.values()), result, span=span)
-        for c in changes.to_write:
+        update = update_incidents(
+            (times.min(), times.max()),
+            read_events=self.read_events,
+            read_incidents=self.read_incidents,
+            labels=self.labels,
+            step_seconds=STEP,
+        )
+        for c in update.changes.to_write:
             if c.kind == "gone":
                 del self.incidents[c.incident_id]
             else:  # stored as JSON and read back, as a database would
                 record = json.loads(json.dumps(c.incident.to_record()))
                 self.incidents[c.incident_id] = Incident.from_record(record)
-        return changes
+        return update.changes
 
 
 def _batches(events: pd.DataFrame, edges: list[pd.Timestamp]) -> list[list[dict]]:
@@ -464,7 +471,12 @@ def test_min_series_and_untimed_events():
     events = pd.DataFrame([*rows, untimed])
     result = group_incidents(events, labels, step_seconds=STEP)
     assert result.n_untimed == 1 and result.incidents[0].series_ids == ("a", "b")
-    assert group_incidents(events, labels, step_seconds=STEP, min_series=3).incidents == ()
+    assert (
+        group_incidents(
+            events, labels, step_seconds=STEP, rule=GroupingRule(min_series=3)
+        ).incidents
+        == ()
+    )
 
 
 def test_naive_times_are_utc():
@@ -477,19 +489,26 @@ def test_naive_times_are_utc():
     )
 
 
-def test_needed_span_widens_to_events_that_could_link():
-    labels = {"a": {}, "b": {}}
+def test_needed_span_covers_what_can_act_on_the_span():
+    labels = {"a": {}, "b": {}, "c": {}}
     events = _pair(pd.Timedelta(0), "AO", "AO")
-    h = TIME_TOLERANCE["AO"] * STEP
-    reach = max(TIME_TOLERANCE.values()) * STEP
-    # The events sit right at the loaded start: an earlier, unseen event could join.
-    loaded = (DAY, DAY + pd.Timedelta(days=1))
-    result = group_incidents(events, labels, step_seconds=STEP, loaded=loaded)
+    margin = pd.Timedelta(GroupingRule().margin(STEP * 1e9), unit="ns")
+    # (144 + 4 * 3.5) samples of 5 minutes: 13 h 10 min.
+    assert margin == pd.Timedelta(hours=13, minutes=10)
+    span = (DAY, DAY)
+    result = group_incidents(events, labels, step_seconds=STEP, span=span, loaded=span)
     assert not result.complete
-    assert result.needed == (DAY - pd.Timedelta(seconds=h + reach), loaded[1])
-    # Loaded from far enough before, nothing is missing.
-    wide = (DAY - pd.Timedelta(hours=1), DAY + pd.Timedelta(hours=1))
-    assert group_incidents(events, labels, step_seconds=STEP, loaded=wide).complete
+    assert result.needed == (DAY - margin, DAY + margin)
+    again = group_incidents(events, labels, step_seconds=STEP, span=span, loaded=result.needed)
+    assert again.complete and again.incidents == result.incidents
+    # A third series joining 30 minutes later widens what must be read by as much.
+    later = pd.concat([events, pd.DataFrame([_row("c", DAY + pd.Timedelta(minutes=5), "AO", 1.0)])])
+    wide = group_incidents(later, labels, step_seconds=STEP, span=span, loaded=result.needed)
+    assert wide.incidents[0].n_series == 3
+    assert wide.needed == (DAY - margin, DAY + pd.Timedelta(minutes=5) + margin)
+    # Incidents outside the span asked for are left out.
+    off = (DAY + pd.Timedelta(hours=1), DAY + pd.Timedelta(hours=2))
+    assert group_incidents(events, labels, step_seconds=STEP, span=off).incidents == ()
 
 
 # --------------------------------------------------------------------------- shared attributes
@@ -524,23 +543,28 @@ def test_hypergeometric_tail_by_hand():
 
 def test_holm_adjustment_against_statsmodels():
     rng = np.random.default_rng(7)
+    # 1,000 series; the first 30 on new firmware; series in trios sharing a chassis.
     fleet = {
-        f"s{i:03d}": {
+        f"s{i:04d}": {
             "rack": f"r{i % 5}",
             "firmware": "new" if i < 30 else "old",
-            "zone": "z1" if i % 3 else "z2",
+            "chassis": f"c{i // 3}",
         }
-        for i in range(200)
+        for i in range(1000)
     }
-    members = [f"s{i:03d}" for i in sorted(rng.choice(60, size=25, replace=False))]
-    shares = label_shares(members, fleet, alpha=0.01)
+    # 20 series on new firmware (complete chassis c0..c5) and 5 others.
+    picked = [*range(20), *rng.choice(np.arange(30, 1000), size=5, replace=False)]
+    shares = label_shares([f"s{i:04d}" for i in picked], fleet, alpha=0.01)
     p = np.array([s.p_value for s in shares])
     # Reference: statsmodels.stats.multitest.multipletests(method="holm").
     reject, adjusted, _, _ = multipletests(p, alpha=0.01, method="holm")
     assert_allclose([s.p_adjusted for s in shares], adjusted, rtol=1e-8)
-    assert [s.shared for s in shares] == list(reject)
-    assert len(shares) >= 5
-    assert any(s.shared and (s.label, s.value) == ("firmware", "new") for s in shares)
+    majority = [s.members_with >= MIN_MEMBER_SHARE * s.members_known for s in shares]
+    assert [s.shared for s in shares] == [r and m for r, m in zip(reject, majority, strict=True)]
+    # Whole chassis are over-represented (3 of 3) but describe a few members only.
+    minority = {s.value for s, r, m in zip(shares, reject, majority, strict=True) if r and not m}
+    assert {"c0", "c1", "c2", "c3", "c4", "c5"} <= minority
+    assert [(s.label, s.value) for s in shares if s.shared] == [("firmware", "new")]
 
 
 def test_single_carriers_of_rare_values_are_not_tested():
@@ -633,17 +657,39 @@ def test_bad_events(change, match):
         ({"step_seconds": 0}, r"step_seconds is 0; give the sampling interval"),
         ({"step_seconds": {"a": 300}}, r"no sampling interval for series 'b'"),
         ({"step_seconds": {"a": 300, "b": "x"}}, r"step_seconds of series 'b' is 'x'"),
-        ({"step_seconds": STEP, "min_series": 1}, r"min_series is 1; give a whole number >= 2"),
-        ({"step_seconds": STEP, "alpha": 1.5}, r"alpha is 1.5; give a probability"),
-        ({"step_seconds": STEP, "tolerance": {"XX": 1}}, r"unknown type 'XX'"),
-        ({"step_seconds": STEP, "tolerance": {"LS": -1}}, r"tolerance of LS is -1"),
-        ({"step_seconds": STEP, "loaded": (DAY, DAY - pd.Timedelta(1))}, r"loaded ends"),
-        ({"step_seconds": STEP, "loaded": (DAY,)}, r"loaded must be a pair"),
+        ({"step_seconds": STEP, "rule": {"min_series": 3}}, r"rule must be a GroupingRule"),
+        (
+            {"step_seconds": STEP, "span": (DAY, DAY - pd.Timedelta(1))},
+            r"span ends .* before it starts",
+        ),
+        ({"step_seconds": STEP, "span": (DAY,)}, r"span must be a pair"),
+        ({"step_seconds": STEP, "loaded": (DAY, DAY)}, r"loaded needs span"),
     ],
 )
 def test_bad_knobs(kwargs, match):
     with pytest.raises(ConfigError, match=match):
         group_incidents(_good(), {"a": {}, "b": {}}, **kwargs)
+
+
+@pytest.mark.parametrize(
+    ("kwargs", "match"),
+    [
+        ({"min_series": 1}, r"min_series is 1; give a whole number >= 2"),
+        ({"alpha": 1.5}, r"alpha is 1.5; give a probability"),
+        ({"core_alpha": 0}, r"core_alpha is 0; give a probability"),
+        ({"tolerance": {"XX": 1}}, r"unknown type 'XX'"),
+        ({"tolerance": {"LS": -1}}, r"tolerance of LS is -1"),
+        ({"background": 5}, r"background is 5; give a number of samples above the widest link"),
+    ],
+)
+def test_bad_rules(kwargs, match):
+    with pytest.raises(ConfigError, match=match):
+        GroupingRule(**kwargs)
+
+
+def test_rule_completes_tolerances():
+    rule = GroupingRule(tolerance={"LS": 1.0})
+    assert dict(rule.tolerance) == {**TIME_TOLERANCE, "LS": 1.0}
 
 
 @pytest.mark.parametrize(
