@@ -2,6 +2,7 @@
 
 Run:  python -m tests.benchmarks.bench_incidents [--series 10000] [--events 1000] [--repeats 5]
       python -m tests.benchmarks.bench_incidents --time-errors [--replications 25] [--jobs 2]
+                                                 [--base-seed N]
 
 Grouping cost.  An invented fleet of ``--series`` series (storage nodes: 250
 racks, four firmware versions, five zones and one host name per series as
@@ -181,8 +182,8 @@ def _time_error(key):
     from tests.benchmarks.montecarlo import _run_engine
     from tests.benchmarks.simulate import make_series
 
-    model, event_type, size, replicate = key
-    series = make_series(model, event_type, size, replicate)
+    model, event_type, size, replicate, base_seed = key
+    series = make_series(model, event_type, size, replicate, base_seed=base_seed)
     near = [d for d in _run_engine(series, None) if abs(d.position - series.position) <= 12]
     if not near:
         return key, None, None
@@ -190,12 +191,14 @@ def _time_error(key):
     return key, d.event_type, abs(d.position - series.position)
 
 
-def time_errors(replications: int, jobs: int) -> None:
+def time_errors(replications: int, jobs: int, base_seed: int | None) -> None:
+    from tests.benchmarks.simulate import BASE_SEED, MODEL_NAMES, SIZES
     from tests.benchmarks.simulate import EVENT_TYPES as SIM_TYPES
-    from tests.benchmarks.simulate import MODEL_NAMES, SIZES
+
+    base_seed = BASE_SEED if base_seed is None else base_seed
 
     keys = [
-        (m, t, s, r)
+        (m, t, s, r, base_seed)
         for m in MODEL_NAMES
         for t in SIM_TYPES
         for s in SIZES
@@ -214,7 +217,8 @@ def time_errors(replications: int, jobs: int) -> None:
             by_type[detected].append(error)
     print(
         f"\n{len(keys):,} simulated series (models {', '.join(MODEL_NAMES)}; sizes "
-        f"{', '.join(f'{s:g}' for s in SIZES)} sigma; {replications} replications), "
+        f"{', '.join(f'{s:g}' for s in SIZES)} sigma; {replications} replications; "
+        f"base seed {base_seed}), "
         f"{jobs} process(es), {seconds:.0f} s; {missed} without a detection within 12 "
         "samples.\n"
     )
@@ -235,9 +239,10 @@ def main() -> None:
     parser.add_argument("--time-errors", action="store_true")
     parser.add_argument("--replications", type=int, default=25)
     parser.add_argument("--jobs", type=int, default=2)
+    parser.add_argument("--base-seed", type=int, default=None, help="simulation seed")
     args = parser.parse_args()
     if args.time_errors:
-        time_errors(args.replications, args.jobs)
+        time_errors(args.replications, args.jobs, args.base_seed)
     else:
         grouping_cost(args.series, args.events, args.repeats, args.seed)
     sys.stdout.flush()

@@ -715,8 +715,11 @@ def _good():
             lambda e: e.drop(columns=["event_ts", "status"]),
             r"lacks the column\(s\) event_ts, status",
         ),
-        (lambda e: e.assign(event_type=["LS", "XX"]), r"unknown event_type\(s\) \['XX'\]"),
-        (lambda e: e.assign(status=["confirmed", "maybe"]), r"unknown status\(es\) \['maybe'\]"),
+        (lambda e: e.assign(event_type=["LS", "XX"]), r"unknown event_type value\(s\) \['XX'\]"),
+        (
+            lambda e: e.assign(status=["confirmed", "maybe"]),
+            r"unknown status value\(s\) \['maybe'\]",
+        ),
         (lambda e: e.assign(effect=[1.0, np.nan]), r"missing or infinite effect at series 'b'"),
         (lambda e: e.assign(t_stat=[np.inf, 1.0]), r"missing or infinite t_stat at series 'a'"),
         (lambda e: e.assign(effect=["1", "x"]), r"column effect must hold numbers"),
