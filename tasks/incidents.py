@@ -558,8 +558,10 @@ class FleetLabels:
     """The fleet's series and the labels that describe them, validated once.
 
     ``series_ids`` are sorted; ``values[j][i]`` is the value of label
-    ``names[j]`` for series ``series_ids[i]`` (None when unknown).  Built by
-    :func:`fleet_labels`; pass it to :func:`group_incidents` again and again.
+    ``names[j]`` for series ``series_ids[i]`` (None when unknown); ``counts[j]``
+    the fleet's count of each value, ``known[j]`` how many series have one;
+    ``index`` maps a series id to its row (read-only by convention).  Built
+    by :func:`fleet_labels`; pass it to :func:`group_incidents` again and again.
     """
 
     series_ids: tuple[str, ...]
@@ -567,14 +569,11 @@ class FleetLabels:
     values: tuple[tuple[str | None, ...], ...]
     counts: tuple[tuple[tuple[str, int], ...], ...] = field(repr=False)
     known: tuple[int, ...] = field(repr=False)
+    index: Mapping[str, int] = field(repr=False)
 
     @property
     def size(self) -> int:
         return len(self.series_ids)
-
-    def positions(self) -> dict[str, int]:
-        """Series id -> row number."""
-        return {s: i for i, s in enumerate(self.series_ids)}
 
 
 # --------------------------------------------------------------------------- helpers
@@ -739,7 +738,8 @@ def fleet_labels(
         tuple(sorted(Counter(v for v in col if v is not None).items())) for col in values
     )
     known = tuple(sum(v is not None for v in col) for col in values)
-    return FleetLabels(series_ids, tuple(names), values, counts, known)
+    index = {s: i for i, s in enumerate(series_ids)}  # a dict: it travels between processes
+    return FleetLabels(series_ids, tuple(names), values, counts, known, index)
 
 
 @dataclass(frozen=True, slots=True, eq=False)
@@ -983,8 +983,7 @@ def group_incidents(
     # Step 1
     fleet = fleet_labels(labels)
     rows = _check_events(events)
-    positions = fleet.positions()
-    absent = sorted(set(rows.series.tolist()) - set(positions))
+    absent = sorted(set(rows.series.tolist()) - set(fleet.index))
     if absent:
         more = f" and {len(absent) - 3} more" if len(absent) > 3 else ""
         raise ConfigError(
@@ -1025,7 +1024,7 @@ def group_incidents(
                     continue
                 # Step 5
                 members = tuple(sorted((_member(rows, i) for i in chosen), key=_anchor_order))
-                incidents.append(_summarize(members, qty, direction, fleet, positions, rule.alpha))
+                incidents.append(_summarize(members, qty, direction, fleet, rule.alpha))
     if want is not None:
         incidents = [i for i in incidents if i.start <= want[1] and i.end >= want[0]]
     incidents.sort(key=lambda i: (i.start, i.incident_id))
@@ -1158,7 +1157,6 @@ def _summarize(
     quantity: str,
     direction: Direction,
     fleet: FleetLabels,
-    positions: Mapping[str, int],
     alpha: float,
 ) -> Incident:
     anchor = members[0]  # members are in anchor order
@@ -1182,7 +1180,7 @@ def _summarize(
         type_counts=type_counts,
         median_effect_pct=round_sig(float(np.median(pcts))) if pcts else None,
         n_provisional=sum(m.status == "provisional" for m in members),
-        labels=label_shares([m.series_id for m in members], fleet, alpha=alpha, _pos=positions),
+        labels=label_shares([m.series_id for m in members], fleet, alpha=alpha),
     )
 
 
@@ -1231,7 +1229,6 @@ def label_shares(
     labels: FleetLabels | pd.DataFrame | Mapping[str, Mapping[str, Any]],
     *,
     alpha: float = SHARED_ALPHA,
-    _pos: Mapping[str, int] | None = None,
 ) -> tuple[LabelShare, ...]:
     """The label values the members carry more often than the fleet does.
 
@@ -1272,7 +1269,7 @@ def label_shares(
 
     _check_alpha(alpha)
     fleet = fleet_labels(labels)
-    pos = fleet.positions() if _pos is None else _pos
+    pos = fleet.index
     ids = list(dict.fromkeys(str(m) for m in members))
     if len(ids) != len(members):
         raise ConfigError("members lists a series more than once; give each series once")
