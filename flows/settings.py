@@ -49,6 +49,9 @@ class RunOptions(BaseModel):
     refit_after: float = Field(default=1.0, gt=0.0, le=1000.0)
     drift_alpha: float = Field(default=0.001, gt=0.0, lt=0.5)
     batch_seconds: float = Field(default=10.0, gt=0.0, le=600.0)
+    # How long a run waits for another run to release the database (one run
+    # at a time per database: tasks/runlock.py) before it stops unrun.
+    wait_seconds: float = Field(default=300.0, ge=0.0, le=86_400.0)
     workers: int = Field(default_factory=lambda: os.cpu_count() or 1, ge=1, le=512)
     window: str | None = None
 
