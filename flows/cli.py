@@ -160,8 +160,7 @@ def analyse_inputs(
         # Submit everything (forking the workers) before the caller's progress
         # display starts any thread.
         futures = {
-            pool.submit(run, item, period_tuple, critical): i
-            for i, item in enumerate(items)
+            pool.submit(run, item, period_tuple, critical): i for i, item in enumerate(items)
         }
         for future in as_completed(futures):
             outcome = future.result()

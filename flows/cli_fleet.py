@@ -752,6 +752,8 @@ def summary_record(summary: RunSummary) -> dict[str, Any]:
             ],
             "top_events": [e.to_record() for e in summary.top_events],
             "timings": dict(summary.timings),
+            "source_problems": list(summary.problems),
+            "notes": list(summary.notes),
         }
     )
 
@@ -804,12 +806,27 @@ def print_summary(console: Console, summary: RunSummary, *, wall: float | None =
         more = len(summary.failures) - SHOWN_FAILURES
         if more > 0:
             console.print(f"... and {more} more (table series_failures)", markup=False)
+    for note in summary.notes:
+        console.print(f"note: {note}", markup=False)
+    if summary.problems:
+        console.print(
+            f"{len(summary.problems)} part(s) of the source could not be read and were "
+            "skipped (table source_problems):",
+            markup=False,
+        )
+        for line in summary.problems[:SHOWN_FAILURES]:
+            console.print(f"  {line}", markup=False)
+        more = len(summary.problems) - SHOWN_FAILURES
+        if more > 0:
+            console.print(f"  ... and {more} more", markup=False)
 
 
 def _report_failures(summary: RunSummary) -> None:
     err = _stderr()
     for sid, stage, message in summary.failures:
         err.print(f"changekind: series {sid!r} failed ({stage}): {message}", markup=False)
+    for line in summary.problems:
+        err.print(f"changekind: source: {line}", markup=False)
 
 
 def _finish(summary: RunSummary, *, as_json: bool, wall: float) -> None:
@@ -819,7 +836,7 @@ def _finish(summary: RunSummary, *, as_json: bool, wall: float) -> None:
         _report_failures(summary)
     else:
         print_summary(_stdout(), summary, wall=wall)
-    if summary.series_failed:
+    if summary.series_failed or summary.problems:
         raise typer.Exit(EXIT_SERIES_FAILED)
 
 

@@ -28,7 +28,7 @@ from changekind.tasks.batch import (
     plan_batches,
     warm_context,
 )
-from changekind.tasks.fetch import SourceSpec
+from changekind.tasks.fetch import SourceProblem, SourceSpec
 from changekind.tasks.types import REPORTED_TYPES, Event, FittedModel
 
 Progress = Callable[[int, int, str], None]
@@ -57,6 +57,10 @@ class RunSummary:
     failures: tuple[tuple[str, str, str], ...] = ()
     top_events: tuple[Event, ...] = ()
     timings: tuple[tuple[str, float], ...] = field(default=())
+    problems: tuple[str, ...] = ()
+    """Parts of the source that could not be read (files, rows, cells), in words."""
+    notes: tuple[str, ...] = ()
+    """What the run did beyond the usual (abandoned runs closed, a span extended)."""
 
 
 def current_run_id() -> str:
@@ -269,6 +273,7 @@ def execute(
     batch_seconds: float = 10.0,
     logger=None,
     before_write: Callable[[], None] | None = None,
+    problems: list[SourceProblem] | None = None,
 ) -> tuple[list[SeriesOutcome], dict[str, float], int]:
     """Submit the batches, write each as it finishes; return outcomes and timings.
 
@@ -277,7 +282,9 @@ def execute(
     Works are batched by the time their events are reported from (each
     batch's options carry it).  Each write is tried again on transient
     database errors (:func:`~changekind.tasks.persist.retry_transient`);
-    ``before_write`` is called first (the run lock's check).
+    ``before_write`` is called first (the run lock's check).  Parts of the
+    source the batches could not read are recorded with their batch and
+    appended to ``problems``.
     """
     from prefect.futures import as_completed
 
@@ -305,9 +312,11 @@ def execute(
 
     def finish(future, batch: list[SeriesWork]) -> None:
         nonlocal done
+        found: tuple[SourceProblem, ...] = ()
         try:
             outcome: BatchOutcome = future.result()
             outs = list(outcome.outcomes)
+            found = outcome.problems
             timings["read"] += outcome.read_seconds
             timings["analyse"] += outcome.analyse_seconds
         except Exception as exc:  # the batch failed after its retries
@@ -321,10 +330,14 @@ def execute(
         def write():
             if before_write is not None:
                 before_write()
-            return write_outcomes(db, run_id, outs, reach=reach, time_kind=spec.time_kind)
+            return write_outcomes(
+                db, run_id, outs, reach=reach, time_kind=spec.time_kind, problems=found
+            )
 
         persist.retry_transient(write, what=f"writing a batch of {len(outs)} series", log=say)
         timings["write"] += time.perf_counter() - t0
+        if problems is not None:
+            problems.extend(found)
         results.extend(_slim(o) for o in outs)
         done += len(batch)
         if hook is not None:
@@ -366,6 +379,7 @@ def write_outcomes(
     *,
     reach: Mapping[str, Reach] | None = None,
     time_kind: str = "datetime",
+    problems: Sequence[SourceProblem] = (),
 ):
     """Write one batch's outcomes in one transaction (events, models, watermarks, failures).
 
@@ -398,7 +412,15 @@ def write_outcomes(
         failures=failures,
         analysed_from=analysed_from,
         reanalyse_until=until,
+        problems=problem_rows(problems),
     )
+
+
+def problem_rows(
+    problems: Sequence[SourceProblem],
+) -> list[tuple[str, int | None, str | None, str]]:
+    """Source problems as the rows of ``source_problems``."""
+    return [(p.location, p.row, p.series_id, p.problem) for p in problems]
 
 
 def summarize(

@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import time
 from collections.abc import Mapping, Sequence
+from dataclasses import replace
 from pathlib import Path
 
 import pandas as pd
@@ -29,6 +30,7 @@ from changekind.flows.pipeline import (
     execute,
     plan_reach,
     plan_works,
+    problem_rows,
     start_workers,
     stored_state,
     summarize,
@@ -37,7 +39,7 @@ from changekind.flows.processes import stop_children_with_this_process
 from changekind.flows.settings import DEFAULT_DB_URL, RunOptions
 from changekind.tasks import persist
 from changekind.tasks.errors import ConfigError, RunBusyError
-from changekind.tasks.fetch import ColumnMap, list_series, open_source
+from changekind.tasks.fetch import ColumnMap, SourceProblem, open_source, survey_source
 from changekind.tasks.runlock import RunLock
 
 
@@ -127,7 +129,9 @@ def _locked_run(
     closed = call("closing abandoned runs", persist.close_stale_runs, db, run_id)
     for stale in closed:
         logger.warning("run %s had been left 'running' (killed?); recorded as abandoned", stale)
-    ids = list(series) if series else list_series(spec)
+    survey = survey_source(spec)
+    ids = list(series) if series else survey.series_ids
+    problems: list[SourceProblem] = list(survey.problems)
     notes: list[str] = []
     if closed:
         notes.append(f"closed {len(closed)} abandoned run(s): {', '.join(closed)}")
@@ -141,6 +145,16 @@ def _locked_run(
             logger.warning("%s", extended)
     span = (chunks[0][0], chunks[-1][1])
     call("recording the run", persist.start_run, db, run_id, kind, *_span(span))
+    if problems:
+        call(
+            "recording the source's problems",
+            persist.record_source_problems,
+            db,
+            run_id,
+            problem_rows(problems),
+        )
+        for problem in problems:
+            logger.warning("source: %s", problem.describe())
     analysis = options.analysis(report_from=report_from)
     outcomes_all = []
     timings: dict[str, float] = {"open": time.perf_counter() - t0}
@@ -193,6 +207,7 @@ def _locked_run(
                 batch_seconds=options.batch_seconds,
                 logger=logger,
                 before_write=lock.check,
+                problems=problems,
             )
             outcomes_all.extend(outcomes)
             batches += n_batches
@@ -217,15 +232,24 @@ def _locked_run(
     finally:
         for future in starting:
             future.wait()
-    summary = summarize(
-        run_id,
-        kind,
-        _last_per_series(outcomes_all),
-        before,
-        batches,
-        time.perf_counter() - t0,
-        timings,
+    summary = replace(
+        summarize(
+            run_id,
+            kind,
+            _last_per_series(outcomes_all),
+            before,
+            batches,
+            time.perf_counter() - t0,
+            timings,
+        ),
+        problems=tuple(p.describe() for p in dict.fromkeys(problems)),
+        notes=tuple(notes),
     )
+    if summary.problems:
+        notes.append(
+            f"{len(summary.problems)} part(s) of the source could not be read "
+            "(table source_problems)"
+        )
     call(
         "recording the run's end",
         persist.finish_run,

@@ -38,7 +38,7 @@ from scipy.special import chdtri
 from changekind.tasks.decompose import MIN_POINTS, decompose, regularize
 from changekind.tasks.detect import detect_events, reestimate, screen_new_points
 from changekind.tasks.errors import ChangekindError, SeriesError
-from changekind.tasks.fetch import SeriesWindow, SourceSpec, read_windows
+from changekind.tasks.fetch import SeriesWindow, SourceProblem, SourceSpec, read_windows
 from changekind.tasks.fit import pi_weights
 from changekind.tasks.types import Event, FittedModel
 from changekind.tasks.window import (
@@ -201,6 +201,7 @@ class BatchOutcome:
     analyse_seconds: float
     rows_read: int = 0
     notes: tuple[str, ...] = field(default=())
+    problems: tuple[SourceProblem, ...] = ()  # cells read as missing (not numbers)
 
 
 def run_batch(
@@ -210,10 +211,12 @@ def run_batch(
 
     Read errors propagate (the Prefect task retries them); a series that
     cannot be analysed becomes a ``failed`` outcome and never fails the batch.
+    A cell that is not a number is read as missing and returned as a problem.
     """
     t0 = time.perf_counter()
+    problems: list[SourceProblem] = []
     windows = [SeriesWindow(w.series_id, w.start, w.end) for w in works]
-    frame = read_windows(spec, windows)
+    frame = read_windows(spec, windows, problems=problems)
     t1 = time.perf_counter()
     groups = _by_series(frame)
     empty = frame.iloc[0:0]
@@ -230,7 +233,7 @@ def run_batch(
     ]
     reread = [works[i] for i in wanted if works[i].start is not None]
     t2 = time.perf_counter()
-    history = _by_series(_histories(spec, reread)) if reread else {}
+    history = _by_series(_histories(spec, reread, problems)) if reread else {}
     t3 = time.perf_counter()
     for i in wanted:
         work, outcome = works[i], outcomes[i]
@@ -249,6 +252,7 @@ def run_batch(
         read_seconds=(t1 - t0) + (t3 - t2),
         analyse_seconds=time.perf_counter() - t1 - (t3 - t2),
         rows_read=len(frame),
+        problems=tuple(dict.fromkeys(problems)),  # a history re-read finds them again
     )
 
 
@@ -265,9 +269,12 @@ def _columns(data: pd.DataFrame) -> tuple[pd.Series, pd.Series]:
     return data["timestamp"], data["value"]
 
 
-def _histories(spec: SourceSpec, works: Sequence[SeriesWork]) -> pd.DataFrame:
+def _histories(
+    spec: SourceSpec, works: Sequence[SeriesWork], problems: list[SourceProblem]
+) -> pd.DataFrame:
     """All history up to each work's end (a warm read holds only the context), in one read."""
-    return read_windows(spec, [SeriesWindow(w.series_id, None, w.end) for w in works])
+    windows = [SeriesWindow(w.series_id, None, w.end) for w in works]
+    return read_windows(spec, windows, problems=problems)
 
 
 def analyse_series_work(

@@ -81,6 +81,7 @@ __all__ = [
     "migrations_dir",
     "read_events",
     "record_failures",
+    "record_source_problems",
     "retry_transient",
     "save_models",
     "scan_runs",
@@ -89,6 +90,7 @@ __all__ = [
     "series_models",
     "set_coverage",
     "set_triage",
+    "source_problems",
     "start_run",
     "table_snapshot",
     "update_watermarks",
@@ -254,6 +256,22 @@ backfill analyses a series again from an earlier start: the watermark an
 earlier run had reached, which the analysis must reach again (a run killed
 half-way leaves it for the next run to finish).
 """
+
+source_problems = sa.Table(
+    "source_problems",
+    metadata,
+    sa.Column("problem_id", sa.Integer, primary_key=True, autoincrement=True),
+    sa.Column("run_id", sa.Text, nullable=False),
+    sa.Column("location", sa.Text, nullable=False),
+    sa.Column("row_number", sa.Integer, nullable=True),
+    sa.Column("series_id", sa.Text, nullable=True),
+    sa.Column("problem", sa.Text, nullable=False),
+    sa.Column("found_at", UtcDateTime, nullable=False),
+    sa.Index("ix_source_problems_run_id", "run_id"),
+)
+"""Parts of a source a run could not read: a file skipped (empty, truncated,
+corrupt, wrong columns), a row skipped (no series id, wrong number of cells),
+or a cell read as missing (not a number).  Everything else was analysed."""
 
 run_locks = sa.Table(
     "run_locks",
@@ -1374,10 +1392,7 @@ def set_coverage(
             )
             conn.execute(
                 update,
-                [
-                    {"key": _text(k, "series_id"), "value": v}
-                    for k, v in sorted(values.items())
-                ],
+                [{"key": _text(k, "series_id"), "value": v} for k, v in sorted(values.items())],
             )
 
 
@@ -1392,6 +1407,7 @@ def write_batch(
     failures: Sequence[tuple[str, str, str]] = (),
     analysed_from: Mapping[str, str | None] | None = None,
     reanalyse_until: Mapping[str, str | None] | None = None,
+    problems: Sequence[tuple[str, int | None, str | None, str]] = (),
     at: datetime | None = None,
 ) -> WriteSummary:
     """Write everything one batch of series produced, in one transaction.
@@ -1417,6 +1433,8 @@ def write_batch(
             set_coverage(conn, analysed_from=analysed_from, reanalyse_until=reanalyse_until)
         if failures:
             record_failures(conn, run_id, failures, at=at)
+        if problems:
+            record_source_problems(conn, run_id, problems, at=at)
     return summary
 
 
@@ -1529,6 +1547,54 @@ def finish_run(
             .values(status=status, finished_at=when, seconds=seconds, message=message, **counts)
         )
     return seconds
+
+
+def record_source_problems(
+    db: Database,
+    run_id: str,
+    problems: Sequence[tuple[str, int | None, str | None, str]],
+    *,
+    at: datetime | None = None,
+) -> int:
+    """Record parts of a source a run could not read.
+
+    Parameters
+    ----------
+    problems : sequence of (location, row_number, series_id, problem)
+        ``row_number`` and ``series_id`` may be None.  The same problem given
+        again for the same run is recorded once.
+    """
+    run_id = _text(run_id, "run_id")
+    when = _now(at)
+    rows = []
+    with _engine(db) as engine, engine.begin() as conn:
+        known = {
+            tuple(r)
+            for r in conn.execute(
+                sa.select(
+                    source_problems.c.location,
+                    source_problems.c.row_number,
+                    source_problems.c.series_id,
+                    source_problems.c.problem,
+                ).where(source_problems.c.run_id == run_id)
+            )
+        }
+        for location, row, series_id, problem in dict.fromkeys(tuple(p) for p in problems):
+            if (location, row, series_id, problem) in known:
+                continue
+            rows.append(
+                {
+                    "run_id": run_id,
+                    "location": _text(location, "problem location"),
+                    "row_number": None if row is None else int(row),
+                    "series_id": series_id,
+                    "problem": str(problem),
+                    "found_at": when,
+                }
+            )
+        if rows:
+            conn.execute(sa.insert(source_problems), rows)
+    return len(rows)
 
 
 def close_stale_runs(db: Database, run_id: str, *, at: datetime | None = None) -> list[str]:
@@ -1646,7 +1712,7 @@ def table_snapshot(db: Database) -> dict[str, list[tuple[Any, ...]]]:
         return out
 
 
-_RUN_LOGS = ("scan_runs", "series_failures", "run_locks")
+_RUN_LOGS = ("scan_runs", "series_failures", "source_problems", "run_locks")
 
 BOOKKEEPING_COLUMNS = frozenset(
     {
@@ -1659,6 +1725,7 @@ BOOKKEEPING_COLUMNS = frozenset(
         "changed_at",
         "fitted_at",
         "failed_at",
+        "found_at",
         "triage_at",
     }
 )
