@@ -28,6 +28,7 @@ from __future__ import annotations
 import json
 import math
 import re
+import threading
 import time
 import warnings
 from collections.abc import Callable, Iterator, Mapping, Sequence
@@ -532,7 +533,7 @@ def retry_transient(
     call: Callable[[], _T],
     *,
     what: str,
-    delays: Sequence[float] = RETRY_DELAYS,
+    delays: Sequence[float] | None = None,
     log: Callable[[str], None] | None = None,
     sleep: Callable[[float], None] = time.sleep,
 ) -> _T:
@@ -546,8 +547,9 @@ def retry_transient(
         writes nothing twice).
     what : str
         What the call does, for the log lines.
-    delays : sequence of float, default=RETRY_DELAYS
-        Seconds to wait before each further try (bounded back-off).
+    delays : sequence of float, optional
+        Seconds to wait before each further try (bounded back-off); default
+        :data:`RETRY_DELAYS`.
     log : callable, optional
         Called with one line per retry.
 
@@ -556,6 +558,7 @@ def retry_transient(
     Exception
         The last error, when it is not transient or the tries are used up.
     """
+    delays = RETRY_DELAYS if delays is None else delays
     for attempt, delay in enumerate((*delays, None), start=1):
         try:
             return call()
@@ -745,10 +748,28 @@ def migrate(db: Database = DEFAULT_URL, *, revision: str = "head") -> None:
     """
     from alembic import command
 
-    config = _alembic_config()
-    with _engine(db) as engine, engine.begin() as conn:
-        config.attributes["connection"] = conn
-        command.upgrade(config, revision)
+    # Two runs may migrate a new database at once: Alembic's context is global
+    # to the process (one migration at a time here), PostgreSQL serializes on
+    # an advisory lock, and on SQLite the loser of the race tries once more
+    # (and then finds the schema up to date).
+    for attempt in (1, 2):
+        try:
+            with _MIGRATING, _engine(db) as engine, engine.begin() as conn:
+                if conn.dialect.name == "postgresql":
+                    conn.exec_driver_sql(
+                        "SELECT pg_advisory_xact_lock("
+                        "hashtext('changekind-migrate:' || current_schema()))"
+                    )
+                config = _alembic_config()
+                config.attributes["connection"] = conn
+                command.upgrade(config, revision)
+            return
+        except DBAPIError:
+            if attempt == 2:
+                raise
+
+
+_MIGRATING = threading.Lock()
 
 
 def init_db(url: str | URL = DEFAULT_URL) -> Engine:

@@ -47,6 +47,9 @@ STALE_SECONDS = 120.0
 POLL_SECONDS = 1.0
 """How often a waiting run tries the lock again."""
 
+_HELD: set[str] = set()
+"""Run ids whose lock this process holds now."""
+
 
 @dataclass(frozen=True, slots=True)
 class Holder:
@@ -130,6 +133,7 @@ class RunLock:
         t0 = time.monotonic()
         while True:
             if self._try():
+                _HELD.add(self.run_id)
                 self.waited = time.monotonic() - t0
                 self._beat = threading.Thread(
                     target=self._heartbeat, name="changekind-run-lock", daemon=True
@@ -188,6 +192,7 @@ class RunLock:
 
     def release(self) -> None:
         """Let go (also of the PostgreSQL session); never raises."""
+        _HELD.discard(self.run_id)
         self._stop.set()
         if self._beat is not None:
             self._beat.join(timeout=5)
@@ -257,7 +262,12 @@ class RunLock:
                     return True
                 if row.run_id == self.run_id:
                     return True
-                dead = (row.host == self.host and not _process_alive(row.pid)) or (
+                here = row.host == self.host
+                dead = (
+                    (here and not _process_alive(row.pid))
+                    # this process's run that let go but could not delete its row
+                    or (here and row.pid == self.pid and row.run_id not in _HELD)
+                ) or (
                     (now - row.heartbeat_at).total_seconds() > STALE_SECONDS
                 )
                 if not dead:

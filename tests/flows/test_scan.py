@@ -67,6 +67,7 @@ def test_plan_batches_sizes_by_cost():
     )
     cold = [SeriesWork(f"c{i}") for i in range(45)]
     warm = [SeriesWork(f"w{i}", model, "2026-01-01") for i in range(1200)]
+
     def sizes(works, **kw):
         return [len(b) for b in plan_batches(works, **kw)]
 
