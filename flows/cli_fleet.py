@@ -695,7 +695,7 @@ def _flow_arguments(flow: Any, config: FleetConfig, **extra: Any) -> dict[str, A
     params = inspect.signature(flow.fn).parameters
     arguments: dict[str, Any] = {
         "source": config.source,
-        "db": config.db,
+        "db": _db_parameter(config.db),
         "options": config.options,
         "columns": config.columns,
         **{k: v for k, v in extra.items() if v is not None},
@@ -708,6 +708,21 @@ def _flow_arguments(flow: Any, config: FleetConfig, **extra: Any) -> dict[str, A
             )
         arguments[name] = value
     return arguments
+
+
+def _db_parameter(url: str) -> str:
+    """The database URL as a flow parameter: without its password.
+
+    Prefect stores flow-run parameters in the clear; the password goes to
+    this process's environment (``CHANGEKIND_DB_PASSWORD``), where the flow
+    finds it (:func:`~changekind.flows.settings.resolve_db`).
+    """
+    from changekind.flows.settings import split_password
+
+    public, password = split_password(url)
+    if password is not None:
+        os.environ["CHANGEKIND_DB_PASSWORD"] = password
+    return public
 
 
 @contextmanager

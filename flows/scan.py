@@ -36,7 +36,7 @@ from changekind.flows.pipeline import (
     summarize,
 )
 from changekind.flows.processes import stop_children_with_this_process
-from changekind.flows.settings import DEFAULT_DB_URL, RunOptions
+from changekind.flows.settings import RunOptions, resolve_db
 from changekind.tasks import persist
 from changekind.tasks.errors import ConfigError, RunBusyError
 from changekind.tasks.fetch import ColumnMap, SourceProblem, open_source, survey_source
@@ -50,7 +50,7 @@ def _columns(columns: dict[str, str] | None) -> ColumnMap | None:
 def _run(
     kind: str,
     source: str,
-    db: str,
+    db: str | None,
     options: RunOptions,
     *,
     columns: dict[str, str] | None,
@@ -67,6 +67,9 @@ def _run(
     logger = get_run_logger()
     t0 = time.perf_counter()
     run_id = current_run_id()
+    # The parameter never holds a password (Prefect stores parameters in the
+    # clear): it comes from the environment or a Secret block (settings.py).
+    db = resolve_db(db)
 
     def call(what: str, fn, *args, **kwargs):
         return persist.retry_transient(lambda: fn(*args, **kwargs), what=what, log=logger.warning)
@@ -336,7 +339,7 @@ def extend_chunks(
 @flow(name="changekind-scan", log_prints=False)
 def scan_flow(
     source: str,
-    db: str = DEFAULT_DB_URL,
+    db: str | None = None,
     options: RunOptions = RunOptions(),  # noqa: B008 - pydantic model, immutable
     columns: dict[str, str] | None = None,
     series: list[str] | None = None,
@@ -371,7 +374,7 @@ def backfill_flow(
     source: str,
     start: str,
     end: str,
-    db: str = DEFAULT_DB_URL,
+    db: str | None = None,
     chunk: str = "7D",
     warmup: str = "7D",
     options: RunOptions = RunOptions(),  # noqa: B008
@@ -409,7 +412,7 @@ def backfill_flow(
 @flow(name="changekind-refit", log_prints=False)
 def refit_flow(
     source: str,
-    db: str = DEFAULT_DB_URL,
+    db: str | None = None,
     options: RunOptions = RunOptions(),  # noqa: B008
     columns: dict[str, str] | None = None,
     series: list[str] | None = None,

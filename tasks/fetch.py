@@ -853,8 +853,13 @@ def _parse_text_times(text: pd.Series) -> pd.Series:
     raise ValueError(f"{(bad.iloc[0] if len(bad) else text.iloc[0])!r} is not a date/time")
 
 
-def _numeric_text(text: pd.Series) -> bool:
+def numeric_text(text: pd.Series) -> bool:
+    """Whether text cells are all numbers (epoch seconds, sample numbers): one rule for
+    every reader (detect's INPUT files too)."""
     return bool(pd.to_numeric(text, errors="coerce").notna().all())
+
+
+_numeric_text = numeric_text
 
 
 @dataclass(frozen=True, slots=True)

@@ -284,7 +284,9 @@ def test_bad_rows_cells_and_an_empty_file_cost_no_good_series(prefect_server, fl
 
 # -- runs left behind, runs at once ---------------------------------------------------------
 
-_CLI = [sys.executable, "-m", "changekind.flows.cli"]
+# The console script, as operators run it (with worker processes, `python -m` would
+# make the workers import the CLI module as their main module).
+_CLI = [str(Path(sys.executable).with_name("changekind"))]
 
 
 def _env(home: Path) -> dict[str, str]:
