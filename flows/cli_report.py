@@ -21,6 +21,7 @@ import typer
 from changekind.flows.cli import EXIT_SERIES_FAILED, _fail_usage, _stderr, _stdout, app
 
 if TYPE_CHECKING:
+
     from changekind.tasks.fetch import SourceSpec
     from changekind.tasks.reporting import WrittenReport
 

@@ -245,7 +245,9 @@ def drill_command(
     source: SourceOpt = None,
     around: Annotated[
         int,
-        typer.Option("--around", metavar="K", min=0, max=1000, help="Windows shown either side."),
+        typer.Option(
+            "--around", metavar="K", min=0, max=1000, help="Windows shown either side."
+        ),
     ] = DEFAULT_AROUND,
     as_csv: Annotated[
         bool, typer.Option("--csv", help="Print the raw rows as CSV on stdout.")
