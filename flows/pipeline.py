@@ -451,6 +451,13 @@ def summarize(
             tops.append(e)
         retracted += sum(1 for t in o.retract if (o.series_id, t) in before)
     tops.sort(key=lambda e: -abs(e.t_stat))
+    merged = [(o.series_id, o.n_duplicates) for o in outcomes if o.n_duplicates]
+    notes = ()
+    if merged:
+        notes = (
+            f"{sum(n for _, n in merged)} duplicate timestamp(s) in {len(merged)} series "
+            f"merged into their median (e.g. {merged[0][0]!r}: {merged[0][1]})",
+        )
     failures = tuple((o.series_id, *o.failure) for o in outcomes if o.failure is not None)
     return RunSummary(
         run_id=run_id,
@@ -470,6 +477,7 @@ def summarize(
         failures=failures,
         top_events=tuple(tops[:10]),
         timings=tuple(timings.items()),
+        notes=notes,
     )
 
 

@@ -246,8 +246,9 @@ def _locked_run(
             timings,
         ),
         problems=tuple(p.describe() for p in dict.fromkeys(problems)),
-        notes=tuple(notes),
     )
+    notes.extend(summary.notes)
+    summary = replace(summary, notes=tuple(notes))
     if summary.problems:
         notes.append(
             f"{len(summary.problems)} part(s) of the source could not be read "
@@ -514,5 +515,11 @@ def _last_per_series(outcomes):
         mode = o.mode
         if mode not in ("failed", "deferred") and "cold" in (prev.mode, o.mode):  # type: ignore[attr-defined]
             mode = "cold"  # fitted in some chunk
-        merged[o.series_id] = replace(o, mode=mode, events=tuple(events.values()), retract=retract)
+        merged[o.series_id] = replace(
+            o,
+            mode=mode,
+            events=tuple(events.values()),
+            retract=retract,
+            n_duplicates=max(prev.n_duplicates, o.n_duplicates),  # type: ignore[attr-defined]
+        )
     return list(merged.values())

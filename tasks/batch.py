@@ -167,6 +167,7 @@ class SeriesOutcome:
     seconds: float = 0.0
     note: str | None = None
     reestimate: tuple[Event, ...] | None = None
+    n_duplicates: int = 0  # rows merged into their timestamp's median (regularize)
 
 
 class WorkBatch(Sequence[SeriesWork]):
@@ -327,6 +328,7 @@ def _cold(
         )
         found_events, model = result.events, result.model
         watermark, points = series.label(_last_observed(series.values)), series.nobs
+        merged = series.n_duplicates
     else:
         windowed = detect_windowed(
             work.series_id,
@@ -338,6 +340,7 @@ def _cold(
         )
         found_events, model = windowed.events, windowed_model(windowed)
         watermark, points = last_window_label(windowed.summary), windowed.summary.n_windows
+        merged = 0
     events = _reportable(found_events, options.report_from)
     found = {e.event_time for e in events}
     retract = tuple(
@@ -353,6 +356,7 @@ def _cold(
         model=model,
         watermark=watermark,
         points=points,
+        n_duplicates=merged,
     )
 
 
@@ -367,8 +371,10 @@ def _warm(
         timestamps, values = timestamps[keep], values[keep]
     if len(values) == 0:
         return unchanged
+    merged = 0
     if model.window is None:
         series = regularize(work.series_id, timestamps, values)
+        merged = series.n_duplicates
         index = series.index
         last = series.label(_last_observed(series.values))
 
@@ -419,6 +425,7 @@ def _warm(
         points=int(after.sum()),
         note=f"coefficients re-estimated: {why}" if light else None,
         reestimate=(*fixed, *result.events) if light else None,
+        n_duplicates=merged,
     )
 
 

@@ -316,3 +316,15 @@ def test_backfill_killed_midway_then_rerun_matches_an_uninterrupted_run(fleet, t
     assert persist.content_snapshot(crashed) != persist.content_snapshot(whole)
     assert _backfill_process(source, crashed, home).wait(timeout=900) == 0
     assert persist.content_snapshot(crashed) == persist.content_snapshot(whole)
+
+
+def test_merged_duplicate_timestamps_are_counted_in_the_run_summary(prefect_server, tmp_path):
+    """Duplicates are merged by their median (regularize); the run now says how many."""
+    data, _ = make_fleet(3)
+    twice = data[(data.series_id == "shelf-0/disk-1")].iloc[[5, 6, 6]]
+    source = write_source(pd.concat([data, twice], ignore_index=True), tmp_path / "source")
+    summary = scan_flow(str(source), f"sqlite:///{tmp_path / 'dups.db'}", OPTIONS)
+    (note,) = [n for n in summary.notes if "duplicate" in n]
+    assert note.startswith("3 duplicate timestamp(s) in 1 series") and "shelf-0/disk-1" in note
+    runs = persist.table_snapshot(f"sqlite:///{tmp_path / 'dups.db'}")["scan_runs"]
+    assert "3 duplicate timestamp(s)" in runs[0][-1]  # the run record says so too
