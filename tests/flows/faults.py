@@ -196,3 +196,17 @@ def runs(db: str) -> list[dict]:
 def problems(db: str) -> list[dict]:
     with persist.connect(db).connect() as conn:
         return [dict(r._mapping) for r in conn.execute(persist.source_problems.select())]
+
+
+def subprocess_env(home) -> dict[str, str]:
+    """The environment of a run in its own process: its own Prefect home, no server URL
+    (an ephemeral server of its own), quiet logs."""
+    env = {
+        **os.environ,
+        "PREFECT_HOME": str(home),
+        "PREFECT_SERVER_ANALYTICS_ENABLED": "false",
+        "PREFECT_LOGGING_LEVEL": "WARNING",
+        "PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS": "180",
+    }
+    env.pop("PREFECT_API_URL", None)
+    return env

@@ -199,6 +199,7 @@ def _cli(*args: str, env: dict[str, str], timeout: float = 180) -> str:
     return done.stdout
 
 
+@pytest.mark.integration
 def test_prefect_deploy_all_then_a_worker_runs_the_scan(prefect_server, tmp_path):
     from prefect.client.orchestration import get_client
     from prefect.settings import PREFECT_API_URL

@@ -289,18 +289,6 @@ def test_bad_rows_cells_and_an_empty_file_cost_no_good_series(prefect_server, fl
 _CLI = [str(Path(sys.executable).with_name("changekind"))]
 
 
-def _env(home: Path) -> dict[str, str]:
-    env = {
-        **os.environ,
-        "PREFECT_HOME": str(home),
-        "PREFECT_SERVER_ANALYTICS_ENABLED": "false",
-        "PREFECT_LOGGING_LEVEL": "WARNING",
-        "PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS": "180",
-    }
-    env.pop("PREFECT_API_URL", None)
-    return env
-
-
 def _backfill_cli(source: Path, db: str, home: Path) -> subprocess.Popen:
     return subprocess.Popen(
         [
@@ -325,7 +313,7 @@ def _backfill_cli(source: Path, db: str, home: Path) -> subprocess.Popen:
             "--wait",
             "0",
         ],
-        env=_env(home),
+        env=faults.subprocess_env(home),
         stdout=subprocess.PIPE,
         stderr=subprocess.STDOUT,
         start_new_session=True,
@@ -401,6 +389,11 @@ def test_two_runs_at_once_on_postgresql_never_double_the_revision_log(
     revision log holds each new event once (two runs at once used to log them twice)."""
     db = pg_url_factory()
     writing, second_done = threading.Event(), threading.Event()
+
+    def backfill():
+        span = ("2026-06-05", "2026-06-21")
+        return backfill_flow(str(source), *span, db, chunk="4D", warmup="3D", options=FINE)
+
     results: dict[str, object] = {}
 
     def first() -> None:
@@ -411,15 +404,7 @@ def test_two_runs_at_once_on_postgresql_never_double_the_revision_log(
 
         token = progress_hook.set(hook)
         try:
-            results["first"] = backfill_flow(
-                str(source),
-                "2026-06-05",
-                "2026-06-21",
-                db,
-                chunk="4D",
-                warmup="3D",
-                options=FINE,
-            )
+            results["first"] = backfill()
         finally:
             progress_hook.reset(token)
 
@@ -428,15 +413,7 @@ def test_two_runs_at_once_on_postgresql_never_double_the_revision_log(
     assert writing.wait(timeout=300)
     try:
         with pytest.raises(RunBusyError, match=r"backfill run .* is using the database"):
-            backfill_flow(
-                str(source),
-                "2026-06-05",
-                "2026-06-21",
-                db,
-                chunk="4D",
-                warmup="3D",
-                options=FINE,
-            )
+            backfill()
     finally:
         second_done.set()
         thread.join(timeout=600)

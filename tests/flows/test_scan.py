@@ -21,6 +21,7 @@ from changekind.tasks import persist
 from changekind.tasks.batch import AnalysisOptions, plan_batches
 from changekind.tasks.errors import ConfigError
 from changekind.tasks.types import Event
+from tests.flows.faults import subprocess_env
 from tests.flows.fleet import make_fleet, write_source
 
 OPTIONS = RunOptions(workers=2)
@@ -271,23 +272,16 @@ _BACKFILL = textwrap.dedent(
 
 
 def _backfill_process(source: Path, db: str, home: Path) -> subprocess.Popen:
-    env = {
-        **os.environ,
-        "PREFECT_HOME": str(home),
-        "PREFECT_SERVER_ANALYTICS_ENABLED": "false",
-        "PREFECT_LOGGING_LEVEL": "WARNING",
-        "PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS": "180",
-    }
-    env.pop("PREFECT_API_URL", None)
     return subprocess.Popen(
         [sys.executable, "-c", _BACKFILL, str(source), db],
-        env=env,
+        env=subprocess_env(home),
         stdout=subprocess.PIPE,
         stderr=subprocess.STDOUT,
         start_new_session=True,
     )
 
 
+@pytest.mark.integration
 def test_backfill_killed_midway_then_rerun_matches_an_uninterrupted_run(fleet, tmp_path):
     data, _, source = fleet
     write_source(data, source)
