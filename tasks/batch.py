@@ -221,8 +221,11 @@ def run_batch(
     t1 = time.perf_counter()
     groups = _by_series(frame)
     empty = frame.iloc[0:0]
+    skipped = {p.series_id: p.problem for p in problems if p.skip_series}
     outcomes = [
-        analyse_series_work(work, *_columns(groups.get(work.series_id, empty)), options)
+        SeriesOutcome(work.series_id, "failed", failure=("read", skipped[work.series_id]))
+        if work.series_id in skipped
+        else analyse_series_work(work, *_columns(groups.get(work.series_id, empty)), options)
         for work in works
     ]
     # Series whose warm analysis asks for the whole history (a refit, or new
@@ -230,7 +233,8 @@ def run_batch(
     wanted = [
         i
         for i, (work, outcome) in enumerate(zip(works, outcomes, strict=True))
-        if outcome.reestimate is not None or _turned_cold(work, outcome)
+        if (outcome.reestimate is not None or _turned_cold(work, outcome))
+        and work.series_id not in skipped
     ]
     reread = [works[i] for i in wanted if works[i].start is not None]
     t2 = time.perf_counter()

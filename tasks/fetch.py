@@ -277,6 +277,8 @@ class SourceProblem:
     problem: str
     row: int | None = None
     series_id: str | None = None
+    skip_series: bool = False
+    """The series is not analysed in this run (its rows may be in a damaged file)."""
 
     def describe(self) -> str:
         where = self.location if self.row is None else f"{self.location}, row {self.row}"
@@ -507,7 +509,13 @@ def read_windows(
     wins = _check_windows(windows)
     reader = _READERS[spec.kind](spec)
     try:
-        return _read(reader, spec, wins, problems=problems)
+        frame = _read(reader, spec, wins, problems=problems)
+        found = getattr(reader, "problems", [])
+        if found and problems is None:
+            raise SourceError(f"{spec.describe}: {found[0].describe()}")
+        if problems is not None:
+            problems.extend(found)
+        return frame
     finally:
         reader.close()
 
@@ -1339,11 +1347,74 @@ class _ArrowReader:
             "timestamp": ds.field(cols.timestamp),
             "value": value if self.spec.kind == "csv" else value.cast(pa.float64()),
         }
+        condition = self._filter(groups, axis)
         try:
-            table = self.dataset.to_table(columns=projection, filter=self._filter(groups, axis))
-        except (pa.ArrowInvalid, pa.ArrowTypeError) as exc:
-            raise self._unreadable(exc) from None
+            table = self.dataset.to_table(columns=projection, filter=condition)
+        except (pa.ArrowInvalid, pa.ArrowTypeError, OSError) as exc:
+            if len(self.files) < 2:
+                raise self._unreadable(exc) from None
+            # One file is damaged beyond its footer (found only when its pages
+            # are read): read file by file, and leave out the series it may hold.
+            table = self._scan_by_file(projection, condition, groups)
         return table.to_pandas(date_as_object=False)
+
+    def _scan_by_file(
+        self, projection: dict[str, ds.Expression], condition: ds.Expression, groups
+    ) -> pa.Table:
+        parts = []
+        wanted = sorted({sid for g in groups for sid in g.ids})
+        for fragment in self.dataset.get_fragments():
+            try:
+                parts.append(
+                    fragment.to_table(
+                        schema=self.dataset.schema, columns=projection, filter=condition
+                    )
+                )
+            except (pa.ArrowInvalid, pa.ArrowTypeError, OSError) as exc:
+                held = self._ids_in_file(fragment.path, wanted)
+                self.problems.append(
+                    SourceProblem(
+                        fragment.path,
+                        f"could not be read ({_arrow_message(exc)}); the file is skipped",
+                    )
+                )
+                self.problems.extend(
+                    SourceProblem(
+                        fragment.path,
+                        "some of its rows may be in a file that could not be read; not "
+                        "analysed in this run (fix or replace the file)",
+                        series_id=sid,
+                        skip_series=True,
+                    )
+                    for sid in held
+                )
+        if not parts:
+            raise SourceError(f"{self.spec.describe}: no file of this read can be read")
+        return pa.concat_tables(parts)
+
+    def _ids_in_file(self, path: str, wanted: Sequence[str]) -> list[str]:
+        """Of ``wanted``, the ids a damaged Parquet file may hold (its footer's statistics)."""
+        if self.spec.kind != "parquet":
+            return list(wanted)
+        try:
+            meta = pq.ParquetFile(path).metadata
+            index = meta.schema.to_arrow_schema().get_field_index(self.spec.columns.series_id)
+            ranges = []
+            for g in range(meta.num_row_groups):
+                stats = meta.row_group(g).column(index).statistics
+                if stats is None or not stats.has_min_max:
+                    return list(wanted)
+                ranges.append((str(stats.min), str(stats.max)))
+        except (pa.ArrowInvalid, OSError, ValueError, IndexError):
+            return list(wanted)
+        if _arrow_category(self.types["series_id"]) == "integer":
+            return [
+                s
+                for s in wanted
+                if re.fullmatch(r"[+-]?\d+", s)
+                and any(int(lo) <= int(s) <= int(hi) for lo, hi in ranges)
+            ]
+        return [s for s in wanted if any(lo <= s <= hi for lo, hi in ranges)]
 
     def distinct_ids(self) -> list[str]:
         """The series ids, file by file; rows without an id and ragged rows become problems."""

@@ -423,3 +423,37 @@ def test_two_runs_at_once_on_postgresql_never_double_the_revision_log(
     assert len(news) == results["first"].events_new and not news.duplicated().any()
     statuses = sorted(r["status"] for r in faults.runs(db))
     assert statuses == ["completed", "failed"]
+
+
+def test_a_part_damaged_past_its_footer_costs_only_its_own_series(prefect_server, fleet, tmp_path):
+    """The footer reads, a data page does not: found only when the batch reads it."""
+    import pyarrow.parquet as pq
+
+    parts = tmp_path / "parts"
+    parts.mkdir()
+    ids = sorted(fleet.series_id.unique())
+    for i, sid in enumerate(ids):
+        fleet[fleet.series_id == sid].to_parquet(parts / f"part-{i}.parquet", index=False)
+    good = tmp_path / "good"
+    good.mkdir()
+    for i in range(len(ids)):
+        if i != 2:
+            (good / f"part-{i}.parquet").write_bytes((parts / f"part-{i}.parquet").read_bytes())
+    damaged = parts / "part-2.parquet"
+    raw = bytearray(damaged.read_bytes())
+    page = pq.ParquetFile(damaged).metadata.row_group(0).column(2).data_page_offset
+    raw[page : page + 64] = b"\xff" * 64  # the value column's page header
+    damaged.write_bytes(bytes(raw))
+    pq.read_schema(damaged)  # the footer still reads: open_source cannot tell
+    db = f"sqlite:///{tmp_path / 'damaged.db'}"
+    reference = f"sqlite:///{tmp_path / 'reference.db'}"
+    one_batch = RunOptions(workers=1, wait_seconds=0)  # every series read together
+    summary = scan_flow(str(parts), db, one_batch)
+    scan_flow(str(good), reference, one_batch)
+    assert summary.batches == 1
+    others = set(ids) - {ids[2]}
+    assert faults.good_state(db, others) == faults.good_state(reference, others)
+    assert ids[2] in {sid for sid, stage, _ in summary.failures if stage == "read"}
+    assert ids[2] not in {row[0] for row in faults.good_state(db)["models"]}  # no gap analysed
+    named = {(Path(p["location"]).name, p["series_id"]) for p in faults.problems(db)}
+    assert ("part-2.parquet", None) in named and ("part-2.parquet", ids[2]) in named
