@@ -210,3 +210,12 @@ def subprocess_env(home) -> dict[str, str]:
     }
     env.pop("PREFECT_API_URL", None)
     return env
+
+
+def command_line(pid: int) -> str:
+    """The command line of a process ('' when it has ended)."""
+    try:
+        with open(f"/proc/{pid}/cmdline", "rb") as f:
+            return f.read().replace(b"\0", b" ").decode(errors="replace")
+    except OSError:
+        return ""

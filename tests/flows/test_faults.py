@@ -340,6 +340,8 @@ def test_a_backfill_killed_mid_chunk_leaves_no_process_and_its_run_is_closed(sou
         time.sleep(0.2)
     assert proc.poll() is None, "the backfill finished before it could be killed"
     tree.update(faults.descendants(proc.pid))
+    servers = [p for p in tree if "uvicorn" in faults.command_line(p)]
+    assert len(servers) == 1, servers  # the workers share the run's one Prefect server
     os.kill(proc.pid, signal.SIGKILL)  # the main process only, as `kill -9 PID` does
     proc.wait(timeout=60)
     # Its children (Prefect's server, the two workers, the resource tracker) go too.
@@ -372,6 +374,15 @@ def test_a_second_run_on_the_same_database_waits_or_says_why_it_stops(
         assert [r["status"] for r in refused] == ["failed"]
         assert "one fleet run at a time" in refused[0]["message"]
         assert persist.content_snapshot(db)["series_models"] == []  # it wrote nothing
+        from typer.testing import CliRunner
+
+        from changekind.flows.cli import app
+
+        cli = CliRunner().invoke(
+            app, ["scan", "--source", str(source), "--db", db, "--wait", "0", "--workers", "1"]
+        )
+        assert cli.exit_code == 4, cli.output  # another run holds the database
+        assert "scan not run: backfill run holder-run" in cli.output
     # Released: a run that waits gets its turn.
     lock = RunLock(db, "holder-2", "scan")
     lock.acquire()
