@@ -93,12 +93,20 @@ def analyse_one(
 
     Runs in a worker process, so it takes and returns picklable values only.
     """
+    from dataclasses import replace
+
+    from changekind.tasks.decompose import regularize
     from changekind.tasks.detect import analyse_series
 
     try:
         result = analyse_series(
             item.series_id, item.timestamps, item.values, periods=periods, critical=critical
         )
+        # Duplicate timestamps are merged by their median: say how many.
+        merged = regularize(item.series_id, item.timestamps, item.values).n_duplicates
+        if merged:
+            note = duplicates_note(merged)
+            result = replace(result, notes=(*result.notes, note))
     except SeriesError as exc:
         return SeriesOutcome(item.series_id, None, exc.problem)
     except ChangekindError as exc:
@@ -109,6 +117,14 @@ def analyse_one(
             problem += "\n" + traceback.format_exc()
         return SeriesOutcome(item.series_id, None, problem)
     return SeriesOutcome(item.series_id, result)
+
+
+def duplicates_note(n: int) -> str:
+    """The note of a series whose duplicate timestamps were merged."""
+    return (
+        f"{n} duplicate timestamp(s): the values of each repeated time were merged into "
+        "their median"
+    )
 
 
 def analyse_inputs(
@@ -160,8 +176,7 @@ def analyse_inputs(
         # Submit everything (forking the workers) before the caller's progress
         # display starts any thread.
         futures = {
-            pool.submit(run, item, period_tuple, critical): i
-            for i, item in enumerate(items)
+            pool.submit(run, item, period_tuple, critical): i for i, item in enumerate(items)
         }
         for future in as_completed(futures):
             outcome = future.result()
@@ -398,6 +413,11 @@ def detect(
     if as_json:
         sys.stdout.write(json.dumps(event_records(outcomes), indent=2, allow_nan=False) + "\n")
         sys.stdout.flush()
+        err = _stderr()
+        for outcome in outcomes:  # merged duplicates: the JSON array has no place for them
+            for note in outcome.result.notes if outcome.result is not None else ():
+                if "duplicate timestamp" in note:
+                    err.print(f"changekind: series {outcome.series_id!r}: {note}", markup=False)
     else:
         console = _stdout()
         for outcome in outcomes:

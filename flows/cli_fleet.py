@@ -11,10 +11,12 @@ and the database (:func:`~changekind.tasks.persist.connect`).  A flow wraps the
 errors raised inside it in its own machinery; checked here, bad configuration
 gets one clear line on stderr and exit code 2 instead.
 
-Exit codes: 0 done; 1 done, but some series could not be analysed (each is
-named on stderr); 2 bad usage or configuration (nothing was run); 3 the run
-itself failed (for example the database went away half-way; a rerun continues
-from each series' watermark); 130 interrupted.
+Exit codes: 0 done, every series and file analysed; 1 done, but some series,
+rows or source files could not be analysed (each is named on stderr and
+recorded); 2 bad usage or configuration (nothing was run); 3 the run failed
+part-way (for example the database stayed away longer than the retries: what
+was written stays, and a rerun continues from each series' watermark); 4
+another run holds the database (nothing was run); 130 interrupted.
 """
 
 from __future__ import annotations
@@ -67,6 +69,9 @@ if TYPE_CHECKING:
 EXIT_RUN_FAILED = 3
 """The run itself failed (not one series: the run); a rerun continues where it stopped."""
 
+EXIT_BUSY = 4
+"""Another fleet run holds the database (one run at a time per database); nothing was run."""
+
 EXIT_INTERRUPTED = 130
 """Stopped by Ctrl-C (128 + SIGINT, the shell's convention)."""
 
@@ -98,6 +103,7 @@ _OPTION_NAMES = {
     "critical": "--critical",
     "min_points": "--min-points",
     "workers": "--workers",
+    "wait_seconds": "--wait",
 }
 _SETTING_NAMES = {
     "db_url": "CHANGEKIND_DB_URL",
@@ -259,6 +265,16 @@ SeriesOpt = Annotated[
         show_default=False,
     ),
 ]
+WaitOpt = Annotated[
+    float | None,
+    typer.Option(
+        "--wait",
+        metavar="SECONDS",
+        help="One fleet run at a time per database: how long to wait for another run "
+        "to finish before giving up (exit code 4).  Default 300.",
+        show_default=False,
+    ),
+]
 JsonOpt = Annotated[
     bool,
     typer.Option("--json", help="Print only the run's summary as JSON on stdout."),
@@ -381,6 +397,7 @@ def fleet_config(
     critical: float | None,
     min_points: int | None,
     window: str | None = None,
+    wait: float | None = None,
 ) -> FleetConfig:
     """Check a fleet command's configuration in the order a person would fix it.
 
@@ -422,7 +439,11 @@ def fleet_config(
 
     # Step 3: analysis options.
     knobs: dict[str, Any] = {}
-    for name, value in (("critical", critical), ("min_points", min_points)):
+    for name, value in (
+        ("critical", critical),
+        ("min_points", min_points),
+        ("wait_seconds", wait),
+    ):
         if value is not None:
             knobs[name] = value
     if window is not None:
@@ -541,6 +562,13 @@ def _console_without_tracebacks() -> Iterator[None]:
             handler.removeFilter(quiet)
 
 
+def _is_configuration(exc: BaseException) -> bool:
+    """A problem of the configuration (exit 2), not of the run (exit 3)."""
+    from pydantic import ValidationError
+
+    return isinstance(exc, ConfigError | ValidationError)
+
+
 def _known_cause(exc: BaseException) -> BaseException | None:
     """The ChangekindError (or pydantic ValidationError) behind an exception, if any."""
     from pydantic import ValidationError
@@ -607,6 +635,8 @@ def run_fleet_flow(
     """
     prefect_defaults()
     from changekind.flows.pipeline import make_task_runner, progress_hook
+    from changekind.flows.processes import shared_prefect_server, stop_children_with_this_process
+    from changekind.tasks.errors import RunBusyError
 
     task_runner = make_task_runner(
         config.runner, workers=config.workers, dask_address=config.dask_address
@@ -618,7 +648,11 @@ def run_fleet_flow(
     try:
         if bar is not None:
             bar.progress.start()
-        with _console_without_tracebacks():
+        with (
+            stop_children_with_this_process(),
+            shared_prefect_server(),
+            _console_without_tracebacks(),
+        ):
             return configured(**arguments)
     except KeyboardInterrupt:
         _stderr().print(
@@ -629,8 +663,13 @@ def run_fleet_flow(
         raise typer.Exit(EXIT_INTERRUPTED) from None
     except Exception as exc:
         cause = _known_cause(exc)
-        if cause is not None:
+        if isinstance(cause, RunBusyError):
+            _stderr().print(f"changekind: {label} not run: {cause}", markup=False)
+            raise typer.Exit(EXIT_BUSY) from None
+        if cause is not None and _is_configuration(cause):
             raise ConfigError(_validation_text(cause, _OPTION_NAMES)) from None
+        if cause is not None:
+            exc = cause
         first = " ".join(str(exc).split("\n")[0].split()) or type(exc).__name__
         hint = "" if os.environ.get(DEBUG_ENV) else f" (set {DEBUG_ENV}=1 for the traceback)"
         _stderr().print(
@@ -656,7 +695,7 @@ def _flow_arguments(flow: Any, config: FleetConfig, **extra: Any) -> dict[str, A
     params = inspect.signature(flow.fn).parameters
     arguments: dict[str, Any] = {
         "source": config.source,
-        "db": config.db,
+        "db": _db_parameter(config.db),
         "options": config.options,
         "columns": config.columns,
         **{k: v for k, v in extra.items() if v is not None},
@@ -669,6 +708,21 @@ def _flow_arguments(flow: Any, config: FleetConfig, **extra: Any) -> dict[str, A
             )
         arguments[name] = value
     return arguments
+
+
+def _db_parameter(url: str) -> str:
+    """The database URL as a flow parameter: without its password.
+
+    Prefect stores flow-run parameters in the clear; the password goes to
+    this process's environment (``CHANGEKIND_DB_PASSWORD``), where the flow
+    finds it (:func:`~changekind.flows.settings.resolve_db`).
+    """
+    from changekind.flows.settings import split_password
+
+    public, password = split_password(url)
+    if password is not None:
+        os.environ["CHANGEKIND_DB_PASSWORD"] = password
+    return public
 
 
 @contextmanager
@@ -713,6 +767,8 @@ def summary_record(summary: RunSummary) -> dict[str, Any]:
             ],
             "top_events": [e.to_record() for e in summary.top_events],
             "timings": dict(summary.timings),
+            "source_problems": list(summary.problems),
+            "notes": list(summary.notes),
         }
     )
 
@@ -765,12 +821,27 @@ def print_summary(console: Console, summary: RunSummary, *, wall: float | None =
         more = len(summary.failures) - SHOWN_FAILURES
         if more > 0:
             console.print(f"... and {more} more (table series_failures)", markup=False)
+    for note in summary.notes:
+        console.print(f"note: {note}", markup=False)
+    if summary.problems:
+        console.print(
+            f"{len(summary.problems)} part(s) of the source could not be read and were "
+            "skipped (table source_problems):",
+            markup=False,
+        )
+        for line in summary.problems[:SHOWN_FAILURES]:
+            console.print(f"  {line}", markup=False)
+        more = len(summary.problems) - SHOWN_FAILURES
+        if more > 0:
+            console.print(f"  ... and {more} more", markup=False)
 
 
 def _report_failures(summary: RunSummary) -> None:
     err = _stderr()
     for sid, stage, message in summary.failures:
         err.print(f"changekind: series {sid!r} failed ({stage}): {message}", markup=False)
+    for line in summary.problems:
+        err.print(f"changekind: source: {line}", markup=False)
 
 
 def _finish(summary: RunSummary, *, as_json: bool, wall: float) -> None:
@@ -780,7 +851,7 @@ def _finish(summary: RunSummary, *, as_json: bool, wall: float) -> None:
         _report_failures(summary)
     else:
         print_summary(_stdout(), summary, wall=wall)
-    if summary.series_failed:
+    if summary.series_failed or summary.problems:
         raise typer.Exit(EXIT_SERIES_FAILED)
 
 
@@ -813,6 +884,7 @@ def scan(
         ),
     ] = None,
     series: SeriesOpt = None,
+    wait: WaitOpt = None,
     as_json: JsonOpt = False,
 ) -> None:
     """Scan the fleet: test every series' new points against its stored model.
@@ -879,6 +951,7 @@ def backfill(
     window: WindowOpt = None,
     report: ReportOpt = None,
     series: SeriesOpt = None,
+    wait: WaitOpt = None,
     as_json: JsonOpt = False,
 ) -> None:
     """Analyse a historical span, START <= t < END, in chunks; resumable.
@@ -925,6 +998,7 @@ def refit(
     critical: CriticalOpt = None,
     min_points: MinPointsOpt = None,
     window: WindowOpt = None,
+    wait: WaitOpt = None,
     as_json: JsonOpt = False,
 ) -> None:
     """Estimate the models of all (or the --series given) again on all their history."""

@@ -22,12 +22,14 @@ import numpy as np
 import pandas as pd
 
 from changekind.tasks.errors import SourceError
+from changekind.tasks.fetch import PARQUET_SUFFIXES, numeric_text
 
 LONG_COLUMNS = ("series_id", "timestamp", "value")
 SHORT_COLUMNS = ("timestamp", "value")
 
+# The fleet readers' suffixes (tasks/fetch.py), and gzip-compressed CSV.
 _CSV_SUFFIXES = (".csv", ".csv.gz")
-_PARQUET_SUFFIXES = (".parquet", ".pq")
+_PARQUET_SUFFIXES = PARQUET_SUFFIXES
 
 
 @dataclass(frozen=True, slots=True, eq=False)
@@ -71,7 +73,7 @@ def _read_frame(path: Path) -> pd.DataFrame:
     if not path.exists():
         raise SourceError(f"{path}: no such file; give the path of a CSV or Parquet file")
     if path.is_dir():
-        raise SourceError(f"{path} is a directory; give the path of a CSV or Parquet file")
+        return _read_folder(path)
     try:
         if suffix in _CSV_SUFFIXES:
             return pd.read_csv(path, dtype=str, skipinitialspace=True)
@@ -92,8 +94,27 @@ def _read_frame(path: Path) -> pd.DataFrame:
         raise SourceError(f"{path} is not readable as {kind}: {exc}") from exc
     raise SourceError(
         f"{path}: unknown file type {path.suffix or '(no suffix)'!r}; "
-        "INPUT must end in .csv, .csv.gz, .parquet or .pq"
+        "INPUT must end in .csv, .csv.gz, .parquet, .parq or .pq (or be a folder of them)"
     )
+
+
+def _read_folder(path: Path) -> pd.DataFrame:
+    """A folder of long-form files, read as the fleet commands read it (tasks/fetch.py).
+
+    Files and rows that cannot be read are skipped and named on stderr, as
+    ``scan`` records them.
+    """
+    import sys
+
+    from changekind.tasks.fetch import SeriesWindow, open_source, read_windows, survey_source
+
+    spec = open_source(path)
+    survey = survey_source(spec)
+    problems = list(survey.problems)
+    frame = read_windows(spec, [SeriesWindow(s) for s in survey.series_ids], problems=problems)
+    for problem in problems:
+        print(f"changekind: {problem.describe()}", file=sys.stderr)
+    return frame
 
 
 def _as_values(raw: pd.Series) -> np.ndarray:
@@ -162,9 +183,17 @@ def frame_to_series(frame: pd.DataFrame, *, default_id: str, source: str) -> lis
 
 
 def _one(series_id: str, rows: pd.DataFrame) -> SeriesInput:
+    stamps = rows["timestamp"]
+    if not pd.api.types.is_numeric_dtype(stamps.dtype) and not pd.api.types.is_datetime64_any_dtype(
+        stamps.dtype
+    ):
+        text = stamps.astype(object)
+        observed = text[text.notna()]
+        if len(observed) and numeric_text(observed):  # epoch times or sample numbers, as text
+            stamps = pd.to_numeric(text)
     return SeriesInput(
         series_id=series_id,
-        timestamps=pd.Index(rows["timestamp"], name="timestamp"),
+        timestamps=pd.Index(stamps, name="timestamp"),
         values=_as_values(rows["value"]),
     )
 

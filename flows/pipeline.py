@@ -12,9 +12,9 @@ from __future__ import annotations
 
 import time
 import uuid
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence, Set
 from contextvars import ContextVar
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import pandas as pd
 
@@ -28,7 +28,7 @@ from changekind.tasks.batch import (
     plan_batches,
     warm_context,
 )
-from changekind.tasks.fetch import SourceSpec
+from changekind.tasks.fetch import SourceProblem, SourceSpec
 from changekind.tasks.types import REPORTED_TYPES, Event, FittedModel
 
 Progress = Callable[[int, int, str], None]
@@ -57,6 +57,10 @@ class RunSummary:
     failures: tuple[tuple[str, str, str], ...] = ()
     top_events: tuple[Event, ...] = ()
     timings: tuple[tuple[str, float], ...] = field(default=())
+    problems: tuple[str, ...] = ()
+    """Parts of the source that could not be read (files, rows, cells), in words."""
+    notes: tuple[str, ...] = ()
+    """What the run did beyond the usual (abandoned runs closed, a span extended)."""
 
 
 def current_run_id() -> str:
@@ -84,7 +88,10 @@ def make_task_runner(runner: str, *, workers: int, dask_address: str | None = No
     if runner == "processes":
         from prefect.task_runners import ProcessPoolTaskRunner
 
-        return ProcessPoolTaskRunner(max_workers=workers)
+        from changekind.flows.processes import die_with_parent
+
+        # Workers end with the run's process, however it ends (flows/processes.py).
+        return ProcessPoolTaskRunner(max_workers=workers, initializer=die_with_parent)
     if runner == "dask":
         from prefect_dask import DaskTaskRunner
 
@@ -114,6 +121,7 @@ def plan_works(
     end: object = None,
     cold_start: object = None,
     refit: bool = False,
+    rewind: Set[str] = frozenset(),
 ) -> list[SeriesWork]:
     """One SeriesWork per series: warm after its watermark, or cold.
 
@@ -128,6 +136,9 @@ def plan_works(
         cached model was fitted with another window width than
         ``options.window`` (or raw when windowed, or windowed when raw) is
         analysed cold too.
+    rewind : set of str
+        Series analysed again from ``cold_start`` (cold), whatever their cache:
+        a backfill's span starts before their analysed span does.
     """
     works = []
     end_bound = _bound(end, time_kind)
@@ -136,7 +147,8 @@ def plan_works(
         mark = watermarks.get(sid)
         # A model fitted on other windows (or on raw points) cannot filter these.
         same_grid = model is None or model.window == options.window
-        if model is not None and mark is not None and not refit and same_grid:
+        warm = model is not None and mark is not None and not refit and same_grid
+        if warm and sid not in rewind:
             mark_bound = _bound(mark, time_kind)
             if (
                 end_bound is not None
@@ -168,6 +180,87 @@ def plan_works(
     return works
 
 
+@dataclass(frozen=True, slots=True)
+class Reach:
+    """Where one series' analysis stands at a run's chunk, and what it must catch up with.
+
+    Attributes
+    ----------
+    report_from : str or None
+        Events before this time are not reported by the series' cold analysis;
+        a cold analysis records it as the series' ``analysed_from``.
+    rewind : bool
+        The series is analysed again, cold, from the backfill's start: the
+        span given starts before the span analysed so far.
+    known : tuple of Event
+        The stored events the analysis builds on: those up to the watermark
+        (before the start when rewound).
+    ahead : tuple of str
+        Times of stored events beyond that point (left by an analysis that
+        had gone further): each is found again as the analysis passes it, or
+        retracted.
+    until : str or None
+        ``reanalyse_until``: the watermark an earlier analysis had reached,
+        which this one must reach again.
+    """
+
+    report_from: str | None = None
+    rewind: bool = False
+    known: tuple[Event, ...] = ()
+    ahead: tuple[str, ...] = ()
+    until: str | None = None
+
+
+def plan_reach(
+    series_ids: Sequence[str],
+    *,
+    coverage: Mapping[str, persist.Coverage],
+    known: Mapping[str, tuple[Event, ...]],
+    time_kind: str,
+    start: str | None = None,
+    refit: bool = False,
+) -> dict[str, Reach]:
+    """Each series' :class:`Reach` from its analysed span and stored events.
+
+    ``start`` is a backfill's start (None for scans and refits).  A series
+    whose analysed span begins after ``start`` is rewound: analysed again
+    from ``start`` through the watermark it had reached, so a backfill covers
+    its whole span whatever was analysed before, and two backfills in either
+    order end as one over their union.
+    """
+    start_bound = _bound(start, time_kind)
+    out: dict[str, Reach] = {}
+    for sid in series_ids:
+        stored = known.get(sid, ())
+        cov = coverage.get(sid)
+        if cov is None:  # never analysed: cold from the start (a scan: all history)
+            out[sid] = Reach(report_from=start, known=stored)
+            continue
+        begun = _bound(cov.analysed_from, time_kind)
+        rewind = not refit and start_bound is not None and begun is not None and begun > start_bound
+        if rewind:
+            before = [e for e in stored if _bound(e.event_time, time_kind) < start_bound]
+            later = [e for e in stored if _bound(e.event_time, time_kind) >= start_bound]
+            until = _latest([cov.watermark, cov.reanalyse_until], time_kind)
+            out[sid] = Reach(start, True, tuple(before), tuple(e.event_time for e in later), until)
+            continue
+        mark = _bound(cov.watermark, time_kind)
+        if mark is None:
+            before, later = list(stored), []
+        else:
+            before = [e for e in stored if _bound(e.event_time, time_kind) <= mark]
+            later = [e for e in stored if _bound(e.event_time, time_kind) > mark]
+        report_from = cov.analysed_from if start is not None else None
+        out[sid] = Reach(
+            report_from,
+            False,
+            tuple(before),
+            tuple(e.event_time for e in later),
+            cov.reanalyse_until,
+        )
+    return out
+
+
 def execute(
     spec: SourceSpec,
     db: str,
@@ -176,19 +269,37 @@ def execute(
     options: AnalysisOptions,
     *,
     workers: int,
+    reach: Mapping[str, Reach] | None = None,
     batch_seconds: float = 10.0,
     logger=None,
+    before_write: Callable[[], None] | None = None,
+    problems: list[SourceProblem] | None = None,
 ) -> tuple[list[SeriesOutcome], dict[str, float], int]:
     """Submit the batches, write each as it finishes; return outcomes and timings.
 
     At most ``2 * workers`` batches are in flight, so the data held in memory
     is a few batches' worth.  Outcomes keep only what the summary needs.
+    Works are batched by the time their events are reported from (each
+    batch's options carry it).  Each write is tried again on transient
+    database errors (:func:`~changekind.tasks.persist.retry_transient`);
+    ``before_write`` is called first (the run lock's check).  Parts of the
+    source the batches could not read are recorded with their batch and
+    appended to ``problems``.
     """
     from prefect.futures import as_completed
 
     from changekind.tasks.batch import run_batch_task
 
-    batches = plan_batches(works, target_seconds=batch_seconds, workers=workers)
+    reach = reach or {}
+    groups: dict[str | None, list[SeriesWork]] = {}
+    for w in works:
+        r = reach.get(w.series_id)
+        groups.setdefault(options.report_from if r is None else r.report_from, []).append(w)
+    batches = [
+        (replace(options, report_from=report_from), batch)
+        for report_from, group in groups.items()
+        for batch in plan_batches(group, target_seconds=batch_seconds, workers=workers)
+    ]
     hook = progress_hook.get()
     total = len(works)
     done = 0
@@ -197,12 +308,15 @@ def execute(
     pending: dict = {}
     queue = list(batches)
     limit = max(2, 2 * workers)
+    say = None if logger is None else logger.warning
 
     def finish(future, batch: list[SeriesWork]) -> None:
         nonlocal done
+        found: tuple[SourceProblem, ...] = ()
         try:
             outcome: BatchOutcome = future.result()
             outs = list(outcome.outcomes)
+            found = outcome.problems
             timings["read"] += outcome.read_seconds
             timings["analyse"] += outcome.analyse_seconds
         except Exception as exc:  # the batch failed after its retries
@@ -210,9 +324,20 @@ def execute(
             if logger is not None:
                 logger.error("batch of %d series failed: %s", len(batch), message)
             outs = [SeriesOutcome(w.series_id, "failed", failure=("batch", message)) for w in batch]
+        outs = [_catch_up(o, reach.get(o.series_id), spec.time_kind) for o in outs]
         t0 = time.perf_counter()
-        write_outcomes(db, run_id, outs)
+
+        def write():
+            if before_write is not None:
+                before_write()
+            return write_outcomes(
+                db, run_id, outs, reach=reach, time_kind=spec.time_kind, problems=found
+            )
+
+        persist.retry_transient(write, what=f"writing a batch of {len(outs)} series", log=say)
         timings["write"] += time.perf_counter() - t0
+        if problems is not None:
+            problems.extend(found)
         results.extend(_slim(o) for o in outs)
         done += len(batch)
         if hook is not None:
@@ -220,21 +345,63 @@ def execute(
 
     while queue or pending:
         while queue and len(pending) < limit:
-            batch = queue.pop(0)
+            batch_options, batch = queue.pop(0)
             # One opaque value: Prefect need not walk a thousand works looking for futures.
-            pending[run_batch_task.submit(spec, WorkBatch(batch), options)] = batch
+            pending[run_batch_task.submit(spec, WorkBatch(batch), batch_options)] = batch
         future = next(as_completed(list(pending)))
         finish(future, pending.pop(future))
     return results, timings, len(batches)
 
 
-def write_outcomes(db: str, run_id: str, outcomes: Sequence[SeriesOutcome]):
-    """Write one batch's outcomes in one transaction (events, models, watermarks, failures)."""
+def _catch_up(outcome: SeriesOutcome, reach: Reach | None, time_kind: str) -> SeriesOutcome:
+    """Retract stored events the analysis passed without finding them again.
+
+    They were left by an analysis that had gone further (a later span
+    analysed first): once this analysis reaches their time and does not
+    report them, they no longer stand.
+    """
+    if reach is None or not reach.ahead or outcome.watermark is None:
+        return outcome
+    if outcome.mode not in ("cold", "warm"):
+        return outcome
+    reached = _bound(outcome.watermark, time_kind)
+    found = {e.event_time for e in outcome.events} | set(outcome.retract)
+    stale = tuple(t for t in reach.ahead if t not in found and _bound(t, time_kind) <= reached)
+    if not stale:
+        return outcome
+    return replace(outcome, retract=(*outcome.retract, *stale))
+
+
+def write_outcomes(
+    db: str,
+    run_id: str,
+    outcomes: Sequence[SeriesOutcome],
+    *,
+    reach: Mapping[str, Reach] | None = None,
+    time_kind: str = "datetime",
+    problems: Sequence[SourceProblem] = (),
+):
+    """Write one batch's outcomes in one transaction (events, models, watermarks, failures).
+
+    With ``reach``, a cold analysis records where its series' analysed span
+    begins, and ``reanalyse_until`` is kept while the watermark is short of it.
+    """
     events = [e for o in outcomes for e in o.events]
     retract = [(o.series_id, t) for o in outcomes for t in o.retract]
     models = [o.model for o in outcomes if o.model is not None]
     marks = {o.series_id: o.watermark for o in outcomes if o.watermark is not None}
     failures = [(o.series_id, *o.failure) for o in outcomes if o.failure is not None]
+    analysed_from: dict[str, str | None] = {}
+    until: dict[str, str | None] = {}
+    for o in outcomes:
+        r = (reach or {}).get(o.series_id)
+        if r is None or o.watermark is None:
+            continue
+        if o.mode == "cold" and o.model is not None:
+            analysed_from[o.series_id] = r.report_from
+        if r.until is not None:
+            short = _bound(o.watermark, time_kind) < _bound(r.until, time_kind)
+            until[o.series_id] = r.until if short else None
     return persist.write_batch(
         db,
         run_id,
@@ -243,7 +410,17 @@ def write_outcomes(db: str, run_id: str, outcomes: Sequence[SeriesOutcome]):
         models=models,
         watermarks=marks,
         failures=failures,
+        analysed_from=analysed_from,
+        reanalyse_until=until,
+        problems=problem_rows(problems),
     )
+
+
+def problem_rows(
+    problems: Sequence[SourceProblem],
+) -> list[tuple[str, int | None, str | None, str]]:
+    """Source problems as the rows of ``source_problems``."""
+    return [(p.location, p.row, p.series_id, p.problem) for p in problems]
 
 
 def summarize(
@@ -274,6 +451,13 @@ def summarize(
             tops.append(e)
         retracted += sum(1 for t in o.retract if (o.series_id, t) in before)
     tops.sort(key=lambda e: -abs(e.t_stat))
+    merged = [(o.series_id, o.n_duplicates) for o in outcomes if o.n_duplicates]
+    notes = ()
+    if merged:
+        notes = (
+            f"{sum(n for _, n in merged)} duplicate timestamp(s) in {len(merged)} series "
+            f"merged into their median (e.g. {merged[0][0]!r}: {merged[0][1]})",
+        )
     failures = tuple((o.series_id, *o.failure) for o in outcomes if o.failure is not None)
     return RunSummary(
         run_id=run_id,
@@ -293,6 +477,7 @@ def summarize(
         failures=failures,
         top_events=tuple(tops[:10]),
         timings=tuple(timings.items()),
+        notes=notes,
     )
 
 
@@ -311,8 +496,6 @@ def _slim(outcome: SeriesOutcome) -> SeriesOutcome:
     """Drop the model from a kept outcome (the summary needs only counts and events)."""
     if outcome.model is None:
         return outcome
-    from dataclasses import replace
-
     return replace(outcome, model=None)
 
 
@@ -325,6 +508,12 @@ def _bound(value: object, time_kind: str):
     if stamp.tz is not None:  # compared in UTC; the fetch step maps zones back
         stamp = stamp.tz_convert("UTC").tz_localize(None)
     return stamp
+
+
+def _latest(labels: Sequence[str | None], time_kind: str) -> str | None:
+    """The latest of some time labels (None ignored)."""
+    given = [label for label in labels if label is not None]
+    return max(given, key=lambda label: _bound(label, time_kind)) if given else None
 
 
 def _before(bound):

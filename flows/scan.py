@@ -16,7 +16,8 @@ All three plan per-series work from the database's state and hand it to
 from __future__ import annotations
 
 import time
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
+from dataclasses import replace
 from pathlib import Path
 
 import pandas as pd
@@ -24,17 +25,22 @@ from prefect import flow, get_run_logger
 
 from changekind.flows.pipeline import (
     RunSummary,
+    _bound,
     current_run_id,
     execute,
+    plan_reach,
     plan_works,
+    problem_rows,
     start_workers,
     stored_state,
     summarize,
 )
-from changekind.flows.settings import DEFAULT_DB_URL, RunOptions
+from changekind.flows.processes import stop_children_with_this_process
+from changekind.flows.settings import RunOptions, resolve_db
 from changekind.tasks import persist
-from changekind.tasks.errors import ConfigError
-from changekind.tasks.fetch import ColumnMap, list_series, open_source
+from changekind.tasks.errors import ConfigError, RunBusyError
+from changekind.tasks.fetch import ColumnMap, SourceProblem, open_source, survey_source
+from changekind.tasks.runlock import RunLock
 
 
 def _columns(columns: dict[str, str] | None) -> ColumnMap | None:
@@ -44,7 +50,7 @@ def _columns(columns: dict[str, str] | None) -> ColumnMap | None:
 def _run(
     kind: str,
     source: str,
-    db: str,
+    db: str | None,
     options: RunOptions,
     *,
     columns: dict[str, str] | None,
@@ -52,6 +58,7 @@ def _run(
     table: str | None = None,
     query: str | None = None,
     chunks: Sequence[tuple[object, object]] = ((None, None),),
+    chunk: str | None = None,
     cold_start: object = None,
     report_from: str | None = None,
     refit: bool = False,
@@ -59,13 +66,98 @@ def _run(
 ) -> RunSummary:
     logger = get_run_logger()
     t0 = time.perf_counter()
-    starting = start_workers(options.workers)  # worker imports overlap the planning
     run_id = current_run_id()
-    persist.migrate(db)
+    # The parameter never holds a password (Prefect stores parameters in the
+    # clear): it comes from the environment or a Secret block (settings.py).
+    db = resolve_db(db)
+
+    def call(what: str, fn, *args, **kwargs):
+        return persist.retry_transient(lambda: fn(*args, **kwargs), what=what, log=logger.warning)
+
+    call("migrating the database", persist.migrate, db)
     spec = open_source(source, columns=_columns(columns), table=table, query=query)
-    ids = list(series) if series else list_series(spec)
     span = (chunks[0][0], chunks[-1][1])
-    persist.start_run(db, run_id, kind, _span_text(span[0]), _span_text(span[1]))
+    try:
+        lock = RunLock(db, run_id, kind, wait_seconds=options.wait_seconds)
+        call("taking the run lock", lock.acquire)
+    except RunBusyError as exc:
+        call("recording the run", persist.start_run, db, run_id, kind, *_span(span))
+        call("recording the run", persist.finish_run, db, run_id, "failed", message=str(exc))
+        raise
+    try:
+        with stop_children_with_this_process():
+            return _locked_run(
+                kind,
+                spec,
+                db,
+                options,
+                run_id=run_id,
+                lock=lock,
+                call=call,
+                logger=logger,
+                t0=t0,
+                series=series,
+                chunks=chunks,
+                chunk=chunk,
+                cold_start=cold_start,
+                report_from=report_from,
+                refit=refit,
+                report_dir=report_dir,
+            )
+    finally:
+        lock.release()
+
+
+def _locked_run(
+    kind: str,
+    spec,
+    db: str,
+    options: RunOptions,
+    *,
+    run_id: str,
+    lock: RunLock,
+    call,
+    logger,
+    t0: float,
+    series: Sequence[str] | None,
+    chunks: Sequence[tuple[object, object]],
+    chunk: str | None,
+    cold_start: object,
+    report_from: str | None,
+    refit: bool,
+    report_dir: str | None,
+) -> RunSummary:
+    """The run, once it holds the database (see :mod:`changekind.tasks.runlock`)."""
+    starting = start_workers(options.workers)  # worker imports overlap the planning
+    closed = call("closing abandoned runs", persist.close_stale_runs, db, run_id)
+    for stale in closed:
+        logger.warning("run %s had been left 'running' (killed?); recorded as abandoned", stale)
+    survey = survey_source(spec)
+    ids = list(series) if series else survey.series_ids
+    problems: list[SourceProblem] = list(survey.problems)
+    notes: list[str] = []
+    if closed:
+        notes.append(f"closed {len(closed)} abandoned run(s): {', '.join(closed)}")
+    if report_from is not None:
+        coverage = call("reading the analysed spans", persist.load_coverage, db, ids)
+        chunks, extended = extend_chunks(
+            chunks, chunk, coverage, start=report_from, time_kind=spec.time_kind
+        )
+        if extended:
+            notes.append(extended)
+            logger.warning("%s", extended)
+    span = (chunks[0][0], chunks[-1][1])
+    call("recording the run", persist.start_run, db, run_id, kind, *_span(span))
+    if problems:
+        call(
+            "recording the source's problems",
+            persist.record_source_problems,
+            db,
+            run_id,
+            problem_rows(problems),
+        )
+        for problem in problems:
+            logger.warning("source: %s", problem.describe())
     analysis = options.analysis(report_from=report_from)
     outcomes_all = []
     timings: dict[str, float] = {"open": time.perf_counter() - t0}
@@ -74,19 +166,29 @@ def _run(
     try:
         for k, (_, chunk_end) in enumerate(chunks, start=1):
             t_plan = time.perf_counter()
-            models, marks, known, index = stored_state(db, ids)
+            models, marks, known, index = call("reading the stored state", stored_state, db, ids)
+            coverage = call("reading the analysed spans", persist.load_coverage, db, ids)
             if k == 1:
                 before = index
+            reach = plan_reach(
+                ids,
+                coverage=coverage,
+                known=known,
+                time_kind=spec.time_kind,
+                start=report_from,
+                refit=refit,
+            )
             works = plan_works(
                 ids,
                 models=models,
                 watermarks=marks,
-                known=known,
+                known={sid: r.known for sid, r in reach.items()},
                 options=analysis,
                 time_kind=spec.time_kind,
                 end=chunk_end,
                 cold_start=cold_start,
                 refit=refit and k == 1,
+                rewind={sid for sid, r in reach.items() if r.rewind},
             )
             timings["plan"] = timings.get("plan", 0.0) + time.perf_counter() - t_plan
             logger.info(
@@ -103,30 +205,58 @@ def _run(
                 run_id,
                 works,
                 analysis,
+                reach=reach,
                 workers=options.workers,
                 batch_seconds=options.batch_seconds,
                 logger=logger,
+                before_write=lock.check,
+                problems=problems,
             )
             outcomes_all.extend(outcomes)
             batches += n_batches
             for key, value in chunk_timings.items():
                 timings[key] = timings.get(key, 0.0) + value
     except BaseException as exc:
-        persist.finish_run(db, run_id, "failed", message=f"{type(exc).__name__}: {exc}")
+        message = f"failed part-way: {type(exc).__name__}: {exc}"
+        if notes:
+            message += "; " + "; ".join(notes)
+        try:
+            call(
+                "recording the run's failure",
+                persist.finish_run,
+                db,
+                run_id,
+                "failed",
+                message=message,
+            )
+        except Exception as record_exc:  # the database is gone: the next run closes the row
+            logger.error("could not record the run's failure: %s", record_exc)
         raise
     finally:
         for future in starting:
             future.wait()
-    summary = summarize(
-        run_id,
-        kind,
-        _last_per_series(outcomes_all),
-        before,
-        batches,
-        time.perf_counter() - t0,
-        timings,
+    summary = replace(
+        summarize(
+            run_id,
+            kind,
+            _last_per_series(outcomes_all),
+            before,
+            batches,
+            time.perf_counter() - t0,
+            timings,
+        ),
+        problems=tuple(p.describe() for p in dict.fromkeys(problems)),
     )
-    persist.finish_run(
+    notes.extend(summary.notes)
+    summary = replace(summary, notes=tuple(notes))
+    if summary.problems:
+        notes.append(
+            f"{len(summary.problems)} part(s) of the source could not be read "
+            "(table source_problems)"
+        )
+    call(
+        "recording the run's end",
+        persist.finish_run,
         db,
         run_id,
         "completed",
@@ -136,6 +266,7 @@ def _run(
         events_new=summary.events_new,
         events_changed=summary.events_changed,
         events_retracted=summary.events_retracted,
+        message="; ".join(notes) or None,
     )
     try:
         from changekind.flows.artifacts import publish_run_artifacts
@@ -160,10 +291,56 @@ def _run(
     return summary
 
 
+def extend_chunks(
+    chunks: Sequence[tuple[object, object]],
+    chunk: str | None,
+    coverage: Mapping[str, persist.Coverage],
+    *,
+    start: str,
+    time_kind: str,
+) -> tuple[list[tuple[object, object]], str | None]:
+    """A backfill's chunks, extended so that rewound series reach their old watermark.
+
+    A series whose analysed span begins after ``start`` is analysed again
+    from ``start`` (see :func:`~changekind.flows.pipeline.plan_reach`) up to
+    the watermark it had reached, and one whose earlier re-analysis was cut
+    short continues to its ``reanalyse_until``: the span grows by whole chunks
+    until it covers those.  Returns the chunks and a note when they grew.
+    """
+    begin = _bound(start, time_kind)
+    targets = []
+    rewound = 0
+    for cov in coverage.values():
+        if cov.reanalyse_until is not None:
+            targets.append(cov.reanalyse_until)
+        begun = _bound(cov.analysed_from, time_kind)
+        if begun is not None and begun > begin and cov.watermark is not None:
+            targets.append(cov.watermark)
+            rewound += 1
+    out = [tuple(c) for c in chunks]
+    if not targets or chunk is None:
+        return out, None
+    until = max(_bound(t, time_kind) for t in targets)
+    size = float(chunk) if time_kind == "numeric" else pd.Timedelta(chunk)
+    grew = False
+    while _bound(out[-1][1], time_kind) <= until:
+        last = _bound(out[-1][1], time_kind)
+        nxt = last + size
+        label = nxt if time_kind == "numeric" else nxt.isoformat()
+        out.append((out[-1][1], label))
+        grew = True
+    if not grew:
+        return out, None
+    return out, (
+        f"{rewound} series had been analysed only from a later start and are analysed again "
+        f"from {start}; span extended to {out[-1][1]} to reach what they had reached"
+    )
+
+
 @flow(name="changekind-scan", log_prints=False)
 def scan_flow(
     source: str,
-    db: str = DEFAULT_DB_URL,
+    db: str | None = None,
     options: RunOptions = RunOptions(),  # noqa: B008 - pydantic model, immutable
     columns: dict[str, str] | None = None,
     series: list[str] | None = None,
@@ -198,7 +375,7 @@ def backfill_flow(
     source: str,
     start: str,
     end: str,
-    db: str = DEFAULT_DB_URL,
+    db: str | None = None,
     chunk: str = "7D",
     warmup: str = "7D",
     options: RunOptions = RunOptions(),  # noqa: B008
@@ -226,6 +403,7 @@ def backfill_flow(
         table=table,
         query=query,
         chunks=chunks,
+        chunk=chunk,
         cold_start=cold_start,
         report_from=str(start),
         report_dir=report_dir,
@@ -235,7 +413,7 @@ def backfill_flow(
 @flow(name="changekind-refit", log_prints=False)
 def refit_flow(
     source: str,
-    db: str = DEFAULT_DB_URL,
+    db: str | None = None,
     options: RunOptions = RunOptions(),  # noqa: B008
     columns: dict[str, str] | None = None,
     series: list[str] | None = None,
@@ -308,6 +486,10 @@ def _write_report(logger, db: str, spec, report_dir: str, run_id: str) -> None:
     )
 
 
+def _span(span: tuple[object, object]) -> tuple[str | None, str | None]:
+    return _span_text(span[0]), _span_text(span[1])
+
+
 def _span_text(value: object) -> str | None:
     if value is None:
         return None
@@ -333,5 +515,11 @@ def _last_per_series(outcomes):
         mode = o.mode
         if mode not in ("failed", "deferred") and "cold" in (prev.mode, o.mode):  # type: ignore[attr-defined]
             mode = "cold"  # fitted in some chunk
-        merged[o.series_id] = replace(o, mode=mode, events=tuple(events.values()), retract=retract)
+        merged[o.series_id] = replace(
+            o,
+            mode=mode,
+            events=tuple(events.values()),
+            retract=retract,
+            n_duplicates=max(prev.n_duplicates, o.n_duplicates),  # type: ignore[attr-defined]
+        )
     return list(merged.values())

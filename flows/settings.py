@@ -8,7 +8,7 @@ from __future__ import annotations
 import os
 from typing import Literal
 
-from pydantic import BaseModel, ConfigDict, Field, field_validator
+from pydantic import BaseModel, ConfigDict, Field, SecretStr, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
 from changekind.tasks.batch import AnalysisOptions
@@ -25,12 +25,16 @@ class Settings(BaseSettings):
     ``CHANGEKIND_DB_URL`` (default ``sqlite:///changekind.db`` in the working
     directory; PostgreSQL as ``postgresql+psycopg://user@host/db``),
     ``CHANGEKIND_SOURCE``, ``CHANGEKIND_RUNNER``, ``CHANGEKIND_WORKERS``,
-    ``CHANGEKIND_DASK_ADDRESS``.
+    ``CHANGEKIND_DASK_ADDRESS``.  The database password may be kept out of the
+    URL: ``CHANGEKIND_DB_PASSWORD``, or ``CHANGEKIND_DB_PASSWORD_BLOCK``, the
+    name of a Prefect Secret block holding it (see :func:`resolve_db`).
     """
 
     model_config = SettingsConfigDict(env_prefix="CHANGEKIND_", extra="ignore")
 
     db_url: str = DEFAULT_DB_URL
+    db_password: SecretStr | None = None
+    db_password_block: str | None = None
     source: str | None = None
     runner: Runner = "threads"
     workers: int = Field(default_factory=lambda: os.cpu_count() or 1, ge=1, le=512)
@@ -49,6 +53,9 @@ class RunOptions(BaseModel):
     refit_after: float = Field(default=1.0, gt=0.0, le=1000.0)
     drift_alpha: float = Field(default=0.001, gt=0.0, lt=0.5)
     batch_seconds: float = Field(default=10.0, gt=0.0, le=600.0)
+    # How long a run waits for another run to release the database (one run
+    # at a time per database: tasks/runlock.py) before it stops unrun.
+    wait_seconds: float = Field(default=300.0, ge=0.0, le=86_400.0)
     workers: int = Field(default_factory=lambda: os.cpu_count() or 1, ge=1, le=512)
     window: str | None = None
 
@@ -80,3 +87,54 @@ class RunOptions(BaseModel):
             report_from=report_from,
             window=self.window,
         )
+
+
+def split_password(url: str) -> tuple[str, str | None]:
+    """``url`` without its password, and the password (None when it has none).
+
+    What goes into a flow run's parameters is the first: Prefect stores the
+    parameters where anyone who can read its server reads them.
+    """
+    import sqlalchemy as sa
+
+    try:
+        parsed = sa.make_url(url)
+    except sa.exc.ArgumentError:
+        return url, None  # not a URL: the database layer says what is wrong with it
+    if parsed.password is None:
+        return url, None
+    password = str(parsed.password)
+    return parsed._replace(password=None).render_as_string(hide_password=False), password
+
+
+def resolve_db(db: str | None) -> str:
+    """The database URL a flow connects to, with its password.
+
+    ``db`` (a flow parameter, never holding a password) or else
+    ``CHANGEKIND_DB_URL``; a URL without a password gets the one of
+    ``CHANGEKIND_DB_PASSWORD`` or of the Prefect Secret block named by
+    ``CHANGEKIND_DB_PASSWORD_BLOCK``, when set.  Read in the flow's process,
+    so the password stays in its environment or the Secret block.
+    """
+    import sqlalchemy as sa
+
+    settings = Settings()
+    url = db if db else settings.db_url
+    if split_password(url)[1] is not None:
+        return url
+    password = None
+    if settings.db_password is not None:
+        password = settings.db_password.get_secret_value()
+    elif settings.db_password_block:
+        from prefect.blocks.system import Secret
+
+        password = str(Secret.load(settings.db_password_block).get())
+    if not password:
+        return url
+    try:
+        parsed = sa.make_url(url)
+    except sa.exc.ArgumentError:
+        return url
+    if parsed.get_backend_name() == "sqlite":
+        return url
+    return parsed.set(password=password).render_as_string(hide_password=False)

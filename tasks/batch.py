@@ -38,7 +38,7 @@ from scipy.special import chdtri
 from changekind.tasks.decompose import MIN_POINTS, decompose, regularize
 from changekind.tasks.detect import detect_events, reestimate, screen_new_points
 from changekind.tasks.errors import ChangekindError, SeriesError
-from changekind.tasks.fetch import SeriesWindow, SourceSpec, read_windows
+from changekind.tasks.fetch import SeriesWindow, SourceProblem, SourceSpec, read_windows
 from changekind.tasks.fit import pi_weights
 from changekind.tasks.types import Event, FittedModel
 from changekind.tasks.window import (
@@ -167,6 +167,7 @@ class SeriesOutcome:
     seconds: float = 0.0
     note: str | None = None
     reestimate: tuple[Event, ...] | None = None
+    n_duplicates: int = 0  # rows merged into their timestamp's median (regularize)
 
 
 class WorkBatch(Sequence[SeriesWork]):
@@ -201,6 +202,7 @@ class BatchOutcome:
     analyse_seconds: float
     rows_read: int = 0
     notes: tuple[str, ...] = field(default=())
+    problems: tuple[SourceProblem, ...] = ()  # cells read as missing (not numbers)
 
 
 def run_batch(
@@ -210,15 +212,20 @@ def run_batch(
 
     Read errors propagate (the Prefect task retries them); a series that
     cannot be analysed becomes a ``failed`` outcome and never fails the batch.
+    A cell that is not a number is read as missing and returned as a problem.
     """
     t0 = time.perf_counter()
+    problems: list[SourceProblem] = []
     windows = [SeriesWindow(w.series_id, w.start, w.end) for w in works]
-    frame = read_windows(spec, windows)
+    frame = read_windows(spec, windows, problems=problems)
     t1 = time.perf_counter()
     groups = _by_series(frame)
     empty = frame.iloc[0:0]
+    skipped = {p.series_id: p.problem for p in problems if p.skip_series}
     outcomes = [
-        analyse_series_work(work, *_columns(groups.get(work.series_id, empty)), options)
+        SeriesOutcome(work.series_id, "failed", failure=("read", skipped[work.series_id]))
+        if work.series_id in skipped
+        else analyse_series_work(work, *_columns(groups.get(work.series_id, empty)), options)
         for work in works
     ]
     # Series whose warm analysis asks for the whole history (a refit, or new
@@ -226,11 +233,12 @@ def run_batch(
     wanted = [
         i
         for i, (work, outcome) in enumerate(zip(works, outcomes, strict=True))
-        if outcome.reestimate is not None or _turned_cold(work, outcome)
+        if (outcome.reestimate is not None or _turned_cold(work, outcome))
+        and work.series_id not in skipped
     ]
     reread = [works[i] for i in wanted if works[i].start is not None]
     t2 = time.perf_counter()
-    history = _by_series(_histories(spec, reread)) if reread else {}
+    history = _by_series(_histories(spec, reread, problems)) if reread else {}
     t3 = time.perf_counter()
     for i in wanted:
         work, outcome = works[i], outcomes[i]
@@ -249,6 +257,7 @@ def run_batch(
         read_seconds=(t1 - t0) + (t3 - t2),
         analyse_seconds=time.perf_counter() - t1 - (t3 - t2),
         rows_read=len(frame),
+        problems=tuple(dict.fromkeys(problems)),  # a history re-read finds them again
     )
 
 
@@ -265,9 +274,12 @@ def _columns(data: pd.DataFrame) -> tuple[pd.Series, pd.Series]:
     return data["timestamp"], data["value"]
 
 
-def _histories(spec: SourceSpec, works: Sequence[SeriesWork]) -> pd.DataFrame:
+def _histories(
+    spec: SourceSpec, works: Sequence[SeriesWork], problems: list[SourceProblem]
+) -> pd.DataFrame:
     """All history up to each work's end (a warm read holds only the context), in one read."""
-    return read_windows(spec, [SeriesWindow(w.series_id, None, w.end) for w in works])
+    windows = [SeriesWindow(w.series_id, None, w.end) for w in works]
+    return read_windows(spec, windows, problems=problems)
 
 
 def analyse_series_work(
@@ -320,6 +332,7 @@ def _cold(
         )
         found_events, model = result.events, result.model
         watermark, points = series.label(_last_observed(series.values)), series.nobs
+        merged = series.n_duplicates
     else:
         windowed = detect_windowed(
             work.series_id,
@@ -331,6 +344,7 @@ def _cold(
         )
         found_events, model = windowed.events, windowed_model(windowed)
         watermark, points = last_window_label(windowed.summary), windowed.summary.n_windows
+        merged = 0
     events = _reportable(found_events, options.report_from)
     found = {e.event_time for e in events}
     retract = tuple(
@@ -346,6 +360,7 @@ def _cold(
         model=model,
         watermark=watermark,
         points=points,
+        n_duplicates=merged,
     )
 
 
@@ -360,8 +375,10 @@ def _warm(
         timestamps, values = timestamps[keep], values[keep]
     if len(values) == 0:
         return unchanged
+    merged = 0
     if model.window is None:
         series = regularize(work.series_id, timestamps, values)
+        merged = series.n_duplicates
         index = series.index
         last = series.label(_last_observed(series.values))
 
@@ -412,6 +429,7 @@ def _warm(
         points=int(after.sum()),
         note=f"coefficients re-estimated: {why}" if light else None,
         reestimate=(*fixed, *result.events) if light else None,
+        n_duplicates=merged,
     )
 
 

@@ -64,5 +64,17 @@ class SourceError(ChangekindError):
     """A data source is missing, unreadable or has the wrong columns."""
 
 
+class DatabaseUnavailableError(SourceError):
+    """The database cannot be reached or opened (now): worth trying again later."""
+
+
 class ConfigError(ChangekindError, ValueError):
     """A setting or parameter is out of range or inconsistent."""
+
+
+class RunBusyError(ChangekindError):
+    """Another fleet run holds the database; this one did nothing."""
+
+
+class RunFailedError(ChangekindError):
+    """A fleet run failed part-way (what it wrote stays; a rerun continues)."""

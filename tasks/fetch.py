@@ -54,6 +54,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.csv as pacsv
 import pyarrow.dataset as ds
+import pyarrow.parquet as pq
 import sqlalchemy as sa
 
 from changekind.tasks.errors import ConfigError, SourceError
@@ -223,6 +224,10 @@ class SourceSpec:
         Set when numeric timestamps are epoch times in this unit.
     timezone : str
         IANA zone that naive times are in, when compared with aware ones.
+    excluded : tuple of (path, reason)
+        Files of a directory source that :func:`open_source` found unreadable
+        (empty, truncated, corrupt, or without the mapped columns); readers
+        skip them, the fleet flows record them.
     """
 
     kind: SourceKind
@@ -233,6 +238,7 @@ class SourceSpec:
     time_kind: TimeKind = "datetime"
     timestamp_unit: str | None = None
     timezone: str = "UTC"
+    excluded: tuple[tuple[str, str], ...] = ()
 
     @property
     def describe(self) -> str:
@@ -256,6 +262,40 @@ class SourceSpec:
                 parts.append(f"{name}={getattr(self, name)!r}")
         parts += [f"time_kind={self.time_kind!r}", f"timezone={self.timezone!r}"]
         return f"SourceSpec({', '.join(parts)})"
+
+
+@dataclass(frozen=True, slots=True)
+class SourceProblem:
+    """A part of a source that could not be read: a file, a row or a cell.
+
+    ``location`` is the file (or the source); ``row`` the line of a CSV file
+    or the row of a Parquet file (1-based), when known; ``series_id`` the
+    series the row belongs to, when known.
+    """
+
+    location: str
+    problem: str
+    row: int | None = None
+    series_id: str | None = None
+    skip_series: bool = False
+    """The series is not analysed in this run (its rows may be in a damaged file)."""
+
+    def describe(self) -> str:
+        where = self.location if self.row is None else f"{self.location}, row {self.row}"
+        who = "" if self.series_id is None else f" (series {self.series_id!r})"
+        return f"{where}{who}: {self.problem}"
+
+
+@dataclass(frozen=True, slots=True)
+class SourceSurvey:
+    """The series ids of a source and the parts of it that could not be read."""
+
+    series_ids: list[str]
+    problems: tuple[SourceProblem, ...] = ()
+
+
+MAX_ROWS_NAMED = 10
+"""Most row numbers one problem lists (the count says how many there are)."""
 
 
 # ---------------------------------------------------------------------------
@@ -362,6 +402,7 @@ def open_source(
     reader = _READERS[kind](spec, check=True)
     try:
         time_kind = reader.time_kind()
+        excluded = tuple(getattr(reader, "excluded", ()))
     finally:
         reader.close()
     if time_kind == "datetime" and timestamp_unit is not None:
@@ -369,20 +410,34 @@ def open_source(
             f"{spec.describe}: timestamp column {cols.timestamp!r} already holds date/times; "
             "drop the timestamp unit"
         )
-    return replace(spec, time_kind=time_kind)
+    return replace(spec, time_kind=time_kind, excluded=excluded)
 
 
 def list_series(spec: SourceSpec) -> list[str]:
     """The distinct series ids in a source, sorted.
 
     Reads the id column only (Parquet/CSV: a projected scan; SQL:
-    ``SELECT DISTINCT``).
+    ``SELECT DISTINCT``).  Rows without a series id (null or blank) name no
+    series; :func:`survey_source` reports them.
+    """
+    return survey_source(spec).series_ids
+
+
+def survey_source(spec: SourceSpec) -> SourceSurvey:
+    """The series ids of a source and what of it could not be read.
+
+    Problems: the files :func:`open_source` excluded, rows without a series
+    id (file and row), and CSV rows with the wrong number of cells (file and
+    line); none of them stops the others from being read.
     """
     reader = _READERS[spec.kind](spec)
     try:
-        return reader.distinct_ids()
+        ids = reader.distinct_ids()
+        found = list(getattr(reader, "problems", ()))
     finally:
         reader.close()
+    excluded = [SourceProblem(path, why) for path, why in spec.excluded]
+    return SourceSurvey(ids, tuple(excluded + found))
 
 
 def read_series(
@@ -424,7 +479,12 @@ def read_series(
         reader.close()
 
 
-def read_windows(spec: SourceSpec, windows: Sequence[SeriesWindow]) -> pd.DataFrame:
+def read_windows(
+    spec: SourceSpec,
+    windows: Sequence[SeriesWindow],
+    *,
+    problems: list[SourceProblem] | None = None,
+) -> pd.DataFrame:
     """Read each series over its own window (a warm scan's new points + context).
 
     The windows become one pushed-down condition (series ids, earliest start,
@@ -432,6 +492,13 @@ def read_windows(spec: SourceSpec, windows: Sequence[SeriesWindow]) -> pd.DataFr
     then trimmed to its own window in memory.  Reading a little more and
     trimming measured faster than one condition per window (see
     ``MAX_FILTER_GROUPS``).
+
+    Parameters
+    ----------
+    problems : list, optional
+        Cells that are not numbers (CSV) are appended here as
+        :class:`SourceProblem` values and read as missing; without the list
+        such a cell raises SourceError.
 
     Returns
     -------
@@ -442,7 +509,13 @@ def read_windows(spec: SourceSpec, windows: Sequence[SeriesWindow]) -> pd.DataFr
     wins = _check_windows(windows)
     reader = _READERS[spec.kind](spec)
     try:
-        return _read(reader, spec, wins)
+        frame = _read(reader, spec, wins, problems=problems)
+        found = getattr(reader, "problems", [])
+        if found and problems is None:
+            raise SourceError(f"{spec.describe}: {found[0].describe()}")
+        if problems is not None:
+            problems.extend(found)
+        return frame
     finally:
         reader.close()
 
@@ -554,7 +627,13 @@ def _split(frame: pd.DataFrame, ids: Sequence[str]) -> list[tuple[str, pd.DataFr
     return out
 
 
-def _read(reader: _Reader, spec: SourceSpec, windows: Sequence[SeriesWindow]) -> pd.DataFrame:
+def _read(
+    reader: _Reader,
+    spec: SourceSpec,
+    windows: Sequence[SeriesWindow],
+    *,
+    problems: list[SourceProblem] | None = None,
+) -> pd.DataFrame:
     """Normalise the windows, scan with pushdown, trim exactly, sort."""
     axis = _Axis.of(spec)
     keyed = [
@@ -564,7 +643,7 @@ def _read(reader: _Reader, spec: SourceSpec, windows: Sequence[SeriesWindow]) ->
     if not keyed:
         return _finish(_empty_frame(), axis, spec, [])
     frame = reader.scan(_groups(keyed), axis)
-    return _finish(frame, axis, spec, keyed)
+    return _finish(frame, axis, spec, keyed, problems=problems)
 
 
 def _groups(keyed: Sequence[tuple[str, Any, Any]]) -> list[_Group]:
@@ -586,10 +665,17 @@ def _groups(keyed: Sequence[tuple[str, Any, Any]]) -> list[_Group]:
 
 
 def _finish(
-    frame: pd.DataFrame, axis: _Axis, spec: SourceSpec, keyed: Sequence[tuple[str, Any, Any]]
+    frame: pd.DataFrame,
+    axis: _Axis,
+    spec: SourceSpec,
+    keyed: Sequence[tuple[str, Any, Any]],
+    *,
+    problems: list[SourceProblem] | None = None,
 ) -> pd.DataFrame:
     # Rows that cannot be placed.
     frame = frame[frame["series_id"].notna() & frame["timestamp"].notna()]
+    if not pd.api.types.is_numeric_dtype(frame["value"].dtype):  # CSV cells, read as text
+        frame = frame.assign(value=_numbers(frame, spec, problems))
     ts = axis.output(frame["timestamp"], spec)
     keys = axis.keys(ts, spec)
     # Exact per-series trim (the pushdown may have read a superset).
@@ -616,6 +702,35 @@ def _finish(
     )
     out = out.sort_values(["series_id", "_key"], kind="mergesort")
     return out.drop(columns="_key").reset_index(drop=True)
+
+
+def _numbers(
+    frame: pd.DataFrame, spec: SourceSpec, problems: list[SourceProblem] | None
+) -> np.ndarray:
+    """The value cells as numbers; cells that are not numbers become missing and problems."""
+    raw = frame["value"].astype(object)
+    numbers = pd.to_numeric(raw, errors="coerce").to_numpy(dtype=float, na_value=np.nan)
+    bad = np.flatnonzero(raw.notna().to_numpy() & np.isnan(numbers))
+    if bad.size == 0:
+        return numbers
+    rows = frame.iloc[bad]
+    found = [
+        SourceProblem(
+            spec.location,
+            f"value {text!r} at {stamp} is not a number; fix that cell (or leave it empty "
+            "for a missing value)",
+            series_id=str(sid),
+        )
+        for sid, stamp, text in zip(
+            rows["series_id"], rows["timestamp"], rows["value"], strict=True
+        )
+    ]
+    if problems is None:
+        raise SourceError(
+            f"{spec.describe}: value column {spec.columns.value!r}: {found[0].problem}"
+        )
+    problems.extend(found)
+    return numbers
 
 
 def _empty_frame() -> pd.DataFrame:
@@ -746,8 +861,13 @@ def _parse_text_times(text: pd.Series) -> pd.Series:
     raise ValueError(f"{(bad.iloc[0] if len(bad) else text.iloc[0])!r} is not a date/time")
 
 
-def _numeric_text(text: pd.Series) -> bool:
+def numeric_text(text: pd.Series) -> bool:
+    """Whether text cells are all numbers (epoch seconds, sample numbers): one rule for
+    every reader (detect's INPUT files too)."""
     return bool(pd.to_numeric(text, errors="coerce").notna().all())
+
+
+_numeric_text = numeric_text
 
 
 @dataclass(frozen=True, slots=True)
@@ -940,7 +1060,11 @@ class _ArrowReader:
     def __init__(self, spec: SourceSpec, *, check: bool = False) -> None:
         self.spec = spec
         cols = spec.columns
-        self.dataset, self.files = self._open()
+        self.problems: list[SourceProblem] = []
+        self.excluded: list[tuple[str, str]] = list(spec.excluded)
+        self._file: str | None = None  # the CSV file being surveyed (for ragged rows)
+        self._ragged: dict[tuple[str, int], str] = {}
+        self.dataset, self.files = self._open(check=check)
         names = self.dataset.schema.names
         for role in LONG_COLUMNS:
             name = getattr(cols, role)
@@ -956,27 +1080,91 @@ class _ArrowReader:
         if check:
             self._check_files()
 
-    def _open(self) -> tuple[ds.Dataset, list[str]]:
+    def _format(self) -> ds.FileFormat:
+        spec = self.spec
+        if spec.kind == "parquet":
+            return ds.ParquetFileFormat()
+        # Every cell as text: values are made numbers in _finish, so one cell
+        # that is not a number fails its series, not the source; a row with
+        # the wrong number of cells is skipped and reported (_ragged_row).
+        return ds.CsvFileFormat(
+            parse_options=pacsv.ParseOptions(invalid_row_handler=self._ragged_row),
+            convert_options=pacsv.ConvertOptions(
+                column_types={
+                    spec.columns.series_id: pa.string(),
+                    spec.columns.timestamp: pa.string(),
+                    spec.columns.value: pa.string(),
+                },
+                strings_can_be_null=True,
+            ),
+        )
+
+    def _ragged_row(self, row: Any) -> str:
+        if self._file is not None:
+            self._ragged.setdefault((self._file, int(row.number)), str(row.text))
+        return "skip"
+
+    def _file_problem(self, path: str) -> str | None:
+        """Why one file of a directory cannot be read as part of the source, or None."""
+        spec = self.spec
+        try:
+            if spec.kind == "parquet":
+                schema = pq.read_schema(path)
+            else:
+                with pacsv.open_csv(
+                    path,
+                    parse_options=pacsv.ParseOptions(invalid_row_handler=_skip_row),
+                    convert_options=pacsv.ConvertOptions(
+                        column_types=dict.fromkeys(spec.columns.source_names(), pa.string())
+                    ),
+                ) as stream:
+                    schema = stream.schema
+        except (pa.ArrowInvalid, pa.ArrowNotImplementedError, OSError) as exc:
+            kind = "Parquet" if spec.kind == "parquet" else "CSV"
+            return f"not readable as {kind} ({_arrow_message(exc)}); the file is skipped"
+        partition_keys = {part.split("=", 1)[0] for part in Path(path).parts[:-1] if "=" in part}
+        missing = [
+            name
+            for name in spec.columns.source_names()
+            if name not in schema.names and name not in partition_keys
+        ]
+        if missing:
+            return (
+                f"wrong columns: no {', '.join(repr(m) for m in missing)} (columns: "
+                f"{', '.join(schema.names)}); the file is skipped"
+            )
+        if spec.kind == "parquet":
+            value_type = schema.field(spec.columns.value).type
+            if _arrow_category(value_type) not in ("integer", "float", "null"):
+                return f"value column has type {value_type}, not numbers; the file is skipped"
+        return None
+
+    def _open(self, *, check: bool = False) -> tuple[ds.Dataset, list[str]]:
         spec = self.spec
         suffixes = PARQUET_SUFFIXES if spec.kind == "parquet" else CSV_SUFFIXES
-        if spec.kind == "parquet":
-            fmt: ds.FileFormat = ds.ParquetFileFormat()
-        else:
-            fmt = ds.CsvFileFormat(
-                convert_options=pacsv.ConvertOptions(
-                    column_types={
-                        spec.columns.series_id: pa.string(),
-                        spec.columns.timestamp: pa.string(),
-                        spec.columns.value: pa.float64(),
-                    }
-                )
-            )
+        fmt = self._format()
         root = Path(spec.location)
         if not root.exists():
             raise SourceError(f"{spec.describe} does not exist (any more); check the path")
         try:
             if root.is_dir():
-                files = _data_files(root, suffixes)
+                skip = {path for path, _ in self.excluded}
+                files = [f for f in _data_files(root, suffixes) if f not in skip]
+                if check:
+                    good = []
+                    for path in files:
+                        why = self._file_problem(path)
+                        if why is None:
+                            good.append(path)
+                        else:
+                            self.excluded.append((path, why))
+                    if files and not good:
+                        reasons = "; ".join(f"{p}: {w}" for p, w in self.excluded[:3])
+                        raise SourceError(
+                            f"{spec.describe}: no file can be read ({reasons}); fix or "
+                            "replace the files"
+                        )
+                    files = good
                 if not files:
                     raise SourceError(
                         f"{spec.describe} holds no {'/'.join(suffixes)} files; point at the "
@@ -1045,6 +1233,8 @@ class _ArrowReader:
             if spec.columns.value not in schema.names:
                 continue  # a partition field: typed by the partitioning
             value_type = schema.field(spec.columns.value).type
+            if spec.kind == "csv":
+                continue  # text, made numbers cell by cell (_finish)
             if _arrow_category(value_type) not in ("integer", "float", "null"):
                 raise SourceError(
                     f"{spec.describe}: value column {spec.columns.value!r} in file "
@@ -1055,7 +1245,8 @@ class _ArrowReader:
     def _check_types(self) -> None:
         spec = self.spec
         cols = spec.columns
-        if _arrow_category(self.types["value"]) not in ("integer", "float", "null"):
+        numeric = ("integer", "float", "null") + (("text",) if spec.kind == "csv" else ())
+        if _arrow_category(self.types["value"]) not in numeric:
             raise SourceError(
                 f"{spec.describe}: value column {cols.value!r} has type {self.types['value']}, "
                 f"not numbers; store numbers or pass {_OPTION['value']} to choose the right column"
@@ -1150,32 +1341,147 @@ class _ArrowReader:
 
     def scan(self, groups: Sequence[_Group], axis: _Axis) -> pd.DataFrame:
         cols = self.spec.columns
+        value = ds.field(cols.value)
         projection = {
             "series_id": self._id_expr(),
             "timestamp": ds.field(cols.timestamp),
-            "value": ds.field(cols.value).cast(pa.float64()),
+            "value": value if self.spec.kind == "csv" else value.cast(pa.float64()),
         }
+        condition = self._filter(groups, axis)
         try:
-            table = self.dataset.to_table(columns=projection, filter=self._filter(groups, axis))
-        except (pa.ArrowInvalid, pa.ArrowTypeError) as exc:
-            raise self._unreadable(exc) from None
+            table = self.dataset.to_table(columns=projection, filter=condition)
+        except (pa.ArrowInvalid, pa.ArrowTypeError, OSError) as exc:
+            if len(self.files) < 2:
+                raise self._unreadable(exc) from None
+            # One file is damaged beyond its footer (found only when its pages
+            # are read): read file by file, and leave out the series it may hold.
+            table = self._scan_by_file(projection, condition, groups)
         return table.to_pandas(date_as_object=False)
 
-    def distinct_ids(self) -> list[str]:
-        name = self.spec.columns.series_id
-        seen: set[str] = set()
+    def _scan_by_file(
+        self, projection: dict[str, ds.Expression], condition: ds.Expression, groups
+    ) -> pa.Table:
+        parts = []
+        wanted = sorted({sid for g in groups for sid in g.ids})
+        for fragment in self.dataset.get_fragments():
+            try:
+                parts.append(
+                    fragment.to_table(
+                        schema=self.dataset.schema, columns=projection, filter=condition
+                    )
+                )
+            except (pa.ArrowInvalid, pa.ArrowTypeError, OSError) as exc:
+                held = self._ids_in_file(fragment.path, wanted)
+                self.problems.append(
+                    SourceProblem(
+                        fragment.path,
+                        f"could not be read ({_arrow_message(exc)}); the file is skipped",
+                    )
+                )
+                self.problems.extend(
+                    SourceProblem(
+                        fragment.path,
+                        "some of its rows may be in a file that could not be read; not "
+                        "analysed in this run (fix or replace the file)",
+                        series_id=sid,
+                        skip_series=True,
+                    )
+                    for sid in held
+                )
+        if not parts:
+            raise SourceError(f"{self.spec.describe}: no file of this read can be read")
+        return pa.concat_tables(parts)
+
+    def _ids_in_file(self, path: str, wanted: Sequence[str]) -> list[str]:
+        """Of ``wanted``, the ids a damaged Parquet file may hold (its footer's statistics)."""
+        if self.spec.kind != "parquet":
+            return list(wanted)
         try:
-            scanner = self.dataset.scanner(
-                columns={"series_id": self._id_expr()}, filter=ds.field(name).is_valid()
-            )
-            for batch in scanner.to_batches():
-                seen.update(pc.unique(batch.column(0)).to_pylist())
+            meta = pq.ParquetFile(path).metadata
+            index = meta.schema.to_arrow_schema().get_field_index(self.spec.columns.series_id)
+            ranges = []
+            for g in range(meta.num_row_groups):
+                stats = meta.row_group(g).column(index).statistics
+                if stats is None or not stats.has_min_max:
+                    return list(wanted)
+                ranges.append((str(stats.min), str(stats.max)))
+        except (pa.ArrowInvalid, OSError, ValueError, IndexError):
+            return list(wanted)
+        if _arrow_category(self.types["series_id"]) == "integer":
+            return [
+                s
+                for s in wanted
+                if re.fullmatch(r"[+-]?\d+", s)
+                and any(int(lo) <= int(s) <= int(hi) for lo, hi in ranges)
+            ]
+        return [s for s in wanted if any(lo <= s <= hi for lo, hi in ranges)]
+
+    def distinct_ids(self) -> list[str]:
+        """The series ids, file by file; rows without an id and ragged rows become problems."""
+        seen: set[str] = set()
+        self._ragged.clear()
+        try:
+            for fragment in self.dataset.get_fragments():
+                path = fragment.path
+                self._file = path
+                blank: list[int] = []
+                offset = 0
+                scanner = fragment.scanner(
+                    schema=self.dataset.schema, columns={"series_id": self._id_expr()}
+                )
+                for batch in scanner.to_batches():
+                    ids = batch.column(0)
+                    empty = pc.or_kleene(
+                        pc.is_null(ids), pc.equal(pc.utf8_trim_whitespace(ids), "")
+                    ).fill_null(True)
+                    if pc.any(empty).as_py():
+                        blank.extend(offset + int(i) for i in np.flatnonzero(empty))
+                    seen.update(pc.unique(pc.filter(ids, pc.invert(empty))).to_pylist())
+                    offset += batch.num_rows
+                if blank:
+                    self.problems.append(self._blank_problem(path, blank))
         except (pa.ArrowInvalid, pa.ArrowTypeError) as exc:
             raise self._unreadable(exc) from None
+        finally:
+            self._file = None
+        for (path, line), text in sorted(self._ragged.items()):
+            self.problems.append(
+                SourceProblem(
+                    path,
+                    f"wrong number of cells ({text[:80]!r}); the row is skipped: give it "
+                    f"the {len(self.dataset.schema.names)} columns of the header",
+                    row=line if line > 0 else None,
+                )
+            )
         return sorted(seen)
+
+    def _blank_problem(self, path: str, positions: list[int]) -> SourceProblem:
+        """Rows without a series id, named by their line (CSV: header is line 1) or row."""
+        csv = self.spec.kind == "csv"
+        skipped = sorted(line for p, line in self._ragged if p == path and line > 0)
+        rows = []
+        for position in positions:
+            row = position + (2 if csv else 1)  # a CSV's line 1 is its header
+            for line in skipped:  # ragged lines were skipped before this row was counted
+                if line <= row:
+                    row += 1
+            rows.append(row)
+        shown = ", ".join(str(r) for r in rows[:MAX_ROWS_NAMED])
+        more = f" and {len(rows) - MAX_ROWS_NAMED} more" if len(rows) > MAX_ROWS_NAMED else ""
+        where = f"{'line' if csv else 'row'}s {shown}{more}"
+        return SourceProblem(
+            path,
+            f"{len(rows)} row(s) without a series id ({where}); they are skipped: fill in "
+            f"the {self.spec.columns.series_id!r} column or drop them",
+            row=rows[0],
+        )
 
     def close(self) -> None:
         pass
+
+
+def _skip_row(row: Any) -> str:
+    return "skip"
 
 
 def _arrow_message(exc: Exception) -> str:

@@ -28,13 +28,15 @@ from __future__ import annotations
 import json
 import math
 import re
+import threading
+import time
 import warnings
-from collections.abc import Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from contextlib import AbstractContextManager, contextmanager, nullcontext
 from dataclasses import dataclass, fields
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any, Literal
+from typing import Any, Literal, TypeVar
 
 import numpy as np
 import pandas as pd
@@ -46,7 +48,11 @@ from sqlalchemy.dialects import sqlite as sqlite_dialect
 from sqlalchemy.engine import URL, Connection, Engine
 from sqlalchemy.exc import ArgumentError, DBAPIError, NoSuchModuleError
 
-from changekind.tasks.errors import ConfigError, ModelError, SourceError
+from changekind.tasks.errors import (
+    ConfigError,
+    DatabaseUnavailableError,
+    ModelError,
+)
 from changekind.tasks.types import REPORTED_TYPES, Event, FittedModel
 
 __all__ = [
@@ -58,12 +64,16 @@ __all__ = [
     "RUN_STATUSES",
     "TRIAGE_STATES",
     "VERSION_TABLE",
+    "Coverage",
     "WriteSummary",
+    "close_stale_runs",
     "connect",
     "content_snapshot",
     "event_revisions",
     "finish_run",
     "init_db",
+    "is_transient",
+    "load_coverage",
     "load_known_events",
     "load_models",
     "load_watermarks",
@@ -72,12 +82,16 @@ __all__ = [
     "migrations_dir",
     "read_events",
     "record_failures",
+    "record_source_problems",
+    "retry_transient",
     "save_models",
     "scan_runs",
     "series_events",
     "series_failures",
     "series_models",
+    "set_coverage",
     "set_triage",
+    "source_problems",
     "start_run",
     "table_snapshot",
     "update_watermarks",
@@ -101,7 +115,9 @@ EVENT_STATUSES: tuple[str, ...] = ("provisional", "confirmed", "retracted")
 TRIAGE_STATES: tuple[str, ...] = ("acknowledged", "dismissed", "explained")
 REVISION_CHANGES: tuple[str, ...] = ("new", "reclassified", "retracted", "updated")
 RUN_KINDS: tuple[str, ...] = ("scan", "backfill", "refit")
-RUN_STATUSES: tuple[str, ...] = ("running", "completed", "failed")
+RUN_STATUSES: tuple[str, ...] = ("running", "completed", "failed", "abandoned")
+"""``abandoned``: a run that ended without recording its end (killed, or its
+database went away), closed by the next run (see :func:`close_stale_runs`)."""
 
 RunKind = Literal["scan", "backfill", "refit"]
 TriageState = Literal["acknowledged", "dismissed", "explained"]
@@ -229,8 +245,51 @@ series_models = sa.Table(
     sa.Column("fingerprint", sa.Text, nullable=True),
     sa.Column("fitted_at", UtcDateTime, nullable=False),
     sa.Column("watermark", sa.Text, nullable=True),
+    sa.Column("analysed_from", sa.Text, nullable=True),
+    sa.Column("reanalyse_until", sa.Text, nullable=True),
 )
-"""The model cache: one fitted model per series and the scan watermark."""
+"""The model cache: one fitted model per series and the scan watermark.
+
+``analysed_from`` is where the series' analysed span begins (a backfill's
+start; NULL: the start of its data, as a scan or refit reads it), so the span
+analysed is ``analysed_from .. watermark``.  ``reanalyse_until`` is set while a
+backfill analyses a series again from an earlier start: the watermark an
+earlier run had reached, which the analysis must reach again (a run killed
+half-way leaves it for the next run to finish).
+"""
+
+source_problems = sa.Table(
+    "source_problems",
+    metadata,
+    sa.Column("problem_id", sa.Integer, primary_key=True, autoincrement=True),
+    sa.Column("run_id", sa.Text, nullable=False),
+    sa.Column("location", sa.Text, nullable=False),
+    sa.Column("row_number", sa.Integer, nullable=True),
+    sa.Column("series_id", sa.Text, nullable=True),
+    sa.Column("problem", sa.Text, nullable=False),
+    sa.Column("found_at", UtcDateTime, nullable=False),
+    sa.Index("ix_source_problems_run_id", "run_id"),
+)
+"""Parts of a source a run could not read: a file skipped (empty, truncated,
+corrupt, wrong columns), a row skipped (no series id, wrong number of cells),
+or a cell read as missing (not a number).  Everything else was analysed."""
+
+run_locks = sa.Table(
+    "run_locks",
+    metadata,
+    sa.Column("lock_name", sa.Text, primary_key=True),
+    sa.Column("run_id", sa.Text, nullable=False),
+    sa.Column("kind", sa.Text, nullable=False),
+    sa.Column("host", sa.Text, nullable=False),
+    sa.Column("pid", sa.Integer, nullable=False),
+    sa.Column("acquired_at", UtcDateTime, nullable=False),
+    sa.Column("heartbeat_at", UtcDateTime, nullable=False),
+)
+"""Who holds the database for a fleet run (one row while a run holds it).
+
+On SQLite the row is the lock; on PostgreSQL a session advisory lock is, and
+the row only says who holds it.  See :mod:`changekind.tasks.runlock`.
+"""
 
 scan_runs = sa.Table(
     "scan_runs",
@@ -448,6 +507,73 @@ def _masked(url: URL) -> str:
     return url.render_as_string(hide_password=True)
 
 
+# --------------------------------------------------------------------------- retries
+
+RETRY_DELAYS: tuple[float, ...] = (1.0, 2.0, 4.0, 8.0)
+"""Waits between the tries of a database call that failed on a transient error:
+five tries over about 15 s, enough for a dropped connection or a server restart
+of a few seconds (an outage of 6 s was survived in tests/flows/test_faults.py)."""
+
+_T = TypeVar("_T")
+
+
+def is_transient(exc: BaseException) -> bool:
+    """Whether a database error may pass on retry: a lost or refused connection,
+    a lock held by another writer, a server going down (not bad input, not a bug)."""
+    if isinstance(exc, DatabaseUnavailableError):
+        return True
+    if isinstance(exc, sa.exc.DBAPIError):
+        if exc.connection_invalidated:
+            return True
+        return isinstance(exc, sa.exc.OperationalError | sa.exc.InterfaceError)
+    return isinstance(exc, ConnectionError | TimeoutError)
+
+
+def retry_transient(
+    call: Callable[[], _T],
+    *,
+    what: str,
+    delays: Sequence[float] | None = None,
+    log: Callable[[str], None] | None = None,
+    sleep: Callable[[float], None] = time.sleep,
+) -> _T:
+    """``call()``, tried again after each delay while it fails on a transient error.
+
+    Parameters
+    ----------
+    call : callable
+        One database call; it must be safe to repeat (every writer here runs
+        in one transaction and upserts, so a repeat after a lost connection
+        writes nothing twice).
+    what : str
+        What the call does, for the log lines.
+    delays : sequence of float, optional
+        Seconds to wait before each further try (bounded back-off); default
+        :data:`RETRY_DELAYS`.
+    log : callable, optional
+        Called with one line per retry.
+
+    Raises
+    ------
+    Exception
+        The last error, when it is not transient or the tries are used up.
+    """
+    delays = RETRY_DELAYS if delays is None else delays
+    for attempt, delay in enumerate((*delays, None), start=1):
+        try:
+            return call()
+        except Exception as exc:
+            if delay is None or not is_transient(exc):
+                raise
+            if log is not None:
+                log(
+                    f"{what}: database error on try {attempt} of {len(delays) + 1} "
+                    f"({_first_line(exc)}); trying again in {delay:g} s"
+                )
+            sleep(delay)
+    raise AssertionError("unreachable")  # pragma: no cover
+
+
 # --------------------------------------------------------------------------- engines
 
 
@@ -539,7 +665,7 @@ def connect(url: str | URL = DEFAULT_URL, *, timeout: float = CONNECT_TIMEOUT_SE
                 "check that the server is running and reachable, that the database "
                 "and user exist, or give another URL"
             )
-        raise SourceError(
+        raise DatabaseUnavailableError(
             f"cannot open database {_masked(parsed)!r}: {_first_line(exc)}; {hint}"
         ) from None
     return engine
@@ -622,10 +748,28 @@ def migrate(db: Database = DEFAULT_URL, *, revision: str = "head") -> None:
     """
     from alembic import command
 
-    config = _alembic_config()
-    with _engine(db) as engine, engine.begin() as conn:
-        config.attributes["connection"] = conn
-        command.upgrade(config, revision)
+    # Two runs may migrate a new database at once: Alembic's context is global
+    # to the process (one migration at a time here), PostgreSQL serializes on
+    # an advisory lock, and on SQLite the loser of the race tries once more
+    # (and then finds the schema up to date).
+    for attempt in (1, 2):
+        try:
+            with _MIGRATING, _engine(db) as engine, engine.begin() as conn:
+                if conn.dialect.name == "postgresql":
+                    conn.exec_driver_sql(
+                        "SELECT pg_advisory_xact_lock("
+                        "hashtext('changekind-migrate:' || current_schema()))"
+                    )
+                config = _alembic_config()
+                config.attributes["connection"] = conn
+                command.upgrade(config, revision)
+            return
+        except DBAPIError:
+            if attempt == 2:
+                raise
+
+
+_MIGRATING = threading.Lock()
 
 
 def init_db(url: str | URL = DEFAULT_URL) -> Engine:
@@ -1081,6 +1225,10 @@ def _arima_order(model: FittedModel) -> str:
     return f"({p},{d},{q})({P},{D},{Q},{s})"
 
 
+# Kept by save_models: the key, and the analysed span (written by set_coverage).
+_NOT_SAVED = ("series_id", "analysed_from", "reanalyse_until")
+
+
 def save_models(
     db: Database,
     models: Sequence[FittedModel],
@@ -1137,7 +1285,7 @@ def save_models(
             series_models,
             rows,
             keys=("series_id",),
-            update=[c.name for c in series_models.columns if c.name != "series_id"],
+            update=[c.name for c in series_models.columns if c.name not in _NOT_SAVED],
             keep_when_null=("watermark",),
         )
     return len(rows)
@@ -1212,6 +1360,63 @@ def update_watermarks(db: Database, watermarks: Mapping[str, str]) -> int:
     return len(cached)
 
 
+@dataclass(frozen=True, slots=True)
+class Coverage:
+    """The span of a series that runs have analysed: ``analysed_from .. watermark``.
+
+    ``analysed_from`` None means from the start of the series' data;
+    ``reanalyse_until`` is set while a backfill analyses the series again from
+    an earlier start (the watermark it must reach again).
+    """
+
+    analysed_from: str | None = None
+    watermark: str | None = None
+    reanalyse_until: str | None = None
+
+
+def load_coverage(db: Database, series_ids: Sequence[str] | None = None) -> dict[str, Coverage]:
+    """The analysed span of each series that has a cached model."""
+    query = sa.select(
+        series_models.c.series_id,
+        series_models.c.analysed_from,
+        series_models.c.watermark,
+        series_models.c.reanalyse_until,
+    )
+    return {
+        row[0]: Coverage(row[1], row[2], row[3])
+        for row in _select_by_series(db, query, series_models, series_ids)
+    }
+
+
+def set_coverage(
+    db: Database,
+    *,
+    analysed_from: Mapping[str, str | None] | None = None,
+    reanalyse_until: Mapping[str, str | None] | None = None,
+) -> None:
+    """Set ``analysed_from`` / ``reanalyse_until`` of series with a cached model.
+
+    A series present in a mapping gets that value (None writes NULL); absent
+    series keep theirs.
+    """
+    with _engine(db) as engine, engine.begin() as conn:
+        for column, values in (
+            ("analysed_from", analysed_from),
+            ("reanalyse_until", reanalyse_until),
+        ):
+            if not values:
+                continue
+            update = (
+                sa.update(series_models)
+                .where(series_models.c.series_id == sa.bindparam("key"))
+                .values({column: sa.bindparam("value")})
+            )
+            conn.execute(
+                update,
+                [{"key": _text(k, "series_id"), "value": v} for k, v in sorted(values.items())],
+            )
+
+
 def write_batch(
     db: Database,
     run_id: str,
@@ -1221,16 +1426,20 @@ def write_batch(
     models: Sequence[FittedModel] = (),
     watermarks: Mapping[str, str] | None = None,
     failures: Sequence[tuple[str, str, str]] = (),
+    analysed_from: Mapping[str, str | None] | None = None,
+    reanalyse_until: Mapping[str, str | None] | None = None,
+    problems: Sequence[tuple[str, int | None, str | None, str]] = (),
     at: datetime | None = None,
 ) -> WriteSummary:
     """Write everything one batch of series produced, in one transaction.
 
     Events and retractions (:func:`write_events`), new models with their
     watermarks (:func:`save_models`), watermarks of series whose model is
-    kept (:func:`update_watermarks`) and failures (:func:`record_failures`)
-    commit together or not at all, so a run killed mid-way leaves every series
-    either before or after its batch: a rerun continues from there and ends
-    with the tables an uninterrupted run leaves.
+    kept (:func:`update_watermarks`), the series' analysed spans
+    (:func:`set_coverage`) and failures (:func:`record_failures`) commit
+    together or not at all, so a run killed mid-way leaves every series either
+    before or after its batch: a rerun continues from there and ends with the
+    tables an uninterrupted run leaves.
     """
     marks = dict(watermarks or {})
     modelled = {m.series_id for m in models}
@@ -1241,8 +1450,12 @@ def write_batch(
         rest = {k: v for k, v in marks.items() if k not in modelled}
         if rest:
             update_watermarks(conn, rest)
+        if analysed_from or reanalyse_until:
+            set_coverage(conn, analysed_from=analysed_from, reanalyse_until=reanalyse_until)
         if failures:
             record_failures(conn, run_id, failures, at=at)
+        if problems:
+            record_source_problems(conn, run_id, problems, at=at)
     return summary
 
 
@@ -1357,6 +1570,92 @@ def finish_run(
     return seconds
 
 
+def record_source_problems(
+    db: Database,
+    run_id: str,
+    problems: Sequence[tuple[str, int | None, str | None, str]],
+    *,
+    at: datetime | None = None,
+) -> int:
+    """Record parts of a source a run could not read.
+
+    Parameters
+    ----------
+    problems : sequence of (location, row_number, series_id, problem)
+        ``row_number`` and ``series_id`` may be None.  The same problem given
+        again for the same run is recorded once.
+    """
+    run_id = _text(run_id, "run_id")
+    when = _now(at)
+    rows = []
+    with _engine(db) as engine, engine.begin() as conn:
+        known = {
+            tuple(r)
+            for r in conn.execute(
+                sa.select(
+                    source_problems.c.location,
+                    source_problems.c.row_number,
+                    source_problems.c.series_id,
+                    source_problems.c.problem,
+                ).where(source_problems.c.run_id == run_id)
+            )
+        }
+        for location, row, series_id, problem in dict.fromkeys(tuple(p) for p in problems):
+            if (location, row, series_id, problem) in known:
+                continue
+            rows.append(
+                {
+                    "run_id": run_id,
+                    "location": _text(location, "problem location"),
+                    "row_number": None if row is None else int(row),
+                    "series_id": series_id,
+                    "problem": str(problem),
+                    "found_at": when,
+                }
+            )
+        if rows:
+            conn.execute(sa.insert(source_problems), rows)
+    return len(rows)
+
+
+def close_stale_runs(db: Database, run_id: str, *, at: datetime | None = None) -> list[str]:
+    """Close every other run still recorded as ``running``: status ``abandoned``.
+
+    Called by a run that holds the run lock (:mod:`changekind.tasks.runlock`):
+    no other run can be running then, so a ``running`` row is a run that
+    ended without recording its end (killed, or its database went away).
+
+    Returns
+    -------
+    list of str
+        The run ids closed.
+    """
+    when = _now(at)
+    with _engine(db) as engine, engine.begin() as conn:
+        stale = conn.execute(
+            sa.select(scan_runs.c.run_id, scan_runs.c.started_at).where(
+                scan_runs.c.status == "running", scan_runs.c.run_id != run_id
+            )
+        ).all()
+        for stale_id, started in stale:
+            conn.execute(
+                sa.update(scan_runs)
+                .where(scan_runs.c.run_id == stale_id)
+                .values(
+                    status="abandoned",
+                    finished_at=when,
+                    seconds=(when - started).total_seconds(),
+                    message=(
+                        f"closed by run {run_id} at {when.isoformat(timespec='seconds')}: "
+                        "this run ended without recording its end (killed, or its database "
+                        "went away); what it wrote stays, and a rerun continues from each "
+                        "series' watermark"
+                    ),
+                )
+            )
+    return [row[0] for row in stale]
+
+
 def record_failures(
     db: Database,
     run_id: str,
@@ -1422,11 +1721,19 @@ def table_snapshot(db: Database) -> dict[str, list[tuple[Any, ...]]]:
         return tuple((value is None, str(value)) for value in row)
 
     with _engine(db) as engine, engine.connect() as conn:
-        return {
-            table.name: sorted((tuple(r) for r in conn.execute(sa.select(table))), key=order)
-            for table in metadata.sorted_tables
-        }
+        inspector = sa.inspect(conn)  # older schemas lack newer tables and columns
+        present = set(inspector.get_table_names())
+        out = {}
+        for table in metadata.sorted_tables:
+            if table.name not in present:
+                continue
+            names = {c["name"] for c in inspector.get_columns(table.name)}
+            query = sa.select(*(c for c in table.columns if c.name in names))
+            out[table.name] = sorted((tuple(r) for r in conn.execute(query)), key=order)
+        return out
 
+
+_RUN_LOGS = ("scan_runs", "series_failures", "source_problems", "run_locks")
 
 BOOKKEEPING_COLUMNS = frozenset(
     {
@@ -1439,6 +1746,7 @@ BOOKKEEPING_COLUMNS = frozenset(
         "changed_at",
         "fitted_at",
         "failed_at",
+        "found_at",
         "triage_at",
     }
 )
@@ -1451,8 +1759,9 @@ def content_snapshot(db: Database) -> dict[str, list[tuple[Any, ...]]]:
     Two runs over the same data (a repeated scan, a backfill resumed after a
     crash against one uninterrupted) must agree on what the tables say; they
     differ, by design, in run ids and wall-clock times, which are left out
-    here, as are the per-run logs ``scan_runs`` and ``series_failures`` (a
-    series that fails is tried again, and logged again, by every run).
+    here, as are the per-run logs ``scan_runs``, ``series_failures`` and
+    ``run_locks`` (a series that fails is tried again, and logged again, by
+    every run).
     """
 
     def order(row: tuple[Any, ...]) -> tuple[tuple[bool, str], ...]:
@@ -1461,7 +1770,7 @@ def content_snapshot(db: Database) -> dict[str, list[tuple[Any, ...]]]:
     out = {}
     with _engine(db) as engine, engine.connect() as conn:
         for table in metadata.sorted_tables:
-            if table.name in ("scan_runs", "series_failures"):
+            if table.name in _RUN_LOGS:
                 continue
             cols = [c for c in table.columns if c.name not in BOOKKEEPING_COLUMNS]
             rows = (tuple(r) for r in conn.execute(sa.select(*cols)))
@@ -1473,19 +1782,19 @@ def content_snapshot(db: Database) -> dict[str, list[tuple[Any, ...]]]:
 
 
 def _retry_unless_bad_input(task_: Any, task_run: Any, state: Any) -> bool:
-    """Retry on operational errors; never on bad input (``ValueError``, e.g. ConfigError)."""
+    """Retry on transient database errors only (:func:`is_transient`)."""
     try:
         outcome = state.result(raise_on_failure=False)
     except Exception:  # the outcome cannot be read: retrying is the safe default
         return True
-    return not isinstance(outcome, ValueError)
+    return isinstance(outcome, BaseException) and is_transient(outcome)
 
 
 def _io_task(name: str, fn: Any) -> Any:
     return task(
         name=name,
-        retries=3,
-        retry_delay_seconds=[1, 2, 4],
+        retries=len(RETRY_DELAYS),
+        retry_delay_seconds=list(RETRY_DELAYS),
         retry_condition_fn=_retry_unless_bad_input,
         cache_policy=NO_CACHE,
     )(fn)

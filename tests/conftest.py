@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import os
 import uuid
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from pathlib import Path
 
 import pytest
@@ -65,17 +65,36 @@ def _pg_server() -> Iterator[sa.Engine | str]:
 
 
 @pytest.fixture
-def pg_url(_pg_server: sa.Engine | str) -> Iterator[str]:
-    """URL of a fresh schema on the PostgreSQL server, dropped afterwards."""
+def pg_url_factory(_pg_server: sa.Engine | str) -> Iterator[Callable[..., str]]:
+    """Make URLs of fresh schemas on the PostgreSQL server (all dropped afterwards).
+
+    ``make(application_name=None)``: the name marks the URL's connections in
+    ``pg_stat_activity`` (the fault tests terminate exactly those).
+    """
     if isinstance(_pg_server, str):
         _absent(_pg_server)
     assert isinstance(_pg_server, sa.Engine)
-    schema = f"changekind_test_{uuid.uuid4().hex[:12]}"
-    with _pg_server.begin() as conn:
-        conn.execute(sa.text(f'CREATE SCHEMA "{schema}"'))
-    url = _pg_server.url.update_query_dict({"options": f"-csearch_path={schema}"})
+    schemas: list[str] = []
+
+    def make(application_name: str | None = None) -> str:
+        schema = f"changekind_test_{uuid.uuid4().hex[:12]}"
+        with _pg_server.begin() as conn:
+            conn.execute(sa.text(f'CREATE SCHEMA "{schema}"'))
+        schemas.append(schema)
+        query = {"options": f"-csearch_path={schema}"}
+        if application_name is not None:
+            query["application_name"] = application_name
+        return _pg_server.url.update_query_dict(query).render_as_string(hide_password=False)
+
     try:
-        yield url.render_as_string(hide_password=False)
+        yield make
     finally:
         with _pg_server.begin() as conn:
-            conn.execute(sa.text(f'DROP SCHEMA IF EXISTS "{schema}" CASCADE'))
+            for schema in schemas:
+                conn.execute(sa.text(f'DROP SCHEMA IF EXISTS "{schema}" CASCADE'))
+
+
+@pytest.fixture
+def pg_url(pg_url_factory: Callable[..., str]) -> str:
+    """URL of a fresh schema on the PostgreSQL server, dropped afterwards."""
+    return pg_url_factory()

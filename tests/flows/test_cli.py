@@ -361,3 +361,73 @@ def test_series_input_keeps_the_given_text(tmp_path):
     assert item.series_id == "t"
     assert list(item.timestamps) == stamps(30)
     assert item.values.dtype == np.float64
+
+
+# -- one reader for files, numeric times, merged duplicates (issue 12, finding 5) --------
+
+
+def _shifted_series(n: int = 300, seed: int = 12) -> np.ndarray:
+    """AR(1), phi 0.5, with a level shift of 8 at n // 2 (the injected truth)."""
+    rng = np.random.default_rng(seed)
+    e = rng.normal(size=n)
+    y = np.empty(n)
+    y[0] = e[0]
+    for t in range(1, n):
+        y[t] = 0.5 * y[t - 1] + e[t]
+    y += 20.0
+    y[n // 2 :] += 8.0
+    return y
+
+
+@pytest.mark.parametrize(
+    "times",
+    [
+        lambda n: [str(1_900_000_000 + 3600 * i) for i in range(n)],  # epoch seconds
+        lambda n: [str(1_900_000_000_000 + 3_600_000 * i) for i in range(n)],  # milliseconds
+        lambda n: [str(i) for i in range(n)],  # plain 0..N
+    ],
+    ids=["epoch-s", "epoch-ms", "plain"],
+)
+def test_numeric_timestamps_in_csv_are_accepted(tmp_path, times):
+    """README: timestamps may be plain numbers; CSV refused them (Parquet took them)."""
+    y = _shifted_series()
+    stamps = times(len(y))
+    path = tmp_path / "numeric.csv"
+    pd.DataFrame({"timestamp": stamps, "value": y}).to_csv(path, index=False)
+    result = runner.invoke(app, ["detect", str(path), "--json"])
+    assert result.exit_code == 0, result.output
+    events = json.loads(result.stdout)
+    shifts = [e for e in events if e["event_type"] == "LS"]
+    assert [e["event_time"] for e in shifts] == [stamps[len(y) // 2]]  # the injected shift
+
+
+def test_detect_reads_what_scan_reads_parq_files_and_folders(tmp_path):
+    y = _shifted_series()
+    stamps = pd.date_range("2030-01-01", periods=len(y), freq="h")
+    frame = pd.DataFrame({"series_id": "disk-1", "timestamp": stamps, "value": y})
+    frame.to_parquet(tmp_path / "one.parq", index=False)
+    folder = tmp_path / "fleet"
+    folder.mkdir()
+    frame.iloc[:150].to_parquet(folder / "a.parquet", index=False)
+    frame.iloc[150:].to_parquet(folder / "b.parquet", index=False)
+    by_file = runner.invoke(app, ["detect", str(tmp_path / "one.parq"), "--json"])
+    by_folder = runner.invoke(app, ["detect", str(folder), "--json"])
+    assert by_file.exit_code == 0 and by_folder.exit_code == 0, by_file.output + by_folder.output
+    assert json.loads(by_file.stdout) == json.loads(by_folder.stdout)
+    (shift,) = [e for e in json.loads(by_file.stdout) if e["event_type"] == "LS"]
+    assert pd.Timestamp(shift["event_time"]) == stamps[len(y) // 2]
+
+
+def test_merged_duplicate_timestamps_are_reported(tmp_path):
+    y = _shifted_series()
+    stamps = pd.date_range("2030-01-01", periods=len(y), freq="h").strftime("%Y-%m-%dT%H:%M")
+    frame = pd.DataFrame({"timestamp": stamps, "value": y})
+    doubled = pd.concat([frame, frame.iloc[[10, 20, 20]]]).sort_index(kind="stable")
+    path = tmp_path / "dups.csv"
+    doubled.to_csv(path, index=False)
+    human = runner.invoke(app, ["detect", str(path)])
+    assert human.exit_code == 0, human.output
+    assert "3 duplicate timestamp(s)" in human.stdout  # rows 10 once and 20 twice again
+    as_json = runner.invoke(app, ["detect", str(path), "--json"])
+    assert "3 duplicate timestamp(s)" in as_json.stderr
+    json.loads(as_json.stdout)  # stdout stays pure JSON

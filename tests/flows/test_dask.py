@@ -13,12 +13,15 @@ from pathlib import Path
 
 import dask
 import distributed
+import pytest
 
 from changekind.flows.pipeline import make_task_runner
 from changekind.flows.scan import scan_flow
 from changekind.flows.settings import RunOptions
 from changekind.tasks import persist
 from tests.flows.fleet import make_fleet, write_source
+
+pytestmark = pytest.mark.integration  # a Dask cluster of worker processes
 
 # Small batches so the fleet's nine series become several tasks spread over
 # both workers, not one task on one of them.

@@ -21,6 +21,7 @@ from changekind.tasks import persist
 from changekind.tasks.batch import AnalysisOptions, plan_batches
 from changekind.tasks.errors import ConfigError
 from changekind.tasks.types import Event
+from tests.flows.faults import subprocess_env
 from tests.flows.fleet import make_fleet, write_source
 
 OPTIONS = RunOptions(workers=2)
@@ -67,6 +68,7 @@ def test_plan_batches_sizes_by_cost():
     )
     cold = [SeriesWork(f"c{i}") for i in range(45)]
     warm = [SeriesWork(f"w{i}", model, "2026-01-01") for i in range(1200)]
+
     def sizes(works, **kw):
         return [len(b) for b in plan_batches(works, **kw)]
 
@@ -270,23 +272,16 @@ _BACKFILL = textwrap.dedent(
 
 
 def _backfill_process(source: Path, db: str, home: Path) -> subprocess.Popen:
-    env = {
-        **os.environ,
-        "PREFECT_HOME": str(home),
-        "PREFECT_SERVER_ANALYTICS_ENABLED": "false",
-        "PREFECT_LOGGING_LEVEL": "WARNING",
-        "PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS": "180",
-    }
-    env.pop("PREFECT_API_URL", None)
     return subprocess.Popen(
         [sys.executable, "-c", _BACKFILL, str(source), db],
-        env=env,
+        env=subprocess_env(home),
         stdout=subprocess.PIPE,
         stderr=subprocess.STDOUT,
         start_new_session=True,
     )
 
 
+@pytest.mark.integration
 def test_backfill_killed_midway_then_rerun_matches_an_uninterrupted_run(fleet, tmp_path):
     data, _, source = fleet
     write_source(data, source)
@@ -315,3 +310,15 @@ def test_backfill_killed_midway_then_rerun_matches_an_uninterrupted_run(fleet, t
     assert persist.content_snapshot(crashed) != persist.content_snapshot(whole)
     assert _backfill_process(source, crashed, home).wait(timeout=900) == 0
     assert persist.content_snapshot(crashed) == persist.content_snapshot(whole)
+
+
+def test_merged_duplicate_timestamps_are_counted_in_the_run_summary(prefect_server, tmp_path):
+    """Duplicates are merged by their median (regularize); the run now says how many."""
+    data, _ = make_fleet(3)
+    twice = data[(data.series_id == "shelf-0/disk-1")].iloc[[5, 6, 6]]
+    source = write_source(pd.concat([data, twice], ignore_index=True), tmp_path / "source")
+    summary = scan_flow(str(source), f"sqlite:///{tmp_path / 'dups.db'}", OPTIONS)
+    (note,) = [n for n in summary.notes if "duplicate" in n]
+    assert note.startswith("3 duplicate timestamp(s) in 1 series") and "shelf-0/disk-1" in note
+    runs = persist.table_snapshot(f"sqlite:///{tmp_path / 'dups.db'}")["scan_runs"]
+    assert "3 duplicate timestamp(s)" in runs[0][-1]  # the run record says so too

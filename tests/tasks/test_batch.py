@@ -172,7 +172,9 @@ def test_series_needing_their_history_share_one_read(cold, frame, tmp_path, monk
     works = [_warm_work(cold, start), replace(_warm_work(cold, start), series_id=other.iloc[0, 0])]
     calls = []
     real = batch.read_windows
-    monkeypatch.setattr(batch, "read_windows", lambda s, w: calls.append(len(w)) or real(s, w))
+    monkeypatch.setattr(
+        batch, "read_windows", lambda s, w, **kw: calls.append(len(w)) or real(s, w, **kw)
+    )
     outs = run_batch(spec, works, OPTIONS).outcomes
     assert calls == [2, 2]  # the batch's windows, then both histories together
     assert [o.note for o in outs] == ["coefficients re-estimated: confirmed LS"] * 2

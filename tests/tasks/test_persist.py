@@ -29,7 +29,12 @@ from prefect.cache_policies import NO_CACHE
 from prefect.states import Failed
 
 from changekind.tasks import persist
-from changekind.tasks.errors import ConfigError, ModelError, SourceError
+from changekind.tasks.errors import (
+    ConfigError,
+    DatabaseUnavailableError,
+    ModelError,
+    SourceError,
+)
 from changekind.tasks.persist import (
     EVENT_COLUMNS,
     EVENT_EXTRA_COLUMNS,
@@ -252,7 +257,7 @@ def test_migration_0002_keeps_rows_and_admits_variance_changes(url: str) -> None
                 ],
             )
         before = table_snapshot(engine)
-        migrate(engine)
+        migrate(engine, revision="0002")
         assert table_snapshot(engine) == before
         with engine.connect() as conn:
             assert set(sa.inspect(conn).get_view_names()) == VIEW_NAMES
@@ -264,6 +269,47 @@ def test_migration_0002_keeps_rows_and_admits_variance_changes(url: str) -> None
         with engine.connect() as conn:
             kinds = conn.execute(sa.select(persist.series_events.c.event_type)).scalars().all()
         assert kinds == ["LS"]
+    finally:
+        engine.dispose()
+
+
+def test_migration_0003_keeps_rows_and_admits_abandoned_runs(url: str) -> None:
+    """0002 -> 0003: models, runs and views kept; new columns NULL; 'abandoned' allowed."""
+    engine = persist.connect(url)
+    try:
+        migrate(engine, revision="0002")
+        write_events(engine, "run-1", [make_event()], at=T0)
+        with engine.begin() as conn:
+            conn.execute(
+                sa.text(
+                    "INSERT INTO scan_runs (run_id, kind, status, series_total, series_ok, "
+                    "series_failed, events_new, events_changed, events_retracted, started_at) "
+                    "VALUES ('old', 'scan', 'running', 0, 0, 0, 0, 0, 0, :t)"
+                ),
+                {"t": T0},
+            )
+            conn.execute(
+                sa.text(
+                    "INSERT INTO series_models (series_id, model_json, arima_order, sigma2, nobs, "
+                    "fitted_at, watermark) VALUES ('s', '{}', '(1,0,0)(0,0,0,0)', 1.0, 10, :t, 'w')"
+                ),
+                {"t": T0},
+            )
+            with pytest.raises(sa.exc.IntegrityError), conn.begin_nested():
+                conn.execute(sa.text("UPDATE scan_runs SET status = 'abandoned'"))
+        migrate(engine)
+        assert persist.load_coverage(engine) == {"s": persist.Coverage(None, "w", None)}
+        assert persist.close_stale_runs(engine, "new", at=T0) == ["old"]
+        runs = table_snapshot(engine)["scan_runs"]
+        assert [(r[0], r[4]) for r in runs] == [("old", "abandoned")]
+        assert "closed by run new" in runs[0][-1]
+        with engine.connect() as conn:
+            assert set(sa.inspect(conn).get_view_names()) == VIEW_NAMES
+        _alembic(engine, "downgrade", "0002")
+        with engine.connect() as conn:
+            assert conn.execute(sa.text("SELECT status FROM scan_runs")).scalar() == "failed"
+            assert "run_locks" not in sa.inspect(conn).get_table_names()
+            assert conn.execute(sa.text("SELECT watermark FROM series_models")).scalar() == "w"
     finally:
         engine.dispose()
 
@@ -780,14 +826,56 @@ def test_migrations_folder_is_beside_the_package() -> None:
 
 def test_prefect_wrappers_retry_operational_errors_only() -> None:
     for wrapper in (persist.write_events_task, persist.save_models_task, persist.finish_run_task):
-        assert wrapper.retries == 3
-        assert wrapper.retry_delay_seconds == [1, 2, 4]
+        assert wrapper.retries == 4
+        assert wrapper.retry_delay_seconds == [1, 2, 4, 8]
         assert wrapper.cache_policy is NO_CACHE
     should_retry = persist.write_events_task.retry_condition_fn
     operational = sa.exc.OperationalError("INSERT", {}, Exception("server closed the connection"))
     assert should_retry(None, None, Failed(data=operational)) is True
-    assert should_retry(None, None, Failed(data=SourceError("database down"))) is True
+    down = DatabaseUnavailableError("database down")
+    assert should_retry(None, None, Failed(data=down)) is True
+    assert should_retry(None, None, Failed(data=SourceError("no such file"))) is False
     assert should_retry(None, None, Failed(data=ConfigError("bad triage state"))) is False
+
+
+def test_retry_transient_retries_database_errors_with_bounded_back_off() -> None:
+    waits: list[float] = []
+    lines: list[str] = []
+    calls = iter(
+        [
+            sa.exc.OperationalError("INSERT", {}, Exception("server closed the connection")),
+            DatabaseUnavailableError("cannot open database"),
+            "written",
+        ]
+    )
+
+    def flaky() -> str:
+        outcome = next(calls)
+        if isinstance(outcome, Exception):
+            raise outcome
+        return outcome
+
+    done = persist.retry_transient(flaky, what="writing", log=lines.append, sleep=waits.append)
+    assert done == "written" and waits == [1.0, 2.0] and len(lines) == 2
+    assert "try 1 of 5" in lines[0] and "server closed the connection" in lines[0]
+    # Bounded: five tries, four waits, then the error.
+    waits.clear()
+
+    def down() -> None:
+        raise sa.exc.OperationalError("INSERT", {}, Exception("connection refused"))
+
+    with pytest.raises(sa.exc.OperationalError):
+        persist.retry_transient(down, what="writing", sleep=waits.append)
+    assert waits == [1.0, 2.0, 4.0, 8.0]
+    # Bad input is never retried.
+    waits.clear()
+
+    def bad() -> None:
+        raise ConfigError("bad triage state")
+
+    with pytest.raises(ConfigError):
+        persist.retry_transient(bad, what="writing", sleep=waits.append)
+    assert waits == []
 
 
 def test_write_summaries_add_up() -> None:
