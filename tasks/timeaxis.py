@@ -575,7 +575,7 @@ def _stamps(series_id: str, parsed: pd.Series, texts: tuple[str, ...] | None) ->
     zone = None if tz is None else str(tz)
     utc = parsed if tz is None else parsed.dt.tz_convert("UTC").dt.tz_localize(None)
     try:
-        ns = utc.to_numpy(dtype="datetime64[ns]").view("i8")
+        ns = utc.dt.as_unit("ns").to_numpy().view("i8")  # as_unit checks the range
     except (OverflowError, ValueError, pd.errors.OutOfBoundsDatetime):
         raise TimestampError(
             series_id, "timestamps fall outside the years 1677-2262 that nanosecond times hold"
