@@ -516,7 +516,11 @@ def parse_times(
     raw = pd.Series(values).reset_index(drop=True)
 
     # Step 1: missing stamps.
-    text = raw.astype(str).str.strip() if raw.dtype == object or _is_text(raw) else None
+    objects = raw.dtype == object
+    all_text = pd.api.types.is_string_dtype(raw.dtype) and (
+        not objects or bool(raw.map(lambda v: isinstance(v, str)).all())
+    )
+    text = raw.astype(str).str.strip() if objects or all_text else None
     missing = raw.isna().to_numpy() | (
         text.str.lower().isin(_MISSING_TEXT).to_numpy() if text is not None else False
     )
@@ -527,11 +531,11 @@ def parse_times(
             f"{int(missing.sum())} timestamp(s) are missing (first at row {first}); "
             "every row needs one",
         )
-    if raw.dtype.kind == "b" or (raw.dtype == object and raw.map(_is_bool).any()):
+    if raw.dtype.kind == "b" or (objects and not all_text and raw.map(_is_bool).any()):
         raise TimestampError(series_id, "timestamps are true/false values; give times or numbers")
 
     # Step 2: numbers.
-    numbers = _numbers(raw, text)
+    numbers = _numbers(raw, text, all_text)
     if numbers is not None:
         if not np.isfinite(numbers).all():
             raise TimestampError(series_id, "numeric timestamps must be finite")
@@ -554,7 +558,7 @@ def parse_times(
     # Step 3: date-times.
     if raw.dtype.kind == "M" or isinstance(raw.dtype, pd.DatetimeTZDtype):
         parsed, texts = raw, None
-    elif text is not None and raw.map(lambda v: isinstance(v, str)).all():
+    elif all_text:
         parsed, texts = _parse_iso(series_id, text), tuple(text)
     else:  # date-time objects (one zone, several, or mixed with text)
         parsed, texts = _parse_objects(series_id, raw), None
@@ -583,23 +587,20 @@ def _stamps(series_id: str, parsed: pd.Series, texts: tuple[str, ...] | None) ->
     return Stamps(TimeAxis(series_id, "datetime", zone), ns, texts)
 
 
-def _is_text(raw: pd.Series) -> bool:
-    return pd.api.types.is_string_dtype(raw.dtype) and not isinstance(raw.dtype, pd.DatetimeTZDtype)
-
-
 def _is_bool(value: Any) -> bool:
     return isinstance(value, bool | np.bool_)
 
 
-def _numbers(raw: pd.Series, text: pd.Series | None) -> np.ndarray | None:
+def _numbers(raw: pd.Series, text: pd.Series | None, all_text: bool) -> np.ndarray | None:
     """The stamps as float64 when they are all numbers (or all-number text), else None."""
     if raw.dtype.kind in "iuf":
         return raw.to_numpy(dtype=np.float64)
     if text is None:
         return None
-    if raw.map(lambda v: isinstance(v, int | float | np.integer | np.floating | Decimal)).all():
+    number = (int, float, np.integer, np.floating, Decimal)
+    if not all_text and raw.map(lambda v: isinstance(v, number)).all():
         return raw.to_numpy(dtype=np.float64)
-    if text.str.fullmatch(_NUMBER).all():
+    if all_text and text.str.fullmatch(_NUMBER).all():
         return pd.to_numeric(text).to_numpy(dtype=np.float64)
     return None
 
