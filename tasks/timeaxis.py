@@ -55,7 +55,6 @@ from __future__ import annotations
 
 import math
 import re
-import zoneinfo
 from dataclasses import dataclass
 from datetime import date, datetime, timedelta
 from decimal import Decimal
@@ -73,6 +72,7 @@ __all__ = [
     "Stamps",
     "TimeAxis",
     "TimeKind",
+    "check_zone",
     "parse_instant",
     "parse_step",
     "parse_times",
@@ -171,6 +171,20 @@ def utc_datetime(value: Any) -> datetime | None:
     return None if isinstance(got, float) else got.to_pydatetime(warn=False)
 
 
+def check_zone(zone: Any) -> str:
+    """A time zone name as given, or ConfigError: an IANA name, ``"UTC"`` or ``"UTC+02:00"``."""
+    try:
+        if not isinstance(zone, str):
+            raise TypeError(zone)
+        pd.Timestamp(0, tz="UTC").tz_convert(zone)
+    except (LookupError, ValueError, TypeError):
+        raise ConfigError(
+            f"time zone {zone!r} is unknown; give an IANA name such as 'Europe/Paris', "
+            "'UTC' or a fixed offset such as 'UTC+02:00'"
+        ) from None
+    return zone
+
+
 def parse_step(value: Any, *, kind: TimeKind) -> float:
     """A grid step or window width: seconds on a datetime axis, index units on a numeric one.
 
@@ -238,13 +252,7 @@ class TimeAxis:
         if self.zone is not None:
             if self.kind == "numeric":
                 raise ConfigError("a numeric axis has no time zone; give zone=None")
-            try:
-                pd.Timestamp(0, tz="UTC").tz_convert(self.zone)
-            except (ValueError, TypeError, KeyError, zoneinfo.ZoneInfoNotFoundError):
-                raise ConfigError(
-                    f"time zone {self.zone!r} is unknown; give an IANA name such as "
-                    "'Europe/Paris', 'UTC' or a fixed offset such as 'UTC+02:00'"
-                ) from None
+            check_zone(self.zone)
 
     @classmethod
     def of_index(cls, series_id: str, index: pd.Index) -> TimeAxis:
@@ -507,12 +515,7 @@ def parse_times(
     if epoch_unit is not None and epoch_unit not in EPOCH_UNITS:
         raise ConfigError(f"epoch unit {epoch_unit!r} is not one of {list(EPOCH_UNITS)}")
     if naive_zone is not None:
-        try:
-            zoneinfo.ZoneInfo(naive_zone)
-        except (zoneinfo.ZoneInfoNotFoundError, ValueError, TypeError):
-            raise ConfigError(
-                f"time zone {naive_zone!r} is unknown; give an IANA name such as 'Europe/Paris'"
-            ) from None
+        check_zone(naive_zone)
     raw = pd.Series(values).reset_index(drop=True)
 
     # Step 1: missing stamps.

@@ -29,7 +29,10 @@ from changekind.tasks.errors import ConfigError, TimestampError
 from changekind.tasks.fetch import SeriesWindow, open_source, read_series, read_windows
 from changekind.tasks.types import Event, FittedModel
 
-HOUR = pd.Timedelta("1h")
+
+def fails_today(raises: type[BaseException], why: str) -> pytest.MarkDecorator:
+    """Strict xfail pinned to the failure the scenario shows today."""
+    return pytest.mark.xfail(strict=True, raises=raises, reason=why)
 
 
 def event(series_id: str, when: str, kind: str = "LS", effect: float = 5.0, **kw) -> Event:
@@ -70,10 +73,9 @@ def white_noise_model(series_id: str, **kw) -> FittedModel:
     return FittedModel(**values)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    raises=AssertionError,
-    reason="detect._grid_offsets reads a naive event time in the index's zone "
+@fails_today(
+    AssertionError,
+    "detect._grid_offsets reads a naive event time in the index's zone "
     "(batch, persist and incidents read it as UTC)",
 )
 def test_a_known_event_with_a_naive_time_is_placed_at_its_utc_instant():
@@ -87,10 +89,9 @@ def test_a_known_event_with_a_naive_time_is_placed_at_its_utc_instant():
     assert first == datetime(2030, 1, 10, 12, tzinfo=UTC)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    raises=AssertionError,
-    reason="detect._seasonal_for reads a naive model anchor in the index's zone: the "
+@fails_today(
+    AssertionError,
+    "detect._seasonal_for reads a naive model anchor in the index's zone: the "
     "profile is applied an hour late and clean points become events",
 )
 def test_a_naive_anchor_keeps_the_seasonal_profile_in_phase():
@@ -112,10 +113,9 @@ def test_a_naive_anchor_keeps_the_seasonal_profile_in_phase():
     assert screen_new_points(naive, series, 48).events == ()
 
 
-@pytest.mark.xfail(
-    strict=True,
-    raises=AssertionError,
-    reason="flows.pipeline._bound turns an aware watermark into UTC wall time without a "
+@fails_today(
+    AssertionError,
+    "flows.pipeline._bound turns an aware watermark into UTC wall time without a "
     "zone, which fetch then reads in the source's declared zone",
 )
 def test_a_warm_read_starts_its_context_at_the_same_instant_whatever_the_source_zone(
@@ -153,10 +153,9 @@ def test_a_warm_read_starts_its_context_at_the_same_instant_whatever_the_source_
     assert first_read == ["2030-01-09T13:00:00+00:00"] * 2
 
 
-@pytest.mark.xfail(
-    strict=True,
-    raises=AssertionError,
-    reason="fetch reads naive stamps in the declared zone but hands on their naive text; "
+@fails_today(
+    AssertionError,
+    "fetch reads naive stamps in the declared zone but hands on their naive text; "
     "persist stores that label as UTC, an hour away from the row it names",
 )
 def test_an_event_from_a_zoned_source_is_stored_at_the_instant_of_its_row(tmp_path: Path):
@@ -182,10 +181,9 @@ def test_an_event_from_a_zoned_source_is_stored_at_the_instant_of_its_row(tmp_pa
     assert again["timestamp"].iloc[0] == rows["timestamp"].iloc[60]
 
 
-@pytest.mark.xfail(
-    strict=True,
-    raises=AssertionError,
-    reason="batch._position matches an event time to the grid exactly while detect rounds "
+@fails_today(
+    AssertionError,
+    "batch._position matches an event time to the grid exactly while detect rounds "
     "to the nearest step: a jittered provisional event is never examined again",
 )
 def test_a_provisional_event_at_a_jittered_time_is_examined_again():
@@ -206,10 +204,9 @@ def test_a_provisional_event_at_a_jittered_time_is_examined_again():
     assert outcome.events == ()
 
 
-@pytest.mark.xfail(
-    strict=True,
-    raises=pytest.fail.Exception,
-    reason="regularize falls back to pandas' per-element format guessing: "
+@fails_today(
+    pytest.fail.Exception,
+    "regularize falls back to pandas' per-element format guessing: "
     "dd/mm text is read month-first where it can be and day-first where it cannot",
 )
 def test_slashed_dates_are_refused_not_guessed():
@@ -219,11 +216,9 @@ def test_slashed_dates_are_refused_not_guessed():
         regularize("s", text, np.random.default_rng(0).normal(size=len(text)))
 
 
-@pytest.mark.xfail(
-    strict=True,
-    raises=TimestampError,
-    reason="regularize refuses text that is all numbers; fetch and the report read it as "
-    "a numeric axis",
+@fails_today(
+    TimestampError,
+    "regularize refuses text that is all numbers; fetch and the report read it as a numeric axis",
 )
 def test_sample_numbers_written_as_text_are_a_numeric_axis():
     text = np.array([str(i) for i in range(48)], dtype=object)
@@ -231,10 +226,9 @@ def test_sample_numbers_written_as_text_are_a_numeric_axis():
     assert not series.is_datetime and series.label(5) == "5"
 
 
-@pytest.mark.xfail(
-    strict=True,
-    raises=pytest.fail.Exception,
-    reason="regularize converts with to_numpy(dtype='datetime64[ns]'), which wraps times "
+@fails_today(
+    pytest.fail.Exception,
+    "regularize converts with to_numpy(dtype='datetime64[ns]'), which wraps times "
     "past 2262 silently (2300 becomes 1715)",
 )
 def test_times_beyond_the_nanosecond_range_are_refused():
@@ -243,10 +237,9 @@ def test_times_beyond_the_nanosecond_range_are_refused():
         regularize("s", text, np.random.default_rng(0).normal(size=30))
 
 
-@pytest.mark.xfail(
-    strict=True,
-    raises=TypeError,
-    reason="flows.scan.split_span compares an aware start with a naive end: pandas' "
+@fails_today(
+    TypeError,
+    "flows.scan.split_span compares an aware start with a naive end: pandas' "
     "TypeError instead of the naive end read as UTC",
 )
 def test_a_backfill_span_may_mix_a_zoned_start_and_a_naive_end():
@@ -259,10 +252,9 @@ def test_a_backfill_span_may_mix_a_zoned_start_and_a_naive_end():
     ]
 
 
-@pytest.mark.xfail(
-    strict=True,
-    raises=pytest.fail.Exception,
-    reason="flows.scan.split_span reads '05/03/2030' with pd.Timestamp (as 3 May)",
+@fails_today(
+    pytest.fail.Exception,
+    "flows.scan.split_span reads '05/03/2030' with pd.Timestamp (as 3 May)",
 )
 def test_a_backfill_span_in_an_ambiguous_form_is_refused():
     from changekind.flows.scan import split_span

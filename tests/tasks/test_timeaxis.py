@@ -461,6 +461,8 @@ def test_bad_steps(value, kind, match):
         (("s", "weekly"), "time kind 'weekly'"),
         (("s", "numeric", "UTC"), "a numeric axis has no time zone"),
         (("s", "datetime", "Mars/Olympus"), "time zone 'Mars/Olympus' is unknown"),
+        (("s", "datetime", ""), "time zone '' is unknown"),
+        (("s", "datetime", 5), "time zone 5 is unknown"),  # pandas would read 5 s east of UTC
     ],
 )
 def test_bad_axes(args, match):
