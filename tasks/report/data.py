@@ -27,6 +27,7 @@ import pandas as pd
 import sqlalchemy as sa
 from sqlalchemy.exc import DBAPIError
 
+from changekind.tasks import persist
 from changekind.tasks.errors import ConfigError, ModelError, SeriesError, SourceError
 from changekind.tasks.fetch import SourceSpec, read_series
 from changekind.tasks.report.files import PICTURE_PATTERN, write_report
@@ -187,8 +188,6 @@ def _check_sqlite_file(db: str) -> None:
 
 
 def _read_events(db: str, **selection) -> pd.DataFrame:
-    from changekind.tasks import persist  # imports Prefect (its task wrappers)
-
     _check_sqlite_file(db)
     try:
         return persist.read_events(db, **selection)
@@ -232,8 +231,6 @@ def stored_models(
     db: str, series_ids: Sequence[str]
 ) -> tuple[dict[str, FittedModel], dict[str, str]]:
     """Stored models by series; a damaged one is left out with the reason."""
-    from changekind.tasks import persist  # imports Prefect (its task wrappers)
-
     try:
         return persist.load_models(db, list(series_ids)), {}
     except ModelError:

@@ -142,7 +142,7 @@ def test_a_locked_sqlite_file_mid_scan_is_survived(prefect_server, source, tmp_p
     path = tmp_path / "locked.db"
     db = f"sqlite:///{path}"
     # Writers wait 0.5 s for the lock instead of 30, so the lock outlasts the wait.
-    monkeypatch.setattr(persist, "SQLITE_BUSY_TIMEOUT_SECONDS", 0.5)
+    monkeypatch.setattr(persist.engines, "SQLITE_BUSY_TIMEOUT_SECONDS", 0.5)
     held = []
 
     def hold() -> None:
@@ -173,8 +173,8 @@ def test_a_database_gone_for_good_fails_the_run_with_exit_3_and_the_next_run_clo
     src = write_source(fleet, tmp_path / "src")
     path = tmp_path / "gone.db"
     db = f"sqlite:///{path}"
-    monkeypatch.setattr(persist, "SQLITE_BUSY_TIMEOUT_SECONDS", 0.2)
-    monkeypatch.setattr(persist, "RETRY_DELAYS", (0.2, 0.2))
+    monkeypatch.setattr(persist.engines, "SQLITE_BUSY_TIMEOUT_SECONDS", 0.2)
+    monkeypatch.setattr(persist.retries, "RETRY_DELAYS", (0.2, 0.2))
     stop, locked = threading.Event(), threading.Event()
 
     def hold() -> None:  # a writer that never lets go

@@ -27,13 +27,16 @@ from changekind.tasks.fetch import (
     ColumnMap,
     SeriesWindow,
     SourceSpec,
+    arrow,
     iter_batches,
     iter_window_batches,
     list_series,
     open_source,
     read_series,
     read_windows,
+    reading,
     split_batches,
+    sql,
 )
 
 N_SERIES = 12
@@ -303,7 +306,7 @@ def test_timestamps_keep_the_source_representation(source):
 
 def test_parquet_pushdown_reads_only_the_requested_rows(tmp_path: Path, monkeypatch):
     spec = open_source(write_parquet_files(tmp_path, FLEET))
-    seen = _count_scanned(monkeypatch, fetch._ArrowReader)
+    seen = _count_scanned(monkeypatch, arrow._ArrowReader)
     ids, start, end = ["pump-03", "pump-08"], "2031-05-02T00:00", "2031-05-02T10:00"
     got = read_series(spec, ids, start=start, end=end)
     expected = oracle(FLEET, ids, _utc(start), _utc(end))
@@ -315,7 +318,7 @@ def test_parquet_pushdown_reads_only_the_requested_rows(tmp_path: Path, monkeypa
 
 def test_csv_filters_series_while_streaming_and_time_in_memory(tmp_path: Path, monkeypatch):
     spec = open_source(write_csv_file(tmp_path, FLEET))
-    seen = _count_scanned(monkeypatch, fetch._ArrowReader)
+    seen = _count_scanned(monkeypatch, arrow._ArrowReader)
     got = read_series(spec, ["pump-03"], start="2031-05-02T00:00", end="2031-05-02T10:00")
     assert len(got) == 10
     # Text timestamps cannot be compared in the scan: every row of the series.
@@ -425,7 +428,7 @@ def test_read_windows_matches_per_series_filter(source):
 
 def test_one_condition_per_window_gives_the_same_rows(source, monkeypatch):
     wins, oracle_windows = varied_windows()
-    monkeypatch.setattr(fetch, "MAX_FILTER_GROUPS", 10**6)
+    monkeypatch.setattr(reading, "MAX_FILTER_GROUPS", 10**6)
     assert_rows(read_windows(source, wins), oracle(FLEET, windows=oracle_windows))
 
 
@@ -485,10 +488,10 @@ def _count_scanned(monkeypatch, reader_class) -> list[int]:
 def test_iter_batches_reads_one_batch_at_a_time(kind, tmp_path: Path, monkeypatch, request):
     if kind == "sqlite":
         spec = open_source(request.getfixturevalue("sqlite_db"), table="pump_readings")
-        seen = _count_scanned(monkeypatch, fetch._SqlReader)
+        seen = _count_scanned(monkeypatch, sql._SqlReader)
     else:
         spec = open_source(write_parquet_hive(tmp_path, FLEET))
-        seen = _count_scanned(monkeypatch, fetch._ArrowReader)
+        seen = _count_scanned(monkeypatch, arrow._ArrowReader)
     batches = iter_batches(spec, None, batch_size=5, start="2031-05-02")
     assert seen == []  # nothing read before the first batch is asked for
     first = next(batches)
@@ -632,8 +635,8 @@ def test_date_columns_in_parquet_and_sql(tmp_path: Path, monkeypatch):
     start, end = pd.Timestamp("2031-05-03T12:00"), pd.Timestamp("2031-05-09")
     keep = (days >= start) & (days < end)
     for spec, reader in [
-        (open_source(tmp_path / "daily.parquet"), fetch._ArrowReader),
-        (open_source(url, table="daily"), fetch._SqlReader),
+        (open_source(tmp_path / "daily.parquet"), arrow._ArrowReader),
+        (open_source(url, table="daily"), sql._SqlReader),
     ]:
         assert spec.time_kind == "datetime"
         seen = _count_scanned(monkeypatch, reader)
@@ -845,7 +848,7 @@ def test_bad_sources_raise_one_clear_error(case, message, tmp_path: Path, sqlite
 
 
 def test_bad_time_past_the_sample_fails_at_read(tmp_path: Path, monkeypatch):
-    monkeypatch.setattr(fetch, "SAMPLE_ROWS", 5)
+    monkeypatch.setattr(arrow, "SAMPLE_ROWS", 5)
     path = tmp_path / "late.csv"
     good = "".join(f"a,2031-05-01T{h:02d}:00,{h}\n" for h in range(24))
     path.write_text("series_id,timestamp,value\n" + good + "a,not a time,5\n")

@@ -28,6 +28,7 @@ from alembic.script import ScriptDirectory
 from prefect.cache_policies import NO_CACHE
 from prefect.states import Failed
 
+from changekind.flows import steps
 from changekind.tasks import persist
 from changekind.tasks.errors import (
     ConfigError,
@@ -817,7 +818,7 @@ def test_operational_errors_during_writes_propagate(sqlite_url: str) -> None:
 
 def test_migrations_folder_is_beside_the_package() -> None:
     path = migrations_dir()
-    assert path == Path(persist.__file__).resolve().parent.parent / "infra" / "migrations"
+    assert path == Path(persist.__file__).resolve().parents[2] / "infra" / "migrations"
     assert (path / "versions" / "0001_initial_schema.py").is_file()
 
 
@@ -825,11 +826,11 @@ def test_migrations_folder_is_beside_the_package() -> None:
 
 
 def test_prefect_wrappers_retry_operational_errors_only() -> None:
-    for wrapper in (persist.write_events_task, persist.save_models_task, persist.finish_run_task):
+    for wrapper in (steps.write_events_task, steps.save_models_task, steps.finish_run_task):
         assert wrapper.retries == 4
         assert wrapper.retry_delay_seconds == [1, 2, 4, 8]
         assert wrapper.cache_policy is NO_CACHE
-    should_retry = persist.write_events_task.retry_condition_fn
+    should_retry = steps.write_events_task.retry_condition_fn
     operational = sa.exc.OperationalError("INSERT", {}, Exception("server closed the connection"))
     assert should_retry(None, None, Failed(data=operational)) is True
     down = DatabaseUnavailableError("database down")
