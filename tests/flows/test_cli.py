@@ -24,7 +24,8 @@ from scipy.signal import lfilter
 from statsmodels.tsa.arima.model import ARIMA
 from typer.testing import CliRunner
 
-from changekind.flows.cli import analyse_inputs, app
+from changekind.flows.cli import app
+from changekind.flows.cli.detect import analyse_inputs
 from changekind.flows.inputs import SeriesInput, read_series_file
 from changekind.tasks.types import EVENT_TYPES
 
