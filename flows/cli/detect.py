@@ -32,10 +32,11 @@ from changekind.flows.cli.app import (
     out_console,
 )
 from changekind.flows.cli.output import event_records, print_result
-from changekind.flows.inputs import SeriesInput, read_series_file
 from changekind.tasks.decompose import regularize
 from changekind.tasks.detect import analyse_series
 from changekind.tasks.errors import ChangekindError, SeriesError, SourceError
+from changekind.tasks.fetch.inputs import SeriesInput, read_series_file
+from changekind.tasks.fetch.values import SourceProblem
 from changekind.tasks.types import DetectionResult, Event
 from changekind.tasks.window import detect_windowed, parse_window
 
@@ -303,10 +304,14 @@ def detect(
         except ChangekindError as exc:
             raise fail_usage(str(exc)) from None
         worker = functools.partial(_windowed_worker, window=window)
+    problems: list[SourceProblem] = []
     try:
-        items = read_series_file(input)
+        items = read_series_file(input, problems=problems)
     except SourceError as exc:
         raise fail_usage(str(exc)) from None
+    err = err_console()
+    for problem in problems:  # skipped files and rows of a folder, as scan records them
+        err.print(f"changekind: {problem.describe()}", markup=False)
     periods = tuple(season) if season else None
     outcomes = _run_with_progress(
         items, periods=periods, critical=critical, label="analysing", worker=worker

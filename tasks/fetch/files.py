@@ -1,8 +1,8 @@
 """Which kind of source a location is, and the data files a folder holds.
 
-One rule for every command: a ``.parquet``/``.parq``/``.pq`` or ``.csv`` file,
-a folder of one of those formats (names starting with '.' or '_' skipped), or a
-database URL.
+One rule for every command (``detect`` and the fleet commands alike): a
+``.parquet``/``.parq``/``.pq`` or ``.csv``/``.csv.gz`` file, a folder of files of
+one of those formats (names starting with '.' or '_' skipped), or a database URL.
 """
 
 from __future__ import annotations
@@ -10,6 +10,7 @@ from __future__ import annotations
 import os
 import re
 from pathlib import Path
+from typing import Literal
 
 from changekind.tasks.errors import SourceError
 from changekind.tasks.fetch.values import CSV_SUFFIXES, PARQUET_SUFFIXES, SourceKind
@@ -17,6 +18,8 @@ from changekind.tasks.fetch.values import CSV_SUFFIXES, PARQUET_SUFFIXES, Source
 # ---------------------------------------------------------------------------
 # Kind inference
 # ---------------------------------------------------------------------------
+
+FileKind = Literal["parquet", "csv"]
 
 _URL = re.compile(r"^[A-Za-z][A-Za-z0-9+.\-]*://")
 
@@ -31,11 +34,9 @@ def _infer_kind(location: str) -> SourceKind:
             "of them, or a database URL such as sqlite:///metrics.db"
         )
     if path.is_file():
-        name = path.name.lower()
-        if name.endswith(PARQUET_SUFFIXES):
-            return "parquet"
-        if name.endswith(CSV_SUFFIXES):
-            return "csv"
+        kind = file_format(path)
+        if kind is not None:
+            return kind
         raise SourceError(
             f"source file {location!r} is neither .parquet nor .csv; convert it or rename it "
             "after its format"
@@ -56,6 +57,16 @@ def _infer_kind(location: str) -> SourceKind:
         f"directory {location + os.sep!r} holds no .parquet or .csv files; point at the "
         "directory the data was written to"
     )
+
+
+def file_format(path: Path) -> FileKind | None:
+    """``"parquet"`` or ``"csv"`` by the file's suffix (module docstring); None otherwise."""
+    name = path.name.lower()
+    if name.endswith(PARQUET_SUFFIXES):
+        return "parquet"
+    if name.endswith(CSV_SUFFIXES):
+        return "csv"
+    return None
 
 
 def _data_files(root: Path, suffixes: tuple[str, ...]) -> list[str]:

@@ -25,7 +25,7 @@ Span = pd.Timedelta | timedelta | np.timedelta64 | str | float | int
 
 LONG_COLUMNS: tuple[str, str, str] = ("series_id", "timestamp", "value")
 PARQUET_SUFFIXES: tuple[str, ...] = (".parquet", ".parq", ".pq")
-CSV_SUFFIXES: tuple[str, ...] = (".csv",)
+CSV_SUFFIXES: tuple[str, ...] = (".csv", ".csv.gz")
 TIMESTAMP_UNITS: tuple[str, ...] = ("s", "ms", "us", "ns")
 SAMPLE_ROWS = 1000
 """Rows looked at when deciding what a text timestamp column holds."""

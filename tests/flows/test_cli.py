@@ -26,7 +26,8 @@ from typer.testing import CliRunner
 
 from changekind.flows.cli import app
 from changekind.flows.cli.detect import analyse_inputs
-from changekind.flows.inputs import SeriesInput, read_series_file
+from changekind.tasks.fetch import open_source, read_series
+from changekind.tasks.fetch.inputs import SeriesInput, read_series_file
 from changekind.tasks.types import EVENT_TYPES
 
 N, T_SHIFT, PHI, SHIFT = 300, 150, 0.5, 8.0  # shift of 8 innovation sds at t = 150
@@ -432,3 +433,28 @@ def test_merged_duplicate_timestamps_are_reported(tmp_path):
     as_json = runner.invoke(app, ["detect", str(path), "--json"])
     assert "3 duplicate timestamp(s)" in as_json.stderr
     json.loads(as_json.stdout)  # stdout stays pure JSON
+
+
+def test_detect_and_scan_accept_the_same_gzip_csv_files_and_folders(tmp_path):
+    # One suffix rule for every command (tasks/fetch/files.py): .csv.gz files,
+    # and folders of them, are read by detect and by the fleet reader alike.
+    y = _shifted_series()
+    stamps = pd.date_range("2030-01-01", periods=len(y), freq="h").strftime("%Y-%m-%dT%H:%M")
+    frame = pd.DataFrame({"series_id": "disk-1", "timestamp": stamps, "value": y})
+    frame.to_csv(tmp_path / "one.csv.gz", index=False)
+    folder = tmp_path / "fleet"
+    folder.mkdir()
+    frame.iloc[:150].to_csv(folder / "a.csv.gz", index=False)
+    frame.iloc[150:].to_csv(folder / "b.csv.gz", index=False)
+    for path in (tmp_path / "one.csv.gz", folder):
+        spec = open_source(path)
+        assert spec.kind == "csv"
+        read = read_series(spec, ["disk-1"])
+        assert read["timestamp"].tolist() == stamps.tolist()
+        np.testing.assert_array_equal(read["value"].to_numpy(), y)
+    by_file = runner.invoke(app, ["detect", str(tmp_path / "one.csv.gz"), "--json"])
+    by_folder = runner.invoke(app, ["detect", str(folder), "--json"])
+    assert by_file.exit_code == 0 and by_folder.exit_code == 0, by_file.output + by_folder.output
+    assert json.loads(by_file.stdout) == json.loads(by_folder.stdout)
+    (shift,) = [e for e in json.loads(by_file.stdout) if e["event_type"] == "LS"]
+    assert shift["event_time"] == stamps[len(y) // 2]

@@ -542,7 +542,7 @@ def test_drill_command_without_a_source_says_how_to_give_one(monkeypatch):
 
 
 def test_detect_helpers_for_the_command_line(raw):
-    from changekind.flows.inputs import SeriesInput
+    from changekind.tasks.fetch.inputs import SeriesInput
 
     day = raw[(raw["timestamp"] >= START + pd.Timedelta(days=1))
               & (raw["timestamp"] < START + pd.Timedelta(days=1, hours=16))]
