@@ -17,7 +17,12 @@ from contextvars import ContextVar
 from dataclasses import dataclass, field, replace
 
 import pandas as pd
+from prefect.futures import as_completed
+from prefect.runtime import flow_run
+from prefect.task_runners import ProcessPoolTaskRunner, ThreadPoolTaskRunner
 
+from changekind.flows.processes import die_with_parent
+from changekind.flows.steps import run_batch_task, start_worker_task
 from changekind.tasks import persist
 from changekind.tasks.batch import (
     AnalysisOptions,
@@ -66,8 +71,6 @@ class RunSummary:
 def current_run_id() -> str:
     """The Prefect flow-run id when inside a flow run, else a fresh UUID."""
     try:
-        from prefect.runtime import flow_run
-
         run = flow_run.id
     except Exception:  # outside a flow run
         run = None
@@ -82,17 +85,12 @@ def make_task_runner(runner: str, *, workers: int, dask_address: str | None = No
     ``dask_address`` (a local cluster of ``workers`` processes when None).
     """
     if runner == "threads":
-        from prefect.task_runners import ThreadPoolTaskRunner
-
         return ThreadPoolTaskRunner(max_workers=workers)
     if runner == "processes":
-        from prefect.task_runners import ProcessPoolTaskRunner
-
-        from changekind.flows.processes import die_with_parent
-
         # Workers end with the run's process, however it ends (flows/processes.py).
         return ProcessPoolTaskRunner(max_workers=workers, initializer=die_with_parent)
     if runner == "dask":
+        # Deliberately here: prefect_dask loads Dask (seconds), for Dask runs only.
         from prefect_dask import DaskTaskRunner
 
         if dask_address:
@@ -105,8 +103,6 @@ def make_task_runner(runner: str, *, workers: int, dask_address: str | None = No
 
 def start_workers(workers: int) -> list:
     """Submit one :func:`~changekind.tasks.batch.start_worker` per worker; wait with ``.wait()``."""
-    from changekind.tasks.batch import start_worker_task
-
     return [start_worker_task.submit() for _ in range(max(1, workers))]
 
 
@@ -286,10 +282,6 @@ def execute(
     source the batches could not read are recorded with their batch and
     appended to ``problems``.
     """
-    from prefect.futures import as_completed
-
-    from changekind.tasks.batch import run_batch_task
-
     reach = reach or {}
     groups: dict[str | None, list[SeriesWork]] = {}
     for w in works:

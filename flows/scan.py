@@ -23,6 +23,7 @@ from pathlib import Path
 import pandas as pd
 from prefect import flow, get_run_logger
 
+from changekind.flows.artifacts import publish_run_artifacts
 from changekind.flows.pipeline import (
     RunSummary,
     _bound,
@@ -37,8 +38,9 @@ from changekind.flows.pipeline import (
 )
 from changekind.flows.processes import stop_children_with_this_process
 from changekind.flows.settings import RunOptions, resolve_db
+from changekind.flows.steps import write_stored_report_task
 from changekind.tasks import persist
-from changekind.tasks.errors import ConfigError, RunBusyError
+from changekind.tasks.errors import ChangekindError, ConfigError, RunBusyError
 from changekind.tasks.fetch import ColumnMap, SourceProblem, open_source, survey_source
 from changekind.tasks.runlock import RunLock
 
@@ -269,8 +271,6 @@ def _locked_run(
         message="; ".join(notes) or None,
     )
     try:
-        from changekind.flows.artifacts import publish_run_artifacts
-
         publish_run_artifacts(summary, db=db)
     except Exception as exc:  # the run's data is written; a missing page must not fail it
         logger.warning("could not publish the run's artifacts: %s", exc)
@@ -470,9 +470,6 @@ def split_span(start: str, end: str, chunk: str, warmup: str):
 
 def _write_report(logger, db: str, spec, report_dir: str, run_id: str) -> None:
     """The run's events as an HTML report with a picture each (never fails the run)."""
-    from changekind.tasks.errors import ChangekindError
-    from changekind.tasks.report.data import write_stored_report_task
-
     try:
         written = write_stored_report_task(db, spec, Path(report_dir), run=run_id)
     except (ChangekindError, OSError) as exc:
@@ -502,8 +499,6 @@ def _span_text(value: object) -> str | None:
 
 def _last_per_series(outcomes):
     """One outcome per series: its events over all chunks; cold if fitted in any chunk."""
-    from dataclasses import replace
-
     merged: dict[str, object] = {}
     for o in outcomes:
         prev = merged.get(o.series_id)

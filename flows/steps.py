@@ -13,7 +13,8 @@ from typing import Any
 from prefect import task
 from prefect.cache_policies import NO_CACHE
 
-from changekind.tasks import persist
+from changekind.tasks import batch, persist
+from changekind.tasks.report import data as report_data
 
 
 def _retry_unless_bad_input(task_: Any, task_run: Any, state: Any) -> bool:
@@ -35,6 +36,8 @@ def _io_task(name: str, fn: Any) -> Any:
     )(fn)
 
 
+start_worker_task = task(name="start-worker")(batch.start_worker)
+run_batch_task = task(name="analyse-batch", retries=2, retry_delay_seconds=[2, 5])(batch.run_batch)
 write_events_task = _io_task("write-events", persist.write_events)
 write_batch_task = _io_task("write-batch", persist.write_batch)
 read_events_task = _io_task("read-events", persist.read_events)
@@ -47,3 +50,6 @@ finish_run_task = _io_task("finish-run", persist.finish_run)
 record_failures_task = _io_task("record-failures", persist.record_failures)
 set_triage_task = _io_task("set-triage", persist.set_triage)
 migrate_task = _io_task("migrate-db", persist.migrate)
+write_stored_report_task = task(name="write-report", retries=1, retry_delay_seconds=5)(
+    report_data.write_stored_report
+)

@@ -11,6 +11,9 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+from scipy.sparse import coo_matrix
+from scipy.sparse.csgraph import connected_components
+from scipy.special import gammainc
 
 from changekind.tasks.errors import ConfigError
 from changekind.tasks.incidents.inputs import _check_events, _Rows, _step_ns, fleet_labels
@@ -215,9 +218,6 @@ def _groups(
 
     The arrays are in canonical order (time, series id, event time).
     """
-    from scipy.sparse import coo_matrix
-    from scipy.sparse.csgraph import connected_components
-    from scipy.special import gammainc
 
     n = ts.size
     # Step 3a: pairs (i, j) of other series whose intervals overlap.

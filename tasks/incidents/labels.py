@@ -10,6 +10,7 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+from scipy.stats import hypergeom
 
 from changekind.tasks.errors import ConfigError
 from changekind.tasks.incidents.inputs import fleet_labels
@@ -67,7 +68,6 @@ def label_shares(
     ----------
     Holm, S. (1979). Scandinavian Journal of Statistics 6, 65-70.
     """
-    from scipy.stats import hypergeom  # scipy.stats is not imported with the engine
 
     _check_alpha(alpha)
     fleet = fleet_labels(labels)

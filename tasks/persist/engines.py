@@ -199,7 +199,7 @@ def migrate(db: Database = DEFAULT_URL, *, revision: str = "head") -> None:
     with the script folder from :func:`migrations_dir` (never the working
     folder).  Upgrading a database that is already at ``revision`` does nothing.
     """
-    from alembic import command
+    from alembic import command  # imported here: only migrations need Alembic
 
     # Two runs may migrate a new database at once: Alembic's context is global
     # to the process (one migration at a time here), PostgreSQL serializes on

@@ -1,4 +1,4 @@
-"""Importing the report does not import Prefect; its Prefect task is built on first use.
+"""Importing the report does not import Prefect; the flows build its Prefect task.
 
 Like ``test_detect_does_not_import_prefect`` in tests/flows/test_cli.py: a
 fresh interpreter imports every module of the package and says whether
@@ -39,11 +39,12 @@ def test_importing_every_report_module_does_not_load_prefect():
     assert int(n_modules) >= 10 and loaded == "False"
 
 
-def test_the_flows_prefect_task_is_built_on_first_use():
+def test_the_flows_run_the_report_as_a_prefect_task():
     from prefect import Task
 
+    from changekind.flows.steps import write_stored_report_task
     from changekind.tasks.report import data
 
-    task = data.write_stored_report_task
-    assert isinstance(task, Task) and task.fn is data.write_stored_report
-    assert task.name == "write-report"
+    assert isinstance(write_stored_report_task, Task)
+    assert write_stored_report_task.fn is data.write_stored_report
+    assert write_stored_report_task.name == "write-report"
