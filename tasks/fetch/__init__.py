@@ -42,11 +42,6 @@ survey and read), ``batching`` (a batch at a time).
 
 from __future__ import annotations
 
-from typing import Any
-
-import sqlalchemy as sa
-
-from changekind.tasks.errors import ConfigError, SourceError
 from changekind.tasks.fetch.batching import iter_batches, iter_window_batches, split_batches
 from changekind.tasks.fetch.reading import (
     list_series,
@@ -75,7 +70,6 @@ from changekind.tasks.fetch.values import (
     Span,
     TimeKind,
 )
-from changekind.tasks.wrappers import TaskSpec, lazy_task
 
 __all__ = [
     "CONNECT_TIMEOUT_S",
@@ -96,7 +90,6 @@ __all__ = [
     "Span",
     "TimeKind",
     "_Axis",  # tasks/window.py reads the time axis of a source (engine file; see DEVELOPERS.md)
-    "is_transient",
     "iter_batches",
     "iter_window_batches",
     "list_series",
@@ -107,48 +100,3 @@ __all__ = [
     "split_batches",
     "survey_source",
 ]
-
-
-# ---------------------------------------------------------------------------
-# Prefect tasks
-# ---------------------------------------------------------------------------
-
-_TRANSIENT = (OSError, TimeoutError, sa.exc.OperationalError, sa.exc.InterfaceError)
-
-
-def is_transient(exc: BaseException | None) -> bool:
-    """Whether a failure may pass on retry (I/O and connection errors, not bad input)."""
-    if exc is None:
-        return False
-    if isinstance(exc, SourceError | ConfigError):
-        return isinstance(exc.__cause__, _TRANSIENT)
-    return isinstance(exc, _TRANSIENT)
-
-
-def _retry_transient(task_: Any, task_run: Any, state: Any) -> bool:
-    try:
-        exc = state.result(raise_on_failure=False)
-    except Exception:  # the result cannot be loaded: retrying is the safe default
-        return True
-    return is_transient(exc) if isinstance(exc, BaseException) else True
-
-
-_IO = {
-    "retries": 3,
-    "retry_delay_seconds": [1, 2, 4],
-    "retry_condition_fn": _retry_transient,
-    # Cannot interrupt a blocking read in a worker thread; the database
-    # connection timeout (CONNECT_TIMEOUT_S) is the real guard.
-    "timeout_seconds": 900,
-}
-
-_TASKS: dict[str, TaskSpec] = {
-    "open_source_task": (open_source, {"name": "open-source", **_IO}),
-    "list_series_task": (list_series, {"name": "list-series", **_IO}),
-    "read_series_task": (read_series, {"name": "read-series", **_IO}),
-    "read_windows_task": (read_windows, {"name": "read-windows", **_IO}),
-}
-
-
-def __getattr__(name: str):
-    return lazy_task(__name__, name, _TASKS)

@@ -23,7 +23,7 @@ functions are taken to be UTC; values read back are timezone-aware UTC.
 (NULL where it is not a date-time, e.g. on numeric grids).
 
 Modules: ``schema`` (the tables), ``convert`` (values in, and the one upsert),
-``engines`` (connect, migrate), ``retries`` (transient errors), ``events``,
+``engines`` (connect, migrate), ``events``,
 ``models`` (model cache, watermarks, the batch write), ``runs`` (run records),
 ``snapshots`` (table contents, for tests).  Nothing here imports Prefect: the
 flows wrap these functions in tasks (``flows/steps.py``).
@@ -49,7 +49,6 @@ from changekind.tasks.persist.models import (
     update_watermarks,
     write_batch,
 )
-from changekind.tasks.persist.retries import RETRY_DELAYS, is_transient, retry_transient
 from changekind.tasks.persist.runs import (
     close_stale_runs,
     finish_run,
@@ -90,7 +89,6 @@ __all__ = [
     "EVENT_COLUMNS",
     "EVENT_EXTRA_COLUMNS",
     "EVENT_STATUSES",
-    "RETRY_DELAYS",
     "REVISION_CHANGES",
     "RUN_KINDS",
     "RUN_STATUSES",
@@ -108,7 +106,6 @@ __all__ = [
     "event_revisions",
     "finish_run",
     "init_db",
-    "is_transient",
     "load_coverage",
     "load_known_events",
     "load_models",
@@ -119,7 +116,6 @@ __all__ = [
     "read_events",
     "record_failures",
     "record_source_problems",
-    "retry_transient",
     "run_locks",
     "save_models",
     "scan_runs",

@@ -19,7 +19,6 @@ import pyarrow.parquet as pq
 import pytest
 import sqlalchemy as sa
 from numpy.testing import assert_array_equal
-from prefect.states import Failed
 
 from changekind.tasks import fetch
 from changekind.tasks.errors import ConfigError, SourceError
@@ -920,36 +919,6 @@ def test_spec_repr_hides_the_password():
     )
     assert "hunter2" not in repr(spec) and "hunter2" not in spec.describe
     assert "ops:***@db.example" in repr(spec)
-
-
-# ---------------------------------------------------------------------------
-# Prefect wrappers
-# ---------------------------------------------------------------------------
-
-
-def test_tasks_retry_io_failures_but_not_bad_input():
-    lost = sa.exc.OperationalError("SELECT 1", {}, Exception("server closed the connection"))
-    assert fetch._retry_transient(None, None, Failed(data=lost))
-    assert fetch._retry_transient(None, None, Failed(data=FileNotFoundError("part-3.parquet")))
-    assert not fetch._retry_transient(None, None, Failed(data=SourceError("no column 'value'")))
-    assert not fetch._retry_transient(None, None, Failed(data=ConfigError("batch size 0")))
-    try:
-        raise SourceError("cannot connect") from lost
-    except SourceError as wrapped:
-        assert fetch._retry_transient(None, None, Failed(data=wrapped))
-    for wrapper, fn in [
-        (fetch.read_series_task, read_series),
-        (fetch.read_windows_task, read_windows),
-        (fetch.list_series_task, list_series),
-        (fetch.open_source_task, open_source),
-    ]:
-        assert wrapper.fn is fn
-        assert (wrapper.retries, wrapper.retry_delay_seconds) == (3, [1, 2, 4])
-
-
-def test_read_series_task_fn_reads_like_the_function(tmp_path: Path):
-    spec = open_source(write_parquet_hive(tmp_path, FLEET))
-    assert_rows(fetch.read_series_task.fn(spec, ["pump-02"]), oracle(FLEET, ["pump-02"]))
 
 
 # ---------------------------------------------------------------------------

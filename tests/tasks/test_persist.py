@@ -25,14 +25,10 @@ from alembic.autogenerate import compare_metadata
 from alembic.config import Config
 from alembic.migration import MigrationContext
 from alembic.script import ScriptDirectory
-from prefect.cache_policies import NO_CACHE
-from prefect.states import Failed
 
-from changekind.flows import steps
 from changekind.tasks import persist
 from changekind.tasks.errors import (
     ConfigError,
-    DatabaseUnavailableError,
     ModelError,
     SourceError,
 )
@@ -820,63 +816,6 @@ def test_migrations_folder_is_beside_the_package() -> None:
     path = migrations_dir()
     assert path == Path(persist.__file__).resolve().parents[2] / "infra" / "migrations"
     assert (path / "versions" / "0001_initial_schema.py").is_file()
-
-
-# --------------------------------------------------------------------------- Prefect
-
-
-def test_prefect_wrappers_retry_operational_errors_only() -> None:
-    for wrapper in (steps.write_events_task, steps.save_models_task, steps.finish_run_task):
-        assert wrapper.retries == 4
-        assert wrapper.retry_delay_seconds == [1, 2, 4, 8]
-        assert wrapper.cache_policy is NO_CACHE
-    should_retry = steps.write_events_task.retry_condition_fn
-    operational = sa.exc.OperationalError("INSERT", {}, Exception("server closed the connection"))
-    assert should_retry(None, None, Failed(data=operational)) is True
-    down = DatabaseUnavailableError("database down")
-    assert should_retry(None, None, Failed(data=down)) is True
-    assert should_retry(None, None, Failed(data=SourceError("no such file"))) is False
-    assert should_retry(None, None, Failed(data=ConfigError("bad triage state"))) is False
-
-
-def test_retry_transient_retries_database_errors_with_bounded_back_off() -> None:
-    waits: list[float] = []
-    lines: list[str] = []
-    calls = iter(
-        [
-            sa.exc.OperationalError("INSERT", {}, Exception("server closed the connection")),
-            DatabaseUnavailableError("cannot open database"),
-            "written",
-        ]
-    )
-
-    def flaky() -> str:
-        outcome = next(calls)
-        if isinstance(outcome, Exception):
-            raise outcome
-        return outcome
-
-    done = persist.retry_transient(flaky, what="writing", log=lines.append, sleep=waits.append)
-    assert done == "written" and waits == [1.0, 2.0] and len(lines) == 2
-    assert "try 1 of 5" in lines[0] and "server closed the connection" in lines[0]
-    # Bounded: five tries, four waits, then the error.
-    waits.clear()
-
-    def down() -> None:
-        raise sa.exc.OperationalError("INSERT", {}, Exception("connection refused"))
-
-    with pytest.raises(sa.exc.OperationalError):
-        persist.retry_transient(down, what="writing", sleep=waits.append)
-    assert waits == [1.0, 2.0, 4.0, 8.0]
-    # Bad input is never retried.
-    waits.clear()
-
-    def bad() -> None:
-        raise ConfigError("bad triage state")
-
-    with pytest.raises(ConfigError):
-        persist.retry_transient(bad, what="writing", sleep=waits.append)
-    assert waits == []
 
 
 def test_write_summaries_add_up() -> None:
