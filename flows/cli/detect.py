@@ -1,7 +1,7 @@
 """``changekind detect``: every series of one input, analysed on the machine's cores.
 
 It calls the engine's pure functions directly, in a process pool: no Prefect
-flow, so no Prefect import (it costs seconds; ``tests/flows/test_cli.py``
+flow, so no Prefect import (it costs seconds; ``tests/flows/cli/test_detect.py``
 checks that ``detect`` does not load it).  ``--window`` analyses window
 summaries instead of raw points (:func:`changekind.tasks.window.detect_windowed`).
 """

@@ -86,7 +86,7 @@ Bins outside the record are left out rather than counted as empty: at the newest
 scan the future half of every window is unobserved, and counting it as empty
 halved the rate there and made chance coincidences into incidents (a busy fleet
 of 2,000 series, cut at 10:00: 13 chance members at 08:55 that way, none with
-the bins left out; tests/tasks/test_incidents.py)."""
+the bins left out; tests/tasks/incidents/test_incidents.py)."""
 
 EVENT_STATUSES: tuple[str, ...] = ("provisional", "confirmed", "retracted")
 

@@ -308,6 +308,7 @@ def _console_script() -> list[str]:
     return [str(script)] if script.exists() else [sys.executable, "-m", "changekind.flows.cli"]
 
 
+@pytest.mark.integration  # a fresh interpreter
 def test_console_script_exit_codes_and_streams(tmp_path):
     path = tmp_path / "mixed.csv"
     long_frame({"good": ar1_with_shift(14), "flat": np.full(60, 1.0)}).to_csv(path, index=False)
@@ -331,6 +332,7 @@ def test_console_script_exit_codes_and_streams(tmp_path):
     assert missing.returncode == 2 and "Traceback" not in missing.stderr
 
 
+@pytest.mark.integration  # a fresh interpreter
 def test_detect_does_not_import_prefect(tmp_path):
     path = tmp_path / "two.csv"
     long_frame({"a": ar1_with_shift(15), "b": ar1_with_shift(16)}).to_csv(path, index=False)
