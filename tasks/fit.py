@@ -543,17 +543,51 @@ def choose_d(y: np.ndarray) -> int:
 
     Notes
     -----
-    The break test is the Zivot-Andrews regression dz_t = c + g S_t +
-    b z_(t-1) + sum a_i dz_(t-i) at the best single split in mean (not the
-    minimum over all splits: cheaper, and slightly conservative), with the
-    unit root rejected when t(b) < -4.80.
+    1. KPSS does not reject level stationarity: d = 0.
+    2. The Zivot-Andrews regression dz_t = c + g S_t + b z_(t-1) +
+       sum a_i dz_(t-i) at the best single split in mean (cheap, slightly
+       conservative) rejects the unit root (t(b) < -4.80): d = 0.
+    3. Series up to ZA_MAX_NOBS points: statsmodels' ``zivot_andrews``
+       (minimum over all break points, lags by AIC) rejects at 5 %: d = 0.
+       (UKDriverDeaths, log, seasonally adjusted: step 2 gives t = -4.17,
+       step 3 -5.28, p = 0.01.)
+    4. Otherwise d = 1.
+
+    References
+    ----------
+    Zivot, E. and Andrews, D. W. K. (1992). Further evidence on the great
+    crash, the oil-price shock, and the unit-root hypothesis. Journal of
+    Business and Economic Statistics 10(3), 251-270.
     """
     z = interpolate_missing(y)
     if z.size < 12 or np.ptp(z) == 0:
         return 0
     if not _unit_root(z):
         return 0
-    return 0 if _break_unit_root_t(z) < ZA_CRITICAL else 1
+    if _break_unit_root_t(z) < ZA_CRITICAL:
+        return 0
+    if z.size <= ZA_MAX_NOBS and _zivot_andrews_rejects(z):
+        return 0
+    return 1
+
+
+ZA_MAX_NOBS = 1000
+"""Longest series given statsmodels' full Zivot-Andrews test (every break
+point, lags by AIC): it costs about 0.2 s at 500 points and 1.6 s at 1,000
+(measured here), so longer series keep the single-split test alone."""
+
+
+def _zivot_andrews_rejects(z: np.ndarray) -> bool:
+    """statsmodels' Zivot-Andrews test (break in the intercept) rejects a unit root at 5 %."""
+    from statsmodels.tsa.stattools import zivot_andrews
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        try:
+            _, pvalue, *_ = zivot_andrews(z, regression="c", autolag="AIC")
+        except (ValueError, np.linalg.LinAlgError, OverflowError):
+            return False
+    return bool(np.isfinite(pvalue) and pvalue < 0.05)
 
 
 def _break_unit_root_t(z: np.ndarray, lags: int = 2) -> float:
