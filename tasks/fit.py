@@ -547,8 +547,9 @@ def choose_d(y: np.ndarray) -> int:
     2. The Zivot-Andrews regression dz_t = c + g S_t + b z_(t-1) +
        sum a_i dz_(t-i) at the best single split in mean (cheap, slightly
        conservative) rejects the unit root (t(b) < -4.80): d = 0.
-    3. Series up to ZA_MAX_NOBS points: statsmodels' ``zivot_andrews``
-       (minimum over all break points, lags by AIC) rejects at 5 %: d = 0.
+    3. Series up to ZA_MAX_NOBS points whose levels a step explains at least
+       as well as a linear trend: statsmodels' ``zivot_andrews`` (minimum over
+       all break points, lags by AIC) rejects at 5 %: d = 0.
        (UKDriverDeaths, log, seasonally adjusted: step 2 gives t = -4.17,
        step 3 -5.28, p = 0.01.)
     4. Otherwise d = 1.
@@ -566,9 +567,31 @@ def choose_d(y: np.ndarray) -> int:
         return 0
     if _break_unit_root_t(z) < ZA_CRITICAL:
         return 0
-    if z.size <= ZA_MAX_NOBS and _zivot_andrews_rejects(z):
+    if z.size <= ZA_MAX_NOBS and _step_beats_trend(z) and _zivot_andrews_rejects(z):
         return 0
     return 1
+
+
+def _step_beats_trend(z: np.ndarray, lags: int = 2) -> bool:
+    """A step in mean explains the levels at least as well as a linear trend.
+
+    Autoregressions z_t = c + g X_t + sum a_i z_(t-i) with X a step at the best
+    split or a linear trend: the model here has no trend term, so a trending
+    series is differenced even when a break test rejects a unit root (a
+    trend-stationary series rejects it too).  Measured: simulated AR(1) with a
+    5-sigma shift +44 to +81 log-RSS units for the step, AR(0.5) plus a trend
+    -47 to -62, UKDriverDeaths (log) +0.3.
+    """
+    n = z.size
+    split = _best_split(z)
+    t = np.arange(lags, n)
+    base = [np.ones(t.size)] + [z[t - i] for i in range(1, lags + 1)]
+    rss = []
+    for extra in ((t >= split).astype(float), t.astype(float)):
+        X = np.column_stack([*base, extra])
+        r = z[t] - X @ ols(X, z[t])
+        rss.append(float(r @ r))
+    return rss[0] <= rss[1]
 
 
 ZA_MAX_NOBS = 1000
