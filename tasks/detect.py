@@ -18,7 +18,7 @@ import numpy as np
 
 from changekind.tasks.budget import DEFAULT_BUDGET, Spend, WorkBudget
 from changekind.tasks.critical import ALLOWANCE as ALPHA
-from changekind.tasks.critical import default_critical
+from changekind.tasks.critical import check_critical, default_critical, fit_tail
 from changekind.tasks.decompose import decompose, regularize
 from changekind.tasks.effects import EFFECTS
 from changekind.tasks.fit import (
@@ -102,8 +102,9 @@ def detect_events(
     model : FittedModel, optional
         Starting model (for example from the cache); chosen if absent.
     critical : float, optional
-        Critical |t|; default :func:`~changekind.tasks.critical.default_critical`
-        of the series length.
+        Critical |t| (in (1, 100]); default
+        :func:`~changekind.tasks.critical.default_critical` of the series
+        length and the residuals' tail (changekind.tasks.critical.fit_tail).
     max_outer : int, default=4
         Bound on the outer (re-estimation) loop.
     budget : WorkBudget, optional
@@ -129,7 +130,10 @@ def detect_events(
        Checked before the search and again on the events of each outer pass.
     2. Outer loop (bounded, stops when an event set repeats): residuals are
        pi(B) applied to the series under the current model (a linear filter);
-       sigma is their robust scale.
+       sigma is their robust scale.  After the first pass's search (at the
+       Gaussian critical value) the tail of the residuals without its events
+       is described (a quantile-matched Student t) and the default critical
+       value set from it and the number of tests (changekind.tasks.critical).
        a. Search: for every time and type the effect estimate
           omega(T) = sum h_k e_(T+k) / sum h_k^2 and tau = omega sqrt(sum h_k^2)
           / sigma (changekind.tasks.search); the largest |tau| above the
@@ -162,9 +166,9 @@ def detect_events(
     """
     series = decomp.series
     n = series.nobs
-    crit = default_critical(n) if critical is None else float(critical)
-    if not crit > 0:
-        raise ValueError("critical value must be positive")
+    given = check_critical(critical)
+    crit = default_critical(n) if given is None else given
+    tail = None
     spend = Spend(budget or DEFAULT_BUDGET)
     notes: list[str] = []
     patterns: list[Pattern] = []
@@ -209,6 +213,13 @@ def detect_events(
                 current = previous
                 break
         found = joint(e, w, pi, sigma, crit, found, base=_mean_pattern(current, pi))
+        if tail is None:  # the tail of the residuals without this pass's events
+            clean = e - design(found, pi, n) @ np.array([c.omega for c in found]) * w
+            # Pulses found at the Gaussian value may be the tail itself; shifts are not.
+            pulses = sum(1 for c in found if not EFFECTS[c.kind].lasting)
+            tail = fit_tail(clean[w > 0], sigma, raw=e[w > 0], removed=pulses)
+            if given is None:
+                crit = default_critical(n, tail=tail)
         spikes = [c.position for c in found if EFFECTS[c.kind].pulse_like]
         period = regular_period(spikes, n)
         if period is not None and len(patterns) < MAX_PATTERNS and period not in decomp.periods:
@@ -248,6 +259,7 @@ def detect_events(
     notes.extend(final_notes)
     final_model = replace(
         final_model,
+        tail=tail,
         periods=decomp.periods,
         profiles=tuple(tuple(float(v) for v in prof) for prof in decomp.profiles),
     )
@@ -357,6 +369,7 @@ def _final_stage(
         cands = changed
     else:
         notes.append("final stage stopped at its bound")
+    support = []
     if cands:  # the reported weights, with the TC decay refined continuously
         e_clean = e - (design(cands, pi, n) @ np.array([c.omega for c in cands])) * w
         support = weights_for(e_clean, w, pi, sigma, cands, ls_from=ls_from)

@@ -14,7 +14,7 @@ from dataclasses import replace
 import numpy as np
 import pandas as pd
 
-from changekind.tasks.critical import default_critical
+from changekind.tasks.critical import check_critical, default_critical
 from changekind.tasks.decompose import profile_at
 from changekind.tasks.effects import EFFECTS
 from changekind.tasks.fit import (
@@ -57,7 +57,8 @@ def screen_new_points(
         the context or before it); their effects are removed first, so a level
         shift found last week is not found again today.
     critical : float, optional
-        Default: :func:`default_critical` of the model's estimation length.
+        Default: :func:`~changekind.tasks.critical.default_critical` of the
+        model's estimation length and residual tail.
 
     Returns
     -------
@@ -76,7 +77,8 @@ def screen_new_points(
     n = series.nobs
     if not 0 < n_new <= n:
         raise ValueError(f"n_new must be in 1..{n}")
-    crit = default_critical(model.nobs) if critical is None else float(critical)
+    given = check_critical(critical)
+    crit = default_critical(model.nobs, tail=model.tail) if given is None else given
     y = series.values - _seasonal_for(model, series) - known_effects(model, series, known)
     params = model.param_dict
     dev = y - params.get("const", 0.0)

@@ -404,6 +404,7 @@ def weights_at(
         "LS": tau_for(EFFECTS["LS"].pattern(pi[: n - T])) if ls_ok else 0.0,
         "IO": float(seg_e[0]) / sigma,
     }
+
     def tc_tau(d: float) -> float:
         return tau_for(EFFECTS["TC"].pattern(pi[:reach], delta=d))
 

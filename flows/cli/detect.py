@@ -239,12 +239,12 @@ def report_problems(outcomes: Sequence[SeriesOutcome]) -> int:
 
 
 def _check_critical(value: float | None) -> float | None:
-    if value is not None and (not math.isfinite(value) or value <= 0):
-        raise typer.BadParameter(
-            f"{value} is not usable; give a positive number of standard errors such as 3.5 "
-            "(or leave it out for the default, which grows with the series length)"
-        )
-    return value
+    from changekind.tasks.critical import check_critical
+
+    try:
+        return check_critical(value)
+    except ValueError as exc:
+        raise typer.BadParameter(str(exc)) from exc
 
 
 @app.command()
