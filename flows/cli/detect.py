@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import functools
 import json
-import math
 import os
 import sys
 import traceback
@@ -32,6 +31,7 @@ from changekind.flows.cli.app import (
     out_console,
 )
 from changekind.flows.cli.output import event_records, print_result
+from changekind.tasks.critical import check_critical
 from changekind.tasks.decompose import regularize
 from changekind.tasks.detect import analyse_series
 from changekind.tasks.errors import ChangekindError, SeriesError, SourceError
@@ -239,8 +239,6 @@ def report_problems(outcomes: Sequence[SeriesOutcome]) -> int:
 
 
 def _check_critical(value: float | None) -> float | None:
-    from changekind.tasks.critical import check_critical
-
     try:
         return check_critical(value)
     except ValueError as exc:
