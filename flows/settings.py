@@ -13,7 +13,7 @@ from pydantic import BaseModel, ConfigDict, Field, SecretStr, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
 from changekind.tasks.batch import AnalysisOptions
-from changekind.tasks.critical import CRITICAL_RANGE
+from changekind.tasks.critical import BUDGET_RANGE, CRITICAL_RANGE, FALSE_BUDGET
 from changekind.tasks.errors import ConfigError
 from changekind.tasks.window import window_text
 
@@ -27,7 +27,8 @@ class Settings(BaseSettings):
     ``CHANGEKIND_DB_URL`` (default ``sqlite:///changekind.db`` in the working
     directory; PostgreSQL as ``postgresql+psycopg://user@host/db``),
     ``CHANGEKIND_SOURCE``, ``CHANGEKIND_RUNNER``, ``CHANGEKIND_WORKERS``,
-    ``CHANGEKIND_DASK_ADDRESS``.  The database password may be kept out of the
+    ``CHANGEKIND_DASK_ADDRESS``, ``CHANGEKIND_FALSE_BUDGET`` (expected false
+    events per series per 30 days; default 0.5).  The database password may be kept out of the
     URL: ``CHANGEKIND_DB_PASSWORD``, or ``CHANGEKIND_DB_PASSWORD_BLOCK``, the
     name of a Prefect Secret block holding it (see :func:`resolve_db`).
     """
@@ -41,6 +42,7 @@ class Settings(BaseSettings):
     runner: Runner = "threads"
     workers: int = Field(default_factory=lambda: os.cpu_count() or 1, ge=1, le=512)
     dask_address: str | None = None
+    false_budget: float = Field(default=FALSE_BUDGET, ge=BUDGET_RANGE[0], le=BUDGET_RANGE[1])
 
 
 class RunOptions(BaseModel):
@@ -51,6 +53,10 @@ class RunOptions(BaseModel):
     critical: float | None = Field(
         default=None, gt=CRITICAL_RANGE[0], le=CRITICAL_RANGE[1]
     )  # the engine's one range (changekind.tasks.critical.check_critical)
+    # Expected false events per clean series per 30 days of data; the critical
+    # value of every cold analysis and warm scan comes from it (critical
+    # overrides it).
+    false_budget: float = Field(default=FALSE_BUDGET, ge=BUDGET_RANGE[0], le=BUDGET_RANGE[1])
     periods: tuple[int, ...] | None = None
     min_points: int = Field(default=96, ge=24, le=1_000_000)
     context_points: int = Field(default=240, ge=10, le=100_000)
@@ -83,6 +89,7 @@ class RunOptions(BaseModel):
     def analysis(self, *, report_from: str | None = None) -> AnalysisOptions:
         return AnalysisOptions(
             critical=self.critical,
+            false_budget=self.false_budget,
             periods=self.periods,
             min_points=self.min_points,
             context_points=self.context_points,

@@ -34,6 +34,7 @@ import numpy as np
 import pandas as pd
 from scipy.special import chdtri
 
+from changekind.tasks.critical import FALSE_BUDGET
 from changekind.tasks.decompose import MIN_POINTS, decompose, regularize
 from changekind.tasks.detect import detect_events, reestimate, screen_new_points
 from changekind.tasks.errors import ChangekindError, SeriesError
@@ -68,7 +69,16 @@ class AnalysisOptions:
     Attributes
     ----------
     critical : float or None
-        Critical |t|; None takes the engine's length-dependent default.
+        Critical |t| (expert override); None takes the default from
+        ``false_budget``.
+    false_budget : float or None
+        Expected false events per clean series per 30 days of data
+        (changekind.tasks.critical.budget_critical): the cold analysis and
+        every warm scan take their critical value from it and the spacing, so
+        the false-event rate does not grow with the scan frequency.  None
+        takes the engine's length-dependent default (an allowance per
+        analysis, spent again at every scan).  Windowed mode keeps that
+        default.
     periods : tuple of int or None
         Seasonal periods in points; None chooses them from the spacing.
     min_points : int
@@ -94,6 +104,7 @@ class AnalysisOptions:
     """
 
     critical: float | None = None
+    false_budget: float | None = FALSE_BUDGET
     periods: tuple[int, ...] | None = None
     min_points: int = 96
     context_points: int = 240
@@ -327,7 +338,9 @@ def _cold(
     if options.window is None:
         series = regularize(work.series_id, timestamps, values)
         result = detect_events(
-            decompose(series, periods=options.periods), critical=options.critical
+            decompose(series, periods=options.periods),
+            critical=options.critical,
+            false_budget=options.false_budget,
         )
         found_events, model = result.events, result.model
         watermark, points = series.label(_last_observed(series.values)), series.nobs
@@ -383,7 +396,12 @@ def _warm(
 
         def screen(start: int, fixed: list[Event]):
             return screen_new_points(
-                model, series, series.nobs - start, known=fixed, critical=options.critical
+                model,
+                series,
+                series.nobs - start,
+                known=fixed,
+                critical=options.critical,
+                false_budget=options.false_budget,
             )
     else:
         summary = summarize_windows(work.series_id, timestamps, values, model.window)

@@ -124,6 +124,102 @@ def default_critical(
     return critical_value(TYPES_TESTED * n, alpha, tail=tail)
 
 
+FALSE_BUDGET = 0.5
+"""Default false-alarm budget: expected false events per clean series per
+BUDGET_DAYS of data, whatever the scan schedule (the README's table gives the
+smallest effect it lets through at minute, 5-minute and hourly spacing)."""
+
+BUDGET_DAYS = 30.0
+"""The period the false-alarm budget is stated for."""
+
+BUDGET_RANGE = (1e-4, 100.0)
+"""False-alarm budgets a user may set (expected false events per series per 30 days)."""
+
+SECONDS_PER_DAY = 86_400.0
+BUSINESS_DAYS_PER_WEEK = 5.0
+
+
+def points_per_period(step_seconds: float, *, business_days: bool = False) -> float:
+    """Points of a series with this spacing in ``BUDGET_DAYS`` (30) days."""
+    if not (math.isfinite(step_seconds) and step_seconds > 0):
+        raise ValueError(f"step_seconds must be positive, got {step_seconds!r}")
+    days = BUDGET_DAYS * (BUSINESS_DAYS_PER_WEEK / 7.0 if business_days else 1.0)
+    return days * SECONDS_PER_DAY / step_seconds
+
+
+def budget_critical(
+    step_seconds: float,
+    false_budget: float = FALSE_BUDGET,
+    *,
+    business_days: bool = False,
+    tail: ResidualTail | None = None,
+) -> float:
+    """Critical |t| that spends ``false_budget`` false events per series per 30 days.
+
+    Parameters
+    ----------
+    step_seconds : float
+        The series' spacing in seconds (one business day on a business-day grid).
+    false_budget : float, default=0.5
+        Expected false events per clean series per 30 days of its data.
+    business_days : bool, default=False
+        The grid holds weekdays only (about 21.4 points per 30 days).
+    tail : ResidualTail, optional
+        The residuals' tail (:func:`fit_tail`); Gaussian when absent.
+
+    Returns
+    -------
+    float
+        ``critical_value(4 P, false_budget, tail=tail)`` with ``P`` the points
+        per 30 days: every tested point spends the same allowance
+        ``false_budget / P``, so a cold analysis of a month of data and a month
+        of hourly warm scans of the same series spend the same budget; the
+        value does not depend on the series' length or the scan schedule.
+        Gaussian values at 0.5: 4.82 (minute), 4.50 (5-minute), 3.75 (hourly).
+    """
+    check_budget(false_budget)
+    points = points_per_period(step_seconds, business_days=business_days)
+    n_tested = TYPES_TESTED * points
+    # A spacing so coarse that the budget exceeds the tests in 30 days (weeks,
+    # months): every test at the budget's ceiling (half the tests false).
+    allowance = min(false_budget, 0.5 * n_tested)
+    return critical_value(n_tested, allowance, tail=tail)
+
+
+def check_budget(value: float | None) -> float | None:
+    """A user's false-alarm budget, or None; raises ValueError naming the accepted range."""
+    if value is None:
+        return None
+    value = float(value)
+    low, high = BUDGET_RANGE
+    if not (math.isfinite(value) and low <= value <= high):
+        raise ValueError(
+            f"false-alarm budget {value:g} is not usable; give the expected false events per "
+            f"series per {BUDGET_DAYS:g} days, from {low:g} to {high:g}, such as 0.5"
+        )
+    return value
+
+
+def series_critical(
+    n: int,
+    *,
+    step_seconds: float | None = None,
+    business_days: bool = False,
+    false_budget: float | None = None,
+    tail: ResidualTail | None = None,
+) -> float:
+    """The default critical value of one analysis: by the budget or by the length.
+
+    With a false-alarm budget and a time axis (``step_seconds``), the budget's
+    :func:`budget_critical`; else :func:`default_critical` of the ``n`` points
+    analysed (an allowance of 0.2 false events per analysis: a one-off analysis
+    of a file, or a series without times).
+    """
+    if false_budget is not None and step_seconds:
+        return budget_critical(step_seconds, false_budget, business_days=business_days, tail=tail)
+    return default_critical(n, tail=tail)
+
+
 def check_critical(value: float | None) -> float | None:
     """A user's critical value, or None; raises ValueError naming the accepted range."""
     if value is None:

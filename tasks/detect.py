@@ -18,7 +18,13 @@ import numpy as np
 
 from changekind.tasks.budget import DEFAULT_BUDGET, Spend, WorkBudget
 from changekind.tasks.critical import ALLOWANCE as ALPHA
-from changekind.tasks.critical import check_critical, default_critical, fit_tail
+from changekind.tasks.critical import (
+    check_budget,
+    check_critical,
+    default_critical,
+    fit_tail,
+    series_critical,
+)
 from changekind.tasks.decompose import decompose, regularize
 from changekind.tasks.effects import EFFECTS
 from changekind.tasks.fit import (
@@ -50,6 +56,7 @@ from changekind.tasks.types import (
     DetectionResult,
     FittedModel,
     Pattern,
+    ResidualTail,
 )
 from changekind.tasks.wrappers import TaskSpec, lazy_task
 
@@ -75,6 +82,7 @@ def analyse_series(
     periods: Sequence[int] | None = None,
     critical: float | None = None,
     budget: WorkBudget | None = None,
+    false_budget: float | None = None,
 ) -> DetectionResult:
     """Run the whole engine on one series' raw observations.
 
@@ -82,7 +90,12 @@ def analyse_series(
     subclasses of :func:`~changekind.tasks.decompose.regularize` on bad input.
     """
     series = regularize(series_id, timestamps, values)
-    return detect_events(decompose(series, periods=periods), critical=critical, budget=budget)
+    return detect_events(
+        decompose(series, periods=periods),
+        critical=critical,
+        budget=budget,
+        false_budget=false_budget,
+    )
 
 
 @single_blas_thread
@@ -93,6 +106,7 @@ def detect_events(
     critical: float | None = None,
     max_outer: int = MAX_OUTER,
     budget: WorkBudget | None = None,
+    false_budget: float | None = None,
 ) -> DetectionResult:
     """Joint estimation of ARIMA parameters and intervention effects.
 
@@ -112,6 +126,12 @@ def detect_events(
         :data:`~changekind.tasks.budget.DEFAULT_BUDGET`); when it runs out the
         engine keeps what it has, sets ``budget_spent`` and says so in the
         notes.
+    false_budget : float, optional
+        Expected false events per clean series per 30 days of data: the
+        default critical value then comes from the spacing
+        (:func:`~changekind.tasks.critical.budget_critical`), not the length,
+        so repeated scans spend one budget.  Ignored with ``critical`` and for
+        series without a time axis.
 
     Returns
     -------
@@ -167,7 +187,19 @@ def detect_events(
     series = decomp.series
     n = series.nobs
     given = check_critical(critical)
-    crit = default_critical(n) if given is None else given
+    false_budget = check_budget(false_budget)
+    step = series.step_seconds if series.is_datetime else None
+
+    def default(tail: ResidualTail | None) -> float:
+        return series_critical(
+            n,
+            step_seconds=step,
+            business_days=series.business_days,
+            false_budget=false_budget,
+            tail=tail,
+        )
+
+    crit = default(None) if given is None else given
     tail = None
     spend = Spend(budget or DEFAULT_BUDGET)
     notes: list[str] = []
@@ -219,7 +251,7 @@ def detect_events(
             pulses = sum(1 for c in found if not EFFECTS[c.kind].lasting)
             tail = fit_tail(clean[w > 0], sigma, raw=e[w > 0], removed=pulses)
             if given is None:
-                crit = default_critical(n, tail=tail)
+                crit = default(tail)
         spikes = [c.position for c in found if EFFECTS[c.kind].pulse_like]
         period = regular_period(spikes, n)
         if period is not None and len(patterns) < MAX_PATTERNS and period not in decomp.periods:

@@ -14,7 +14,7 @@ from dataclasses import replace
 import numpy as np
 import pandas as pd
 
-from changekind.tasks.critical import check_critical, default_critical
+from changekind.tasks.critical import check_budget, check_critical, series_critical
 from changekind.tasks.decompose import profile_at
 from changekind.tasks.effects import EFFECTS
 from changekind.tasks.fit import (
@@ -40,6 +40,7 @@ def screen_new_points(
     *,
     known: Sequence[Event] = (),
     critical: float | None = None,
+    false_budget: float | None = None,
 ) -> DetectionResult:
     """Test only the newest points of a series against a cached model.
 
@@ -57,8 +58,14 @@ def screen_new_points(
         the context or before it); their effects are removed first, so a level
         shift found last week is not found again today.
     critical : float, optional
-        Default: :func:`~changekind.tasks.critical.default_critical` of the
-        model's estimation length and residual tail.
+        Default: with ``false_budget``, the budget's critical value at the
+        model's spacing and residual tail
+        (:func:`~changekind.tasks.critical.budget_critical`: each new point
+        spends the budget's per-point share, so hourly scans over 30 days
+        spend one budget); without, ``default_critical`` of the model's
+        estimation length (which every scan spends again).
+    false_budget : float, optional
+        Expected false events per clean series per 30 days.
 
     Returns
     -------
@@ -78,7 +85,16 @@ def screen_new_points(
     if not 0 < n_new <= n:
         raise ValueError(f"n_new must be in 1..{n}")
     given = check_critical(critical)
-    crit = default_critical(model.nobs, tail=model.tail) if given is None else given
+    if given is None:
+        crit = series_critical(
+            model.nobs,
+            step_seconds=model.step_seconds if series.is_datetime else None,
+            business_days=model.business_days,
+            false_budget=check_budget(false_budget),
+            tail=model.tail,
+        )
+    else:
+        crit = given
     y = series.values - _seasonal_for(model, series) - known_effects(model, series, known)
     params = model.param_dict
     dev = y - params.get("const", 0.0)

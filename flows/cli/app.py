@@ -69,6 +69,7 @@ EXIT_INTERRUPTED = 130
 
 OPTION_NAMES = {
     "critical": "--critical",
+    "false_budget": "--false-budget",
     "min_points": "--min-points",
     "workers": "--workers",
     "wait_seconds": "--wait",

@@ -52,6 +52,7 @@ _SETTING_NAMES = {
     "runner": "CHANGEKIND_RUNNER",
     "workers": "CHANGEKIND_WORKERS",
     "dask_address": "CHANGEKIND_DASK_ADDRESS",
+    "false_budget": "CHANGEKIND_FALSE_BUDGET",
 }
 
 
@@ -151,6 +152,7 @@ def fleet_config(
     min_points: int | None,
     window: str | None = None,
     wait: float | None = None,
+    false_budget: float | None = None,
 ) -> FleetConfig:
     """Check a fleet command's configuration in the order a person would fix it.
 
@@ -198,6 +200,7 @@ def fleet_config(
     if window is not None:
         knobs["window"] = window_text(window)  # a bad window: ConfigError in its own words
     knobs["workers"] = workers if workers is not None else settings.workers
+    knobs["false_budget"] = false_budget if false_budget is not None else settings.false_budget
     try:
         options = RunOptions(**knobs)
     except ValidationError as exc:

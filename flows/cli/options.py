@@ -112,8 +112,21 @@ CriticalOpt = Annotated[
     typer.Option(
         "--critical",
         metavar="C",
-        help="Critical |t| for an event (more than 1).  Default grows with the series "
-        "length to keep false events rare.",
+        help="Critical |t| for an event (more than 1), an expert override.  Fleet runs "
+        "default to the value that spends --false-budget; detect to one that grows with "
+        "the series length.",
+        show_default=False,
+    ),
+]
+FalseBudgetOpt = Annotated[
+    float | None,
+    typer.Option(
+        "--false-budget",
+        metavar="B",
+        help="Expected false events per clean series per 30 days of data; every cold "
+        "analysis and warm scan takes its critical value from it and the spacing, so "
+        "scanning more often does not raise the false-event rate.  Default 0.5 "
+        "(CHANGEKIND_FALSE_BUDGET).  --critical overrides it.",
         show_default=False,
     ),
 ]
