@@ -15,6 +15,7 @@ from pydantic_settings import BaseSettings, SettingsConfigDict
 from changekind.tasks.batch import AnalysisOptions
 from changekind.tasks.critical import BUDGET_RANGE, CRITICAL_RANGE, FALSE_BUDGET
 from changekind.tasks.errors import ConfigError
+from changekind.tasks.magnitude import parse_min_effect
 from changekind.tasks.window import window_text
 
 DEFAULT_DB_URL = "sqlite:///changekind.db"
@@ -28,9 +29,11 @@ class Settings(BaseSettings):
     directory; PostgreSQL as ``postgresql+psycopg://user@host/db``),
     ``CHANGEKIND_SOURCE``, ``CHANGEKIND_RUNNER``, ``CHANGEKIND_WORKERS``,
     ``CHANGEKIND_DASK_ADDRESS``, ``CHANGEKIND_FALSE_BUDGET`` (expected false
-    events per series per 30 days; default 0.5).  The database password may be kept out of the
-    URL: ``CHANGEKIND_DB_PASSWORD``, or ``CHANGEKIND_DB_PASSWORD_BLOCK``, the
-    name of a Prefect Secret block holding it (see :func:`resolve_db`).
+    events per series per 30 days; default 0.5), ``CHANGEKIND_MIN_EFFECT``
+    (smallest effect written, e.g. ``5%``; default none).  The database
+    password may be kept out of the URL: ``CHANGEKIND_DB_PASSWORD``, or
+    ``CHANGEKIND_DB_PASSWORD_BLOCK``, the name of a Prefect Secret block
+    holding it (see :func:`resolve_db`).
     """
 
     model_config = SettingsConfigDict(env_prefix="CHANGEKIND_", extra="ignore")
@@ -43,6 +46,13 @@ class Settings(BaseSettings):
     workers: int = Field(default_factory=lambda: os.cpu_count() or 1, ge=1, le=512)
     dask_address: str | None = None
     false_budget: float = Field(default=FALSE_BUDGET, ge=BUDGET_RANGE[0], le=BUDGET_RANGE[1])
+    min_effect: str | None = None
+
+    @field_validator("min_effect")
+    @classmethod
+    def _min_effect(cls, value: str | None) -> str | None:
+        floor = parse_min_effect(value)
+        return None if floor is None else floor.text
 
 
 class RunOptions(BaseModel):
@@ -57,6 +67,8 @@ class RunOptions(BaseModel):
     # value of every cold analysis and warm scan comes from it (critical
     # overrides it).
     false_budget: float = Field(default=FALSE_BUDGET, ge=BUDGET_RANGE[0], le=BUDGET_RANGE[1])
+    # Smallest |effect| written: "5%" of the level, "2sigma" or "3.5" series units.
+    min_effect: str | None = None
     periods: tuple[int, ...] | None = None
     min_points: int = Field(default=96, ge=24, le=1_000_000)
     context_points: int = Field(default=240, ge=10, le=100_000)
@@ -79,6 +91,12 @@ class RunOptions(BaseModel):
         except ConfigError as exc:
             raise ValueError(str(exc)) from None
 
+    @field_validator("min_effect")
+    @classmethod
+    def _min_effect(cls, value: str | None) -> str | None:
+        floor = parse_min_effect(value)  # a ValueError names the accepted forms
+        return None if floor is None else floor.text
+
     @field_validator("periods")
     @classmethod
     def _periods(cls, value: tuple[int, ...] | None) -> tuple[int, ...] | None:
@@ -90,6 +108,7 @@ class RunOptions(BaseModel):
         return AnalysisOptions(
             critical=self.critical,
             false_budget=self.false_budget,
+            min_effect=parse_min_effect(self.min_effect),
             periods=self.periods,
             min_points=self.min_points,
             context_points=self.context_points,

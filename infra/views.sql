@@ -13,8 +13,8 @@
 -- The level shift each series currently stands at: its latest confirmed LS
 -- that nobody dismissed (one row per series; 'explained' shifts stay open).
 CREATE VIEW open_level_shifts AS
-SELECT series_id, event_time, event_ts, effect, effect_pct, t_stat, level, model,
-       triage_state, triage_reason, first_seen, last_seen
+SELECT series_id, event_time, event_ts, effect, effect_pct, effect_sigma, t_stat,
+       duration, level, model, triage_state, triage_reason, first_seen, last_seen
 FROM (
     SELECT e.*,
            ROW_NUMBER() OVER (
@@ -59,7 +59,7 @@ GROUP BY CAST(event_ts AT TIME ZONE 'UTC' AS DATE), event_type;
 -- view: events_needing_triage (sqlite, postgresql)
 -- Confirmed events nobody has looked at yet.
 CREATE VIEW events_needing_triage AS
-SELECT series_id, event_time, event_ts, event_type, effect, effect_pct, t_stat,
-       level, model, first_seen, last_seen, last_run_id
+SELECT series_id, event_time, event_ts, event_type, effect, effect_pct, effect_sigma,
+       t_stat, duration, level, model, first_seen, last_seen, last_run_id
 FROM series_events
 WHERE status = 'confirmed' AND triage_state IS NULL;

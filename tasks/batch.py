@@ -40,6 +40,7 @@ from changekind.tasks.detect import detect_events, reestimate, screen_new_points
 from changekind.tasks.errors import ChangekindError, SeriesError
 from changekind.tasks.fetch import SeriesWindow, SourceProblem, SourceSpec, read_windows
 from changekind.tasks.fit import pi_weights
+from changekind.tasks.magnitude import MinEffect, keep_effects
 from changekind.tasks.types import Event, FittedModel
 from changekind.tasks.window import (
     complete_windows,
@@ -79,6 +80,12 @@ class AnalysisOptions:
         takes the engine's length-dependent default (an allowance per
         analysis, spent again at every scan).  Windowed mode keeps that
         default.
+    min_effect : MinEffect or None
+        Events whose |effect| is below this floor (per cent of the level,
+        noise sigma or series units; changekind.tasks.magnitude) are not
+        reported: never written, so the revision log says nothing about them;
+        a stored provisional event that shrinks below it is retracted.  None:
+        every event that clears the critical value.
     periods : tuple of int or None
         Seasonal periods in points; None chooses them from the spacing.
     min_points : int
@@ -105,6 +112,7 @@ class AnalysisOptions:
 
     critical: float | None = None
     false_budget: float | None = FALSE_BUDGET
+    min_effect: MinEffect | None = None
     periods: tuple[int, ...] | None = None
     min_points: int = 96
     context_points: int = 240
@@ -357,7 +365,7 @@ def _cold(
         found_events, model = windowed.events, windowed_model(windowed)
         watermark, points = last_window_label(windowed.summary), windowed.summary.n_windows
         merged = 0
-    events = _reportable(found_events, options.report_from)
+    events = _reportable(found_events, options)
     found = {e.event_time for e in events}
     retract = tuple(
         e.event_time
@@ -430,7 +438,7 @@ def _warm(
     light = why is not None and why.startswith("confirmed") and model.window is None
     if why is not None and not light:
         return SeriesOutcome(work.series_id, "cold", note=f"refit: {why}")
-    events = _reportable(result.events, options.report_from)
+    events = _reportable(result.events, options)
     found = {e.event_time for e in events}
     retract = tuple(
         e.event_time
@@ -534,10 +542,12 @@ def plan_batches(
 # -- helpers ---------------------------------------------------------------------
 
 
-def _reportable(events: Sequence[Event], report_from: str | None) -> tuple[Event, ...]:
-    if report_from is None:
-        return tuple(events)
-    return tuple(e for e in events if _at_or_after(e.event_time, report_from))
+def _reportable(events: Sequence[Event], options: AnalysisOptions) -> tuple[Event, ...]:
+    """Events after the warm-up whose effect reaches the run's floor."""
+    kept = keep_effects(events, options.min_effect)
+    if options.report_from is None:
+        return kept
+    return tuple(e for e in kept if _at_or_after(e.event_time, options.report_from))
 
 
 def _after(event: Event, options: AnalysisOptions) -> bool:

@@ -47,7 +47,23 @@ def to_event(
         level=round_sig(level),
         model=model.spec(),
         effect_sigma=round_sig(abs(c.omega) / model.sigma) if model.sigma2 > 0 else None,
+        duration=_duration(series, c.kind, after, delta),
     )
+
+
+TC_GONE = 0.05
+"""A temporary change has ended when this share of its jump remains."""
+
+
+def _duration(series: RegularSeries, kind: str, after: int, delta: float | None) -> str | None:
+    """How long an LS has lasted (to the last analysed point) or a TC lasts (to 5 %)."""
+    if kind == "LS":
+        steps = float(after + 1)
+    elif kind == "TC" and delta is not None and 0 < delta < 1:
+        steps = math.log(TC_GONE) / math.log(delta)
+    else:
+        return None
+    return _half_life(series, steps)
 
 
 def _local_level(values: np.ndarray, T: int, window: int = 24) -> float:

@@ -336,8 +336,11 @@ class Event:
     window_start: str | None = None
     window_end: str | None = None
     effect_sigma: float | None = None
-    """The effect in noise sigma (|omega| / sigma of the model).  Not yet part of
-    :meth:`to_record` (the stored columns): persistence adds it."""
+    """The effect in noise sigma (|omega| / sigma of the model)."""
+    duration: str | None = None
+    """How long the effect lasts: a level shift, from its time to the last point
+    analysed (so far: it has not ended); a temporary change, until 5 % of its
+    jump remains; None for AO, IO and VC."""
 
     @property
     def weights(self) -> dict[str, float]:
@@ -351,12 +354,14 @@ class Event:
             "event_type": self.event_type,
             "effect": self.effect,
             "effect_pct": self.effect_pct,
+            "effect_sigma": self.effect_sigma,
             "t_stat": self.t_stat,
             "se": self.se,
             "type_weights": dict(self.type_weights),
             "status": self.status,
             "decay": self.decay,
             "half_life": self.half_life,
+            "duration": self.duration,
             "level": self.level,
             "model": self.model,
             "window_start": self.window_start,

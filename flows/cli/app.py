@@ -70,6 +70,7 @@ EXIT_INTERRUPTED = 130
 OPTION_NAMES = {
     "critical": "--critical",
     "false_budget": "--false-budget",
+    "min_effect": "--min-effect",
     "min_points": "--min-points",
     "workers": "--workers",
     "wait_seconds": "--wait",

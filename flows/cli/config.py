@@ -53,6 +53,7 @@ _SETTING_NAMES = {
     "workers": "CHANGEKIND_WORKERS",
     "dask_address": "CHANGEKIND_DASK_ADDRESS",
     "false_budget": "CHANGEKIND_FALSE_BUDGET",
+    "min_effect": "CHANGEKIND_MIN_EFFECT",
 }
 
 
@@ -153,6 +154,7 @@ def fleet_config(
     window: str | None = None,
     wait: float | None = None,
     false_budget: float | None = None,
+    min_effect: str | None = None,
 ) -> FleetConfig:
     """Check a fleet command's configuration in the order a person would fix it.
 
@@ -201,6 +203,9 @@ def fleet_config(
         knobs["window"] = window_text(window)  # a bad window: ConfigError in its own words
     knobs["workers"] = workers if workers is not None else settings.workers
     knobs["false_budget"] = false_budget if false_budget is not None else settings.false_budget
+    floor = min_effect if min_effect is not None else settings.min_effect
+    if floor is not None:
+        knobs["min_effect"] = floor
     try:
         options = RunOptions(**knobs)
     except ValidationError as exc:

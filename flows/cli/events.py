@@ -46,8 +46,19 @@ def events(
         bool,
         typer.Option("--include-retracted", help="Also list events later scans retracted."),
     ] = False,
+    sort: Annotated[
+        str,
+        typer.Option(
+            "--sort",
+            metavar="KEY",
+            help="Order: time (oldest first), or largest first by effect_sigma (noise "
+            "sigma), effect_pct (per cent of the level), effect (series units) or t (|t|).",
+        ),
+    ] = "time",
 ) -> None:
-    """List the stored events, oldest first."""
+    """List the stored events, oldest first (or by size with --sort)."""
+    if sort not in SORT_KEYS:
+        raise fail_usage(f"--sort {sort!r} is not a key; use one of {', '.join(SORT_KEYS)}")
     if as_json and as_csv:
         raise fail_usage("give --json or --csv, not both")
     with usage_errors():
@@ -60,6 +71,7 @@ def events(
             series_ids=series or None,
             include_retracted=include_retracted,
         )
+    frame = sort_events(frame, sort)
     if as_json:
         sys.stdout.write(json.dumps(event_json_records(frame), indent=2, allow_nan=False) + "\n")
     elif as_csv:
@@ -69,12 +81,31 @@ def events(
         if frame.empty:
             console.print("no events stored (for these filters)", markup=False)
             return
-        shown = frame.tail(TABLE_ROWS)
+        shown = frame.tail(TABLE_ROWS) if sort == "time" else frame.head(TABLE_ROWS)
         title = f"{len(frame)} events"
         if len(shown) < len(frame):
-            title += f" (the newest {len(shown)} shown; --json or --csv for all)"
+            which = "newest" if sort == "time" else f"largest by {sort}"
+            title += f" (the {which} {len(shown)} shown; --json or --csv for all)"
         console.print(events_table(shown, title=title))
     sys.stdout.flush()
+
+
+SORT_KEYS = ("time", "effect_sigma", "effect_pct", "effect", "t")
+_SORT_COLUMNS = {
+    "effect_sigma": "effect_sigma",
+    "effect_pct": "effect_pct",
+    "effect": "effect",
+    "t": "t_stat",
+}
+
+
+def sort_events(frame: pd.DataFrame, key: str) -> pd.DataFrame:
+    """Events in stored order (time) or largest |size| first; rows without the size last."""
+    if key == "time" or frame.empty:
+        return frame
+    size = frame[_SORT_COLUMNS[key]].abs()
+    order = size.sort_values(ascending=False, na_position="last", kind="stable").index
+    return frame.loc[order].reset_index(drop=True)
 
 
 def _stored_time(url: str, series_id: str, event_time: str) -> str:

@@ -130,6 +130,17 @@ FalseBudgetOpt = Annotated[
         show_default=False,
     ),
 ]
+MinEffectOpt = Annotated[
+    str | None,
+    typer.Option(
+        "--min-effect",
+        metavar="E",
+        help="Smallest effect an event needs to be written: '5%' of the local level, "
+        "'2sigma' (noise sigma) or '3.5' (series units).  Smaller events are not stored "
+        "and not logged.  Default: none (CHANGEKIND_MIN_EFFECT).",
+        show_default=False,
+    ),
+]
 MinPointsOpt = Annotated[
     int | None,
     typer.Option(

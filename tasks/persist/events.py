@@ -96,6 +96,7 @@ def _event_values(event: Event) -> dict[str, Any]:
         ),
         "status": event.status,
         "half_life": event.half_life,
+        "duration": event.duration,
         "model": str(event.model),
         "window_start": event.window_start,
         "window_end": event.window_end,
@@ -136,6 +137,22 @@ def _differs(a: Any, b: Any) -> bool:
             return not (math.isnan(a) and math.isnan(b))
         return not math.isclose(a, b, rel_tol=1e-9, abs_tol=0.0)
     return a != b
+
+
+LATER_COLUMNS = ("effect_sigma", "duration")
+"""Event columns added after the first schemas (migration 0006).  A database
+still at an older revision (a migration test writing at 0001-0005) gets the
+others; the fleet runs migrate to the head before they write, so there every
+column is written."""
+
+
+def _absent_columns(conn: sa.Connection) -> frozenset[str]:
+    """The LATER_COLUMNS the database's ``series_events`` does not have yet."""
+    try:
+        have = {c["name"] for c in sa.inspect(conn).get_columns("series_events")}
+    except sa.exc.NoSuchTableError:
+        return frozenset()  # the write itself raises the driver's error
+    return frozenset(c for c in LATER_COLUMNS if c not in have)
 
 
 def write_events(
@@ -205,6 +222,9 @@ def write_events(
         )
 
     with _engine(db) as engine, engine.begin() as conn:
+        absent = _absent_columns(conn)
+        if absent:
+            rows = [{k: v for k, v in row.items() if k not in absent} for row in rows]
         # Step 1.
         stored = _stored_events(conn, [*keys, *retract_keys])
         # Step 2.
@@ -239,7 +259,7 @@ def write_events(
             series_events,
             upserts,
             keys=("series_id", "event_time"),
-            update=_UPDATED_ON_CHANGE,
+            update=tuple(c for c in _UPDATED_ON_CHANGE if c not in absent),
         )
         # Step 4.
         retracted = 0
@@ -360,12 +380,14 @@ def load_known_events(
                 event_type=rec["event_type"],
                 effect=float(rec["effect"]),
                 effect_pct=_nan_to_none(rec["effect_pct"]),
+                effect_sigma=_nan_to_none(rec["effect_sigma"]),
                 t_stat=float(rec["t_stat"]),
                 se=float(rec["se"]),
                 type_weights=tuple((k, float(v)) for k, v in rec["type_weights"].items()),
                 status=rec["status"],
                 decay=_nan_to_none(rec["decay"]),
                 half_life=rec["half_life"],
+                duration=rec["duration"],
                 level=float(rec["level"]),
                 model=rec["model"],
                 window_start=rec["window_start"],

@@ -92,12 +92,14 @@ series_events = sa.Table(
     sa.Column("event_type", sa.Text, nullable=False),
     sa.Column("effect", sa.Float, nullable=False),
     sa.Column("effect_pct", sa.Float, nullable=True),
+    sa.Column("effect_sigma", sa.Float, nullable=True),
     sa.Column("t_stat", sa.Float, nullable=False),
     sa.Column("se", sa.Float, nullable=False),
     sa.Column("type_weights", sa.Text, nullable=False),
     sa.Column("status", sa.Text, nullable=False),
     sa.Column("decay", sa.Float, nullable=True),
     sa.Column("half_life", sa.Text, nullable=True),
+    sa.Column("duration", sa.Text, nullable=True),
     sa.Column("level", sa.Float, nullable=False),
     sa.Column("model", sa.Text, nullable=False),
     # Bookkeeping: which run first wrote the row and which last changed it.
@@ -119,6 +121,7 @@ series_events = sa.Table(
     ),
     sa.Index("ix_series_events_event_ts", "event_ts"),
     sa.Index("ix_series_events_type_status", "event_type", "status"),
+    sa.Index("ix_series_events_effect_sigma", "effect_sigma"),
 )
 """One row per event (series, time) with its current classification."""
 
@@ -250,12 +253,14 @@ EVENT_COLUMNS: tuple[str, ...] = (
     "event_type",
     "effect",
     "effect_pct",
+    "effect_sigma",
     "t_stat",
     "se",
     "type_weights",
     "status",
     "decay",
     "half_life",
+    "duration",
     "level",
     "model",
     "window_start",
@@ -292,10 +297,12 @@ _COMPARED = (
 )
 _UPDATED_ON_CHANGE = (
     *_COMPARED,
+    "effect_sigma",  # follow the effect; not compared (sizes in other units of it)
+    "duration",  # grows with every scan of a level shift: not a change
     "event_ts",
     "window_start",
     "window_end",
     "last_run_id",
     "last_seen",
 )
-_FLOAT_EVENT_COLUMNS = ("effect", "effect_pct", "t_stat", "se", "decay", "level")
+_FLOAT_EVENT_COLUMNS = ("effect", "effect_pct", "effect_sigma", "t_stat", "se", "decay", "level")

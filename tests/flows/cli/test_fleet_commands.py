@@ -46,12 +46,14 @@ RECORD_FIELDS = [  # README, "Usage: changekind detect": one record of --json ou
     "event_type",
     "effect",
     "effect_pct",
+    "effect_sigma",
     "t_stat",
     "se",
     "type_weights",
     "status",
     "decay",
     "half_life",
+    "duration",
     "level",
     "model",
     "window_start",
@@ -260,6 +262,23 @@ def test_events_json_and_csv_hold_what_is_stored(scanned):
 
     table = _invoke("events", "--db", db)
     assert table.exit_code == 0 and f"{len(stored)} events" in table.stdout
+
+
+def test_events_sort_by_size(scanned):
+    db = f"sqlite:///{scanned['db_file']}"
+    stored = persist.read_events(db)
+    for key, column in (
+        ("effect_sigma", "effect_sigma"),
+        ("effect_pct", "effect_pct"),
+        ("t", "t_stat"),
+    ):
+        out = _invoke("events", "--db", db, "--json", "--sort", key)
+        assert out.exit_code == 0, out.stderr
+        sizes = [abs(r[column]) for r in json.loads(out.stdout) if r[column] is not None]
+        assert sizes == sorted(sizes, reverse=True) and len(sizes) >= 3
+        assert len(json.loads(out.stdout)) == len(stored)
+    bad = _invoke("events", "--db", db, "--sort", "size")
+    assert bad.exit_code != 0 and "effect_sigma" in bad.stderr
 
 
 # --------------------------------------------------------------------------- backfill, refit

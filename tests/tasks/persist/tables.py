@@ -53,12 +53,14 @@ def make_event(
         "event_type": event_type,
         "effect": effect,
         "effect_pct": 0.1 + 0.2,  # not exactly 0.3: checks bit-exact storage
+        "effect_sigma": 12.5 / 1.7,
         "t_stat": 7.25,
         "se": 1 / 3,
         "type_weights": (("AO", 0.01), ("LS", 0.9), ("TC", 0.08), ("IO", 0.01)),
         "status": status,
         "decay": None,
         "half_life": None,
+        "duration": "3.5 d",
         "level": 125.0,
         "model": "ARIMA(1,0,0) mean=125 ar.L1=0.6 sigma=1.7",
         "window_start": "2024-02-01T00:00:00Z",
@@ -99,9 +101,11 @@ def revisions(engine: sa.Engine) -> list[dict[str, Any]]:
 
 
 def event_row(engine: sa.Engine, series_id: str, event_time: str) -> dict[str, Any]:
+    """One stored event row, with the columns the database has at its revision."""
     table = persist.series_events
     with engine.connect() as conn:
-        query = sa.select(table).where(
+        have = {c["name"] for c in sa.inspect(conn).get_columns("series_events")}
+        query = sa.select(*[c for c in table.c if c.name in have]).where(
             table.c.series_id == series_id, table.c.event_time == event_time
         )
         return dict(conn.execute(query).mappings().one())
