@@ -67,6 +67,10 @@ class RunSummary:
     """Parts of the source that could not be read (files, rows, cells), in words."""
     notes: tuple[str, ...] = ()
     """What the run did beyond the usual (abandoned runs closed, a span extended)."""
+    refits: tuple[tuple[str, int], ...] = ()
+    """Model refits by reason (age, variance drift, confirmed LS re-estimates)."""
+    refits_deferred: int = 0
+    """Refits due but deferred to later runs by the rate limit (RunOptions.refit_share)."""
 
 
 def current_run_id() -> str:
@@ -401,6 +405,9 @@ def summarize(
             f"merged into their median (e.g. {merged[0][0]!r}: {merged[0][1]})",
         )
     failures = tuple((o.series_id, *o.failure) for o in outcomes if o.failure is not None)
+    refits, deferred = refit_reasons(outcomes)
+    if refits or deferred:
+        notes = (*notes, refit_text(refits, deferred))
     return RunSummary(
         run_id=run_id,
         kind=kind,
@@ -420,7 +427,35 @@ def summarize(
         top_events=tuple(tops[:10]),
         timings=tuple(timings.items()),
         notes=notes,
+        refits=refits,
+        refits_deferred=deferred,
     )
+
+
+_REFIT_PREFIXES = (("refit: ", ""), ("coefficients re-estimated: ", "re-estimated after "))
+
+
+def refit_reasons(outcomes: Sequence[SeriesOutcome]) -> tuple[tuple[tuple[str, int], ...], int]:
+    """Refits by reason, from the outcomes' notes, and the number deferred."""
+    counts: dict[str, int] = {}
+    for o in outcomes:
+        for prefix, label in _REFIT_PREFIXES:
+            if o.note and o.note.startswith(prefix) and not o.refit_deferred:
+                reason = label + o.note.removeprefix(prefix).split(";")[0]
+                counts[reason] = counts.get(reason, 0) + 1
+    deferred = sum(o.refit_deferred for o in outcomes)
+    return tuple(sorted(counts.items(), key=lambda kv: (-kv[1], kv[0]))), deferred
+
+
+def refit_text(refits: Sequence[tuple[str, int]], deferred: int) -> str:
+    """``'refits: 3 (age 2, variance drift 1); 5 deferred to later runs'``."""
+    total = sum(n for _, n in refits)
+    text = f"refits: {total}"
+    if refits:
+        text += " (" + ", ".join(f"{reason} {n}" for reason, n in refits) + ")"
+    if deferred:
+        text += f"; {deferred} deferred to later runs (refit rate limit)"
+    return text
 
 
 def _slim(outcome: SeriesOutcome) -> SeriesOutcome:

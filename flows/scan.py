@@ -158,6 +158,8 @@ def _locked_run(
         for problem in problems:
             logger.warning("source: %s", problem.describe())
     analysis = options.analysis(report_from=report_from)
+    if kind != "scan":  # a backfill or refit run refits everything due
+        analysis = replace(analysis, refit_share=None)
     outcomes_all = []
     timings: dict[str, float] = {"open": time.perf_counter() - t0}
     batches = 0

@@ -74,6 +74,10 @@ class RunOptions(BaseModel):
     context_points: int = Field(default=240, ge=10, le=100_000)
     refit_after: float = Field(default=1.0, gt=0.0, le=1000.0)
     drift_alpha: float = Field(default=0.001, gt=0.0, lt=0.5)
+    # Scans only: at most this share of a batch's series gets a full refit per
+    # run (at least one), the longest waiting first; the rest are deferred and
+    # counted.  Backfill and refit runs refit everything due.
+    refit_share: float = Field(default=0.02, gt=0.0, le=1.0)
     batch_seconds: float = Field(default=10.0, gt=0.0, le=600.0)
     # How long a run waits for another run to release the database (one run
     # at a time per database: tasks/runlock.py) before it stops unrun.
@@ -114,6 +118,7 @@ class RunOptions(BaseModel):
             context_points=self.context_points,
             refit_after=self.refit_after,
             drift_alpha=self.drift_alpha,
+            refit_share=self.refit_share,
             report_from=report_from,
             window=self.window,
         )

@@ -24,6 +24,7 @@ Per series (``analyse_series_work``, pure):
 
 from __future__ import annotations
 
+import math
 import os
 import time
 from collections.abc import Sequence
@@ -101,6 +102,17 @@ class AnalysisOptions:
     drift_alpha : float
         Level of the residual-variance drift test (chi-square on the new
         points' residuals against the model's sigma); a drift refits.
+    refit_share : float or None
+        Rate limit of full refits (a warm series whose model is stale by age
+        or whose residual variance drifted): at most this share of a batch's
+        series (at least one) is refitted in a run, the series waiting
+        longest first (oldest watermark, then oldest fit); the others are
+        deferred: the old model still tests the run's new points and a later
+        run takes the refit up.  Only routine refits are limited: a model
+        stale by age in a scan whose new points are at most ROUTINE_SHARE of
+        its fit; a drift of the residual variance, a confirmed level shift or
+        a long catch-up always refits at once.  None: every refit now
+        (backfill and refit runs).
     report_from : str or None
         Events before this time are not reported (a backfill's warm-up).
     window : str or None
@@ -118,9 +130,17 @@ class AnalysisOptions:
     context_points: int = 240
     refit_after: float = 1.0
     drift_alpha: float = 0.001
+    refit_share: float | None = None
     report_from: str | None = None
     window: str | None = None
 
+
+ROUTINE_SHARE = 0.25
+"""A scan is routine for a stale model when its new points are at most this
+share of the points the model was fitted on (an hourly scan of a minute series
+fitted on a day: 60 of 1,440).  A long catch-up (a scan after days without
+one) refits at once: a deferred refit there gave a false level shift and a
+spike typed TC on the invented disk fleet (tests/flows/test_backfill_spans.py)."""
 
 MIN_CONTEXT = MIN_POINTS
 """Fewest points up to the watermark a warm read takes (a series of fewer is
@@ -186,6 +206,8 @@ class SeriesOutcome:
     note: str | None = None
     reestimate: tuple[Event, ...] | None = None
     n_duplicates: int = 0  # rows merged into their timestamp's median (regularize)
+    refit_deferred: bool = False  # a refit was due but the run's rate limit deferred it
+    refit_due: str | None = None  # warm outcome of a series due a refit (by age) if allowed
 
 
 class WorkBatch(Sequence[SeriesWork]):
@@ -251,9 +273,14 @@ def run_batch(
     wanted = [
         i
         for i, (work, outcome) in enumerate(zip(works, outcomes, strict=True))
-        if (outcome.reestimate is not None or _turned_cold(work, outcome))
+        if (
+            outcome.reestimate is not None
+            or outcome.refit_due is not None
+            or _turned_cold(work, outcome)
+        )
         and work.series_id not in skipped
     ]
+    wanted = _rate_limited(works, outcomes, wanted, options.refit_share)
     reread = [works[i] for i in wanted if works[i].start is not None]
     t2 = time.perf_counter()
     history = _by_series(_histories(spec, reread, problems)) if reread else {}
@@ -265,7 +292,7 @@ def run_batch(
         if outcome.reestimate is not None:
             outcome = _reestimated(work, outcome, *full)
         else:
-            why = outcome.note
+            why = outcome.note if outcome.refit_due is None else f"refit: {outcome.refit_due}"
             outcome = analyse_series_work(replace(work, refit=True), *full, options)
             if outcome.note is None:
                 outcome = replace(outcome, note=why)
@@ -277,6 +304,45 @@ def run_batch(
         rows_read=len(frame),
         problems=tuple(dict.fromkeys(problems)),  # a history re-read finds them again
     )
+
+
+def _rate_limited(
+    works: Sequence[SeriesWork],
+    outcomes: list[SeriesOutcome],
+    wanted: list[int],
+    share: float | None,
+) -> list[int]:
+    """The refits a batch makes now; the others' outcomes become deferrals (in place).
+
+    Only routine refits are limited (``refit_due``: stale by age in a scan of
+    few new points); the deferred keep this scan's warm outcome (events
+    written, watermark moved).  Beyond ``ceil(share * len(works))`` (at least
+    one) they wait, the longest waiting first: the oldest watermark, then the
+    oldest fit (a deferred series keeps its old fit, so it moves up).  Light
+    re-estimates after a confirmed level shift, refits after a drift of the
+    residual variance and refits after many new points are not limited.
+    """
+    full = [i for i in wanted if outcomes[i].refit_due is not None]
+    if share is None or not full:
+        return wanted
+    cap = max(1, math.ceil(share * len(works)))
+    if len(full) <= cap:
+        return wanted
+
+    def waiting(i: int) -> tuple[str, str]:
+        model = works[i].model
+        return (works[i].watermark or "", (model.fitted_through if model else None) or "")
+
+    now = set(sorted(full, key=waiting)[:cap])
+    for i in full:
+        if i not in now:  # this scan's warm test stands; the refit waits
+            outcomes[i] = replace(
+                outcomes[i],
+                note=f"refit deferred: {outcomes[i].refit_due}",
+                refit_due=None,
+                refit_deferred=True,
+            )
+    return [i for i in wanted if i in now or i not in full]
 
 
 def _turned_cold(work: SeriesWork, outcome: SeriesOutcome) -> bool:
@@ -436,7 +502,12 @@ def _warm(
     result = screen(test_from, fixed)
     why = _needs_refit(model, index, first_new, result, options)
     light = why is not None and why.startswith("confirmed") and model.window is None
-    if why is not None and not light:
+    # Stale by age in a routine scan (few new points against the fit) under a
+    # rate limit: the old model still serves this scan's test, so the warm
+    # outcome is kept in case the refit is deferred.
+    routine = int(after.sum()) <= ROUTINE_SHARE * model.nobs
+    age_due = why == "age" and options.refit_share is not None and routine
+    if why is not None and not light and not age_due:
         return SeriesOutcome(work.series_id, "cold", note=f"refit: {why}")
     events = _reportable(result.events, options)
     found = {e.event_time for e in events}
@@ -455,6 +526,7 @@ def _warm(
         note=f"coefficients re-estimated: {why}" if light else None,
         reestimate=(*fixed, *result.events) if light else None,
         n_duplicates=merged,
+        refit_due=why if age_due else None,
     )
 
 

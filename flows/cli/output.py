@@ -151,6 +151,8 @@ def summary_record(summary: RunSummary) -> dict[str, Any]:
             "timings": dict(summary.timings),
             "source_problems": list(summary.problems),
             "notes": list(summary.notes),
+            "refits": dict(summary.refits),
+            "refits_deferred": summary.refits_deferred,
         }
     )
 

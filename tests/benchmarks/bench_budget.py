@@ -40,6 +40,9 @@ def main() -> None:
     parser.add_argument("--shifted", type=int, default=40)
     parser.add_argument("--budget", type=float, default=FALSE_BUDGET)
     parser.add_argument("--seed", type=int, default=10)
+    parser.add_argument(
+        "--refit-share", type=float, default=0.02, help="scan's refit rate limit (RunOptions)"
+    )
     args = parser.parse_args()
     n, k = args.series, args.shifted
     rng = np.random.default_rng(args.seed)
@@ -58,7 +61,7 @@ def main() -> None:
             history=HISTORY,
             scans=SCANS,
             per_scan=PER_SCAN,
-            options=AnalysisOptions(false_budget=args.budget),
+            options=AnalysisOptions(false_budget=args.budget, refit_share=args.refit_share),
         )
         wall = time.perf_counter() - t0
     days = (HISTORY + SCANS * PER_SCAN) / 1440

@@ -198,3 +198,35 @@ def test_a_work_batch_is_one_opaque_value_that_pickles_whole(cold):
     assert seen == [batch]
     again = pickle.loads(cloudpickle.dumps(batch))
     assert len(again) == 2 and list(again) == works
+
+
+def test_refits_beyond_the_share_are_deferred_longest_waiting_first(tmp_path):
+    # Four clean series, all stale by age (refit_after 0.05); a share of 0.25 of
+    # a batch of four allows one full refit: the series whose watermark is
+    # oldest (it has waited longest) is refitted; the others are tested warm
+    # with their old model (watermark moved on, no new model) and counted as
+    # deferred.
+    options = replace(OPTIONS, refit_after=0.05, refit_share=0.25)
+    parts, works = [], []
+    for k, name in enumerate(["rack-a", "rack-b", "rack-c", "rack-d"]):
+        data = make_series(seed=20 + k, shift=False).assign(series_id=name)
+        parts.append(data)
+        mark_at = HISTORY - (30 if name == "rack-c" else 0)
+        first = data.iloc[:mark_at]
+        fitted = analyse_series_work(SeriesWork(name), first["timestamp"], first["value"], options)
+        works.append(SeriesWork(name, fitted.model, fitted.watermark))
+    folder = tmp_path / "fleet"
+    folder.mkdir()
+    pd.concat(parts).to_parquet(folder / "part-0.parquet", index=False)
+    outcomes = run_batch(open_source(folder), works, options).outcomes
+    by_id = {o.series_id: o for o in outcomes}
+    assert by_id["rack-c"].mode == "cold" and by_id["rack-c"].note == "refit: age"
+    for name in ("rack-a", "rack-b", "rack-d"):
+        out = by_id[name]
+        work = next(w for w in works if w.series_id == name)
+        assert out.mode == "warm" and out.refit_deferred and out.refit_due is None
+        assert out.watermark > work.watermark and out.model is None
+        assert out.note == "refit deferred: age"
+    # Without a limit every due refit is made.
+    unlimited = run_batch(open_source(folder), works, replace(options, refit_share=None))
+    assert [o.mode for o in unlimited.outcomes] == ["cold"] * 4
