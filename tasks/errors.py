@@ -103,3 +103,16 @@ def is_transient(exc: BaseException | None) -> bool:
             return True
         return isinstance(exc, sa.exc.OperationalError | sa.exc.InterfaceError)
     return isinstance(exc, OSError | TimeoutError)
+
+
+def mask_url(url: str | sa.URL) -> str:
+    """A database URL for a message: the password hidden (``***``).
+
+    A text that is no URL comes back as ``<unparseable URL>``: it may hold a
+    password in a form the parser does not know.
+    """
+    try:
+        parsed = url if isinstance(url, sa.URL) else sa.make_url(url)
+        return parsed.render_as_string(hide_password=True)
+    except (sa.exc.ArgumentError, ValueError):
+        return "<unparseable URL>"

@@ -23,7 +23,7 @@ from pydantic import ValidationError
 from changekind.flows.cli.app import OPTION_NAMES, validation_text
 from changekind.flows.settings import RunOptions, Settings, split_password
 from changekind.tasks import persist
-from changekind.tasks.errors import ConfigError
+from changekind.tasks.errors import ConfigError, mask_url
 from changekind.tasks.fetch import open_source
 from changekind.tasks.window import window_text
 
@@ -115,7 +115,7 @@ def require_tables(url: str) -> None:
         engine.dispose()
     if not present:
         raise ConfigError(
-            f"database {engine.url.render_as_string(hide_password=True)!r} holds no changekind "
+            f"database {mask_url(engine.url)!r} holds no changekind "
             "tables yet; run 'changekind scan' or 'changekind backfill' against it first"
         )
 

@@ -28,6 +28,7 @@ from changekind.flows.cli.options import (
 )
 from changekind.tasks.errors import ChangekindError
 from changekind.tasks.fetch import open_source
+from changekind.tasks.report.words import number
 from changekind.tasks.types import format_duration
 from changekind.tasks.window import MAD_SCALE, drill, parse_window
 
@@ -37,8 +38,8 @@ DEFAULT_AROUND = 2
 """Windows shown either side of the drilled one."""
 
 
-def _value(x: float) -> str:
-    return "-" if not math.isfinite(x) else f"{x:.6g}"
+def _point(x: float) -> str:
+    return number(x, ".6g")
 
 
 def _windows_table(rows: pd.DataFrame, title: str) -> Table:
@@ -53,7 +54,7 @@ def _windows_table(rows: pd.DataFrame, title: str) -> Table:
         med = float(np.median(v)) if v.size else math.nan
         spread = MAD_SCALE * float(np.median(np.abs(v - med))) if v.size else math.nan
         cells = (
-            [_value(v[0]), _value(v.min()), _value(med), _value(v.max()), _value(v[-1])]
+            [_point(v[0]), _point(v.min()), _point(med), _point(v.max()), _point(v[-1])]
             if v.size
             else ["-"] * 5
         )
@@ -62,7 +63,7 @@ def _windows_table(rows: pd.DataFrame, title: str) -> Table:
             part["window_start"].iloc[0].isoformat(),
             str(v.size),
             *cells,
-            _value(spread),
+            _point(spread),
             style="bold" if offset == 0 else None,
         )
     return table
@@ -79,7 +80,7 @@ def _points_table(rows: pd.DataFrame) -> Table:
         when = stamp.isoformat() if hasattr(stamp, "isoformat") else str(stamp)
         table.add_row(
             when,
-            _value(float(value)),
+            _point(float(value)),
             f"{int(offset):+d}" if offset else "0",
             style="bold" if offset == 0 else None,
         )
