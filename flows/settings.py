@@ -47,7 +47,9 @@ class RunOptions(BaseModel):
 
     model_config = ConfigDict(frozen=True, extra="forbid")
 
-    critical: float | None = Field(default=None, gt=1.0, le=20.0)
+    # One bound for every command (detect and the fleet runs): above one standard
+    # error (below, every point is an event), at most 100 (|t| of no real event).
+    critical: float | None = Field(default=None, gt=1.0, le=100.0)
     periods: tuple[int, ...] | None = None
     min_points: int = Field(default=96, ge=24, le=1_000_000)
     context_points: int = Field(default=240, ge=10, le=100_000)

@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import functools
 import json
-import math
 import os
 import sys
 import traceback
@@ -21,24 +20,28 @@ from pathlib import Path
 from typing import Annotated
 
 import typer
+from pydantic import ValidationError
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 
 from changekind.flows.cli.app import (
     DEBUG_ENV,
     EXIT_SERIES_FAILED,
+    OPTION_NAMES,
     app,
     err_console,
     fail_usage,
     out_console,
+    validation_text,
 )
 from changekind.flows.cli.output import event_records, print_result
+from changekind.flows.settings import RunOptions
 from changekind.tasks.decompose import regularize
 from changekind.tasks.detect import analyse_series
 from changekind.tasks.errors import ChangekindError, SeriesError, SourceError
 from changekind.tasks.fetch.inputs import SeriesInput, read_series_file
 from changekind.tasks.fetch.values import SourceProblem
 from changekind.tasks.types import DetectionResult, Event
-from changekind.tasks.window import detect_windowed, parse_window
+from changekind.tasks.window import detect_windowed
 
 # --------------------------------------------------------------------------- running the engine
 
@@ -238,15 +241,6 @@ def report_problems(outcomes: Sequence[SeriesOutcome]) -> int:
 # --------------------------------------------------------------------------- detect
 
 
-def _check_critical(value: float | None) -> float | None:
-    if value is not None and (not math.isfinite(value) or value <= 0):
-        raise typer.BadParameter(
-            f"{value} is not usable; give a positive number of standard errors such as 3.5 "
-            "(or leave it out for the default, which grows with the series length)"
-        )
-    return value
-
-
 @app.command()
 def detect(
     input: Annotated[
@@ -262,7 +256,6 @@ def detect(
         list[int] | None,
         typer.Option(
             "--season",
-            min=2,
             metavar="N",
             help="Seasonal period in samples (e.g. 288 for daily on 5-minute data); "
             "repeat for several.  Default: day/week/year cycles found in the data.",
@@ -274,7 +267,6 @@ def detect(
         typer.Option(
             "--critical",
             metavar="C",
-            callback=_check_critical,
             help="Critical |t| for an event.  Default grows with the series length to "
             "keep false events rare.",
             show_default=False,
@@ -297,13 +289,16 @@ def detect(
     ] = None,
 ) -> None:
     """Find events in every series of INPUT and say what kind they are."""
+    # One validation of each option: the same model as the fleet runs' options.
+    try:
+        options = RunOptions(
+            critical=critical, periods=tuple(season) if season else None, window=window
+        )
+    except ValidationError as exc:
+        raise fail_usage(validation_text(exc, OPTION_NAMES)) from None
     worker = None
-    if window is not None:
-        try:
-            parse_window(window)
-        except ChangekindError as exc:
-            raise fail_usage(str(exc)) from None
-        worker = functools.partial(_windowed_worker, window=window)
+    if options.window is not None:
+        worker = functools.partial(_windowed_worker, window=options.window)
     problems: list[SourceProblem] = []
     try:
         items = read_series_file(input, problems=problems)
@@ -312,9 +307,8 @@ def detect(
     err = err_console()
     for problem in problems:  # skipped files and rows of a folder, as scan records them
         err.print(f"changekind: {problem.describe()}", markup=False)
-    periods = tuple(season) if season else None
     outcomes = _run_with_progress(
-        items, periods=periods, critical=critical, label="analysing", worker=worker
+        items, periods=options.periods, critical=options.critical, label="analysing", worker=worker
     )
     if as_json:
         sys.stdout.write(json.dumps(event_records(outcomes), indent=2, allow_nan=False) + "\n")
