@@ -116,3 +116,21 @@ def mask_url(url: str | sa.URL) -> str:
         return parsed.render_as_string(hide_password=True)
     except (sa.exc.ArgumentError, ValueError):
         return "<unparseable URL>"
+
+
+def series_failure(exc: Exception) -> tuple[str, str] | None:
+    """The one per-series error policy: ``(stage, problem)`` when ``exc`` is one series' own.
+
+    ``SeriesError``: the data of the series (stage ``prepare``, its problem in
+    words); another of our errors, or a numerical failure (``ValueError``,
+    ``ArithmeticError``, numpy's ``LinAlgError``), during its analysis (stage
+    ``detect``).  Anything else is None: not the series' fault, so the caller
+    must not pass it off as one (a bug, or the machinery failing).
+    """
+    if isinstance(exc, SeriesError):
+        return "prepare", exc.problem
+    if isinstance(exc, ChangekindError):
+        return "detect", str(exc)
+    if isinstance(exc, ValueError | ArithmeticError):
+        return "detect", f"{type(exc).__name__}: {exc}"
+    return None

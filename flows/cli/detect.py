@@ -37,7 +37,7 @@ from changekind.flows.cli.output import event_records, print_result
 from changekind.flows.settings import RunOptions
 from changekind.tasks.decompose import regularize
 from changekind.tasks.detect import analyse_series
-from changekind.tasks.errors import ChangekindError, SeriesError, SourceError
+from changekind.tasks.errors import SourceError, series_failure
 from changekind.tasks.fetch.inputs import SeriesInput, read_series_file
 from changekind.tasks.fetch.values import SourceProblem
 from changekind.tasks.types import DetectionResult, Event
@@ -107,14 +107,14 @@ def analyse_windowed_one(
 
 
 def _outcome(series_id: str, run: Callable[[], DetectionResult]) -> SeriesOutcome:
-    """``run()`` as an outcome: the input's problems in words; a bug does not stop the others."""
+    """``run()`` as an outcome: a series' own problem in words (:func:`series_failure`);
+    anything else, a bug, is said as one without stopping the other series."""
     try:
         return SeriesOutcome(series_id, run())
-    except SeriesError as exc:
-        return SeriesOutcome(series_id, None, exc.problem)
-    except ChangekindError as exc:
-        return SeriesOutcome(series_id, None, str(exc))
-    except Exception as exc:  # a bug: keep the other series going, but say so
+    except Exception as exc:
+        failure = series_failure(exc)
+        if failure is not None:
+            return SeriesOutcome(series_id, None, failure[1])
         problem = f"internal error ({type(exc).__name__}: {exc}); please report it"
         if os.environ.get(DEBUG_ENV):
             problem += "\n" + traceback.format_exc()

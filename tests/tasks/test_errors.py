@@ -6,10 +6,11 @@ masked text back; the password must not survive in any form.
 
 from __future__ import annotations
 
+import numpy as np
 import pytest
 import sqlalchemy as sa
 
-from changekind.tasks.errors import mask_url
+from changekind.tasks.errors import ModelError, TooShortError, mask_url, series_failure
 from changekind.tasks.report.words import number
 
 
@@ -47,3 +48,21 @@ def test_a_text_that_is_no_url_is_not_echoed():
 )
 def test_one_number_formatting_for_tables_pages_and_summaries(value, fmt, text):
     assert number(value, fmt) == text
+
+
+@pytest.mark.parametrize(
+    ("error", "failure"),
+    [
+        (
+            TooShortError("disk-1", "12 points; at least 24 are needed"),
+            ("prepare", "12 points; at least 24 are needed"),
+        ),
+        (ModelError("no ARIMA order converged"), ("detect", "no ARIMA order converged")),
+        (np.linalg.LinAlgError("singular matrix"), ("detect", "LinAlgError: singular matrix")),
+        (ZeroDivisionError("division by zero"), ("detect", "ZeroDivisionError: division by zero")),
+        (KeyError("a bug"), None),
+        (RuntimeError("the machinery failed"), None),
+    ],
+)
+def test_one_per_series_error_policy(error, failure):
+    assert series_failure(error) == failure
