@@ -135,6 +135,14 @@ class FleetConfig:
     sql: dict[str, str] = field(default_factory=dict)
 
 
+def column_map(
+    series_column: str | None, timestamp_column: str | None, value_column: str | None
+) -> dict[str, str]:
+    """The source's column names given on the command line (``--series-column`` ...)."""
+    given = (("series_id", series_column), ("timestamp", timestamp_column), ("value", value_column))
+    return {key: name for key, name in given if name is not None}
+
+
 def fleet_config(
     *,
     source: str | None,
@@ -204,15 +212,7 @@ def fleet_config(
         raise ConfigError(validation_text(exc, OPTION_NAMES)) from None
 
     # Step 4: the source.
-    columns = {
-        key: name
-        for key, name in (
-            ("series_id", series_column),
-            ("timestamp", timestamp_column),
-            ("value", value_column),
-        )
-        if name is not None
-    }
+    columns = column_map(series_column, timestamp_column, value_column)
     spec = open_source(source, columns=columns or None, table=table, query=query)
     sql = {k: v for k, v in (("table", table), ("query", query)) if v is not None}
 

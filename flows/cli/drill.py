@@ -18,12 +18,14 @@ import typer
 from rich.table import Table
 
 from changekind.flows.cli.app import app, err_console, fail_usage, out_console
+from changekind.flows.cli.config import column_map
 from changekind.flows.cli.options import (
     QueryOpt,
     SeriesColOpt,
     SourceOpt,
     TableOpt,
     TimeColOpt,
+    TimestampUnitOpt,
     ValueColOpt,
 )
 from changekind.tasks.errors import ChangekindError
@@ -182,15 +184,7 @@ def drill_command(
     value_column: ValueColOpt = None,
     table: TableOpt = None,
     query: QueryOpt = None,
-    timestamp_unit: Annotated[
-        str | None,
-        typer.Option(
-            "--timestamp-unit",
-            metavar="UNIT",
-            help="Numeric timestamps are epoch times in this unit: s, ms, us or ns.",
-            show_default=False,
-        ),
-    ] = None,
+    timestamp_unit: TimestampUnitOpt = None,
     timezone: Annotated[
         str,
         typer.Option("--timezone", metavar="ZONE", help="IANA time zone of naive timestamps."),
@@ -201,15 +195,7 @@ def drill_command(
     source = source if source is not None else os.environ.get("CHANGEKIND_SOURCE")
     if not source:
         raise fail_usage("no source given; pass --source PATH (or set CHANGEKIND_SOURCE)")
-    columns = {
-        key: name
-        for key, name in (
-            ("series_id", series_column),
-            ("timestamp", timestamp_column),
-            ("value", value_column),
-        )
-        if name is not None
-    }
+    columns = column_map(series_column, timestamp_column, value_column)
     try:
         width = parse_window(window)
         spec = open_source(
