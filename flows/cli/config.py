@@ -16,7 +16,6 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-import pandas as pd
 import sqlalchemy as sa
 from pydantic import ValidationError
 
@@ -25,6 +24,7 @@ from changekind.flows.settings import RunOptions, Settings, split_password
 from changekind.tasks import persist
 from changekind.tasks.errors import ConfigError, mask_url
 from changekind.tasks.fetch import open_source
+from changekind.tasks.timeaxis import parse_instant
 from changekind.tasks.window import window_text
 
 RUNNERS: tuple[str, ...] = ("threads", "processes", "dask")
@@ -247,31 +247,23 @@ def fleet_config(
 
 
 def check_time(value: str | None, what: str, time_kind: str) -> str | None:
-    """A time bound the source can compare with: a number or a date-time, as it holds."""
+    """A time bound the source can compare with: a number or a date-time, as it holds.
+
+    Read by the time axis's rule (:func:`~changekind.tasks.timeaxis.parse_instant`:
+    ISO 8601 only, a naive time is UTC).
+    """
     if value is None:
         return None
+    try:
+        got = parse_instant(value, what=what)
+    except ConfigError:
+        got = None
     if time_kind == "numeric":
-        try:
-            float(value)
-        except ValueError:
+        if not isinstance(got, float):
             raise ConfigError(
                 f"{what} {value!r} is not a number, and the source's timestamps are numbers"
-            ) from None
-        return value
-
-    bad = False
-    try:
-        float(value)
-        bad = True
-    except ValueError:
-        pass
-    if not bad:
-        try:
-            stamp = pd.Timestamp(value)
-            bad = stamp is pd.NaT
-        except (ValueError, TypeError, OverflowError):
-            bad = True
-    if bad:
+            )
+    elif got is None or isinstance(got, float):
         raise ConfigError(
             f"{what} {value!r} is not a date-time; give an ISO 8601 time such as "
             "2026-06-01 or 2026-06-01T12:00:00Z"
