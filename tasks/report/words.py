@@ -18,11 +18,16 @@ __all__ = [
 ]
 
 
-def number(value: float | None, fmt: str) -> str:
-    """``value`` formatted, or ``-`` when it is missing or not finite."""
-    if value is None or not math.isfinite(value):
+def number(value: object, fmt: str) -> str:
+    """``value`` formatted with ``fmt``, or ``-`` when it is missing, not a number
+    or not finite: the one number formatting of tables, pages and summaries."""
+    if value is None:
         return "-"
-    return format(value, fmt)
+    try:
+        x = float(value)  # type: ignore[arg-type]
+    except (TypeError, ValueError):
+        return "-"
+    return format(x, fmt) if math.isfinite(x) else "-"
 
 
 def type_name(kind: str) -> str:
