@@ -24,8 +24,10 @@ from scipy.signal import lfilter
 from statsmodels.tsa.arima.model import ARIMA
 from typer.testing import CliRunner
 
-from changekind.flows.cli import analyse_inputs, app
-from changekind.flows.inputs import SeriesInput, read_series_file
+from changekind.flows.cli import app
+from changekind.flows.cli.detect import analyse_inputs
+from changekind.tasks.fetch import open_source, read_series
+from changekind.tasks.fetch.inputs import SeriesInput, read_series_file
 from changekind.tasks.types import EVENT_TYPES
 
 N, T_SHIFT, PHI, SHIFT = 300, 150, 0.5, 8.0  # shift of 8 innovation sds at t = 150
@@ -306,6 +308,7 @@ def _console_script() -> list[str]:
     return [str(script)] if script.exists() else [sys.executable, "-m", "changekind.flows.cli"]
 
 
+@pytest.mark.integration  # a fresh interpreter
 def test_console_script_exit_codes_and_streams(tmp_path):
     path = tmp_path / "mixed.csv"
     long_frame({"good": ar1_with_shift(14), "flat": np.full(60, 1.0)}).to_csv(path, index=False)
@@ -329,6 +332,7 @@ def test_console_script_exit_codes_and_streams(tmp_path):
     assert missing.returncode == 2 and "Traceback" not in missing.stderr
 
 
+@pytest.mark.integration  # a fresh interpreter
 def test_detect_does_not_import_prefect(tmp_path):
     path = tmp_path / "two.csv"
     long_frame({"a": ar1_with_shift(15), "b": ar1_with_shift(16)}).to_csv(path, index=False)
@@ -431,3 +435,28 @@ def test_merged_duplicate_timestamps_are_reported(tmp_path):
     as_json = runner.invoke(app, ["detect", str(path), "--json"])
     assert "3 duplicate timestamp(s)" in as_json.stderr
     json.loads(as_json.stdout)  # stdout stays pure JSON
+
+
+def test_detect_and_scan_accept_the_same_gzip_csv_files_and_folders(tmp_path):
+    # One suffix rule for every command (tasks/fetch/files.py): .csv.gz files,
+    # and folders of them, are read by detect and by the fleet reader alike.
+    y = _shifted_series()
+    stamps = pd.date_range("2030-01-01", periods=len(y), freq="h").strftime("%Y-%m-%dT%H:%M")
+    frame = pd.DataFrame({"series_id": "disk-1", "timestamp": stamps, "value": y})
+    frame.to_csv(tmp_path / "one.csv.gz", index=False)
+    folder = tmp_path / "fleet"
+    folder.mkdir()
+    frame.iloc[:150].to_csv(folder / "a.csv.gz", index=False)
+    frame.iloc[150:].to_csv(folder / "b.csv.gz", index=False)
+    for path in (tmp_path / "one.csv.gz", folder):
+        spec = open_source(path)
+        assert spec.kind == "csv"
+        read = read_series(spec, ["disk-1"])
+        assert read["timestamp"].tolist() == stamps.tolist()
+        np.testing.assert_array_equal(read["value"].to_numpy(), y)
+    by_file = runner.invoke(app, ["detect", str(tmp_path / "one.csv.gz"), "--json"])
+    by_folder = runner.invoke(app, ["detect", str(folder), "--json"])
+    assert by_file.exit_code == 0 and by_folder.exit_code == 0, by_file.output + by_folder.output
+    assert json.loads(by_file.stdout) == json.loads(by_folder.stdout)
+    (shift,) = [e for e in json.loads(by_file.stdout) if e["event_type"] == "LS"]
+    assert shift["event_time"] == stamps[len(y) // 2]

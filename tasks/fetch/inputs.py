@@ -1,6 +1,9 @@
-"""Reading the INPUT file of ``changekind detect``.
+"""Reading the INPUT of ``changekind detect``: one file or a folder, as series.
 
-Two layouts are accepted, in CSV (optionally gzip-compressed) or Parquet:
+The paths, suffixes and folders are those of the fleet commands
+(:func:`~changekind.tasks.fetch.files.file_format`); a folder is read by the
+fleet reader itself.  Two layouts are accepted, in CSV (optionally
+gzip-compressed) or Parquet:
 
 * long form: columns ``series_id``, ``timestamp``, ``value`` (any others are
   ignored), one row per observation, any number of series;
@@ -22,14 +25,18 @@ import numpy as np
 import pandas as pd
 
 from changekind.tasks.errors import SourceError
-from changekind.tasks.fetch import PARQUET_SUFFIXES, numeric_text
+from changekind.tasks.fetch.files import file_format
+from changekind.tasks.fetch.reading import open_source, read_windows, survey_source
+from changekind.tasks.fetch.times import numeric_text
+from changekind.tasks.fetch.values import (
+    CSV_SUFFIXES,
+    LONG_COLUMNS,
+    PARQUET_SUFFIXES,
+    SeriesWindow,
+    SourceProblem,
+)
 
-LONG_COLUMNS = ("series_id", "timestamp", "value")
 SHORT_COLUMNS = ("timestamp", "value")
-
-# The fleet readers' suffixes (tasks/fetch.py), and gzip-compressed CSV.
-_CSV_SUFFIXES = (".csv", ".csv.gz")
-_PARQUET_SUFFIXES = PARQUET_SUFFIXES
 
 
 @dataclass(frozen=True, slots=True, eq=False)
@@ -53,7 +60,7 @@ class SeriesInput:
 
 def _suffix(path: Path) -> str:
     name = path.name.lower()
-    for suffix in _CSV_SUFFIXES + _PARQUET_SUFFIXES:
+    for suffix in sorted(CSV_SUFFIXES + PARQUET_SUFFIXES, key=len, reverse=True):
         if name.endswith(suffix):
             return suffix
     return path.suffix.lower()
@@ -68,16 +75,16 @@ def series_name(path: Path) -> str:
     return path.stem
 
 
-def _read_frame(path: Path) -> pd.DataFrame:
-    suffix = _suffix(path)
+def _read_frame(path: Path, problems: list[SourceProblem] | None) -> pd.DataFrame:
     if not path.exists():
         raise SourceError(f"{path}: no such file; give the path of a CSV or Parquet file")
     if path.is_dir():
-        return _read_folder(path)
+        return _read_folder(path, problems)
+    kind = file_format(path)
     try:
-        if suffix in _CSV_SUFFIXES:
+        if kind == "csv":
             return pd.read_csv(path, dtype=str, skipinitialspace=True)
-        if suffix in _PARQUET_SUFFIXES:
+        if kind == "parquet":
             return pd.read_parquet(path)
     except PermissionError as exc:
         raise SourceError(f"{path}: permission denied ({exc.strerror})") from exc
@@ -90,30 +97,26 @@ def _read_frame(path: Path) -> pd.DataFrame:
         raise SourceError(f"{path} is not readable as CSV: {exc}") from exc
     except (OSError, ValueError) as exc:
         # pyarrow's ArrowInvalid is a ValueError; a gzip error is an OSError.
-        kind = "CSV" if suffix in _CSV_SUFFIXES else "Parquet"
-        raise SourceError(f"{path} is not readable as {kind}: {exc}") from exc
+        name = "CSV" if kind == "csv" else "Parquet"
+        raise SourceError(f"{path} is not readable as {name}: {exc}") from exc
     raise SourceError(
         f"{path}: unknown file type {path.suffix or '(no suffix)'!r}; "
         "INPUT must end in .csv, .csv.gz, .parquet, .parq or .pq (or be a folder of them)"
     )
 
 
-def _read_folder(path: Path) -> pd.DataFrame:
-    """A folder of long-form files, read as the fleet commands read it (tasks/fetch.py).
+def _read_folder(path: Path, problems: list[SourceProblem] | None) -> pd.DataFrame:
+    """A folder of long-form files, read as the fleet commands read it.
 
-    Files and rows that cannot be read are skipped and named on stderr, as
-    ``scan`` records them.
+    Files and rows that cannot be read are skipped and added to ``problems``,
+    as ``scan`` records them.
     """
-    import sys
-
-    from changekind.tasks.fetch import SeriesWindow, open_source, read_windows, survey_source
-
     spec = open_source(path)
     survey = survey_source(spec)
-    problems = list(survey.problems)
-    frame = read_windows(spec, [SeriesWindow(s) for s in survey.series_ids], problems=problems)
-    for problem in problems:
-        print(f"changekind: {problem.describe()}", file=sys.stderr)
+    found = list(survey.problems)
+    frame = read_windows(spec, [SeriesWindow(s) for s in survey.series_ids], problems=found)
+    if problems is not None:
+        problems.extend(found)
     return frame
 
 
@@ -198,14 +201,20 @@ def _one(series_id: str, rows: pd.DataFrame) -> SeriesInput:
     )
 
 
-def read_series_file(path: str | Path) -> list[SeriesInput]:
-    """Read every series of a CSV or Parquet INPUT file.
+def read_series_file(
+    path: str | Path, *, problems: list[SourceProblem] | None = None
+) -> list[SeriesInput]:
+    """Read every series of a CSV or Parquet INPUT file, or of a folder of them.
 
     Parameters
     ----------
     path : str or pathlib.Path
-        A ``.csv``, ``.csv.gz``, ``.parquet`` or ``.pq`` file in long form or
-        with two columns (see the module docstring).
+        A ``.csv``, ``.csv.gz``, ``.parquet``, ``.parq`` or ``.pq`` file in long
+        form or with two columns (see the module docstring), or a folder of
+        long-form files.
+    problems : list, optional
+        Receives the files and rows of a folder that could not be read (they
+        are skipped, as the fleet commands skip them).
 
     Returns
     -------
@@ -218,5 +227,5 @@ def read_series_file(path: str | Path) -> list[SeriesInput]:
         The file is missing, unreadable, empty or has the wrong columns.
     """
     path = Path(path)
-    frame = _read_frame(path)
+    frame = _read_frame(path, problems)
     return frame_to_series(frame, default_id=series_name(path), source=str(path))

@@ -1,74 +1,44 @@
-"""The ``changekind`` command line.
+"""``changekind detect``: every series of one input, analysed on the machine's cores.
 
-``changekind detect`` calls the engine's pure functions directly, in a process
-pool over the machine's cores: no Prefect flow, so no Prefect import (it costs
-seconds).  Commands that need Prefect import it inside their own function.
-
-The fleet commands (scan, backfill, refit, events, triage, demo) live in
-:mod:`changekind.flows.cli_fleet`, which registers them on :data:`app` when
-imported at the bottom of this module (see DEVELOPERS.md).
+It calls the engine's pure functions directly, in a process pool: no Prefect
+flow, so no Prefect import (it costs seconds; ``tests/flows/cli/test_detect.py``
+checks that ``detect`` does not load it).  ``--window`` analyses window
+summaries instead of raw points (:func:`changekind.tasks.window.detect_windowed`).
 """
 
 from __future__ import annotations
 
 import functools
 import json
-import math
 import os
 import sys
 import traceback
 from collections.abc import Callable, Sequence
 from concurrent.futures import ProcessPoolExecutor, as_completed
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
-from typing import TYPE_CHECKING, Annotated, Any
+from typing import Annotated
 
 import typer
-from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
-from rich.table import Table
 
-from changekind.flows.inputs import SeriesInput, read_series_file
-from changekind.tasks.errors import ChangekindError, SeriesError, SourceError
-
-if TYPE_CHECKING:
-    from changekind.tasks.types import DetectionResult, Event
-
-EXIT_SERIES_FAILED = 1
-"""Some series could not be analysed (the others were)."""
-
-EXIT_USAGE = 2
-"""Bad usage or unreadable input; nothing was analysed."""
-
-DEBUG_ENV = "CHANGEKIND_DEBUG"
-"""Set to 1 to get the traceback of an unexpected error in a series."""
-
-app = typer.Typer(
-    name="changekind",
-    help="Find and classify events (AO, LS, TC, IO) in fleets of metric series.",
-    no_args_is_help=True,
-    add_completion=False,
-    pretty_exceptions_enable=False,
+from changekind.flows.cli.app import (
+    DEBUG_ENV,
+    EXIT_SERIES_FAILED,
+    app,
+    err_console,
+    fail_usage,
+    out_console,
 )
-
-
-def _stdout() -> Console:
-    """Console for results: plain lines are never hard-wrapped (commands stay copyable)."""
-    console = Console(highlight=False, soft_wrap=True)
-    if not console.is_terminal:
-        console = Console(highlight=False, soft_wrap=True, width=120)
-    return console
-
-
-def _stderr() -> Console:
-    return Console(stderr=True, highlight=False, soft_wrap=True)
-
-
-def _fail_usage(message: str) -> typer.Exit:
-    """Print one clear line on stderr; return the exit to raise."""
-    _stderr().print(f"changekind: error: {message}", markup=False)
-    return typer.Exit(EXIT_USAGE)
-
+from changekind.flows.cli.output import event_records, print_result
+from changekind.tasks.critical import check_critical
+from changekind.tasks.decompose import regularize
+from changekind.tasks.detect import analyse_series
+from changekind.tasks.errors import ChangekindError, SeriesError, SourceError
+from changekind.tasks.fetch.inputs import SeriesInput, read_series_file
+from changekind.tasks.fetch.values import SourceProblem
+from changekind.tasks.types import DetectionResult, Event
+from changekind.tasks.window import detect_windowed, parse_window
 
 # --------------------------------------------------------------------------- running the engine
 
@@ -93,30 +63,59 @@ def analyse_one(
 
     Runs in a worker process, so it takes and returns picklable values only.
     """
-    from dataclasses import replace
 
-    from changekind.tasks.decompose import regularize
-    from changekind.tasks.detect import analyse_series
-
-    try:
+    def run() -> DetectionResult:
         result = analyse_series(
             item.series_id, item.timestamps, item.values, periods=periods, critical=critical
         )
         # Duplicate timestamps are merged by their median: say how many.
         merged = regularize(item.series_id, item.timestamps, item.values).n_duplicates
         if merged:
-            note = duplicates_note(merged)
-            result = replace(result, notes=(*result.notes, note))
+            result = replace(result, notes=(*result.notes, duplicates_note(merged)))
+        return result
+
+    return _outcome(item.series_id, run)
+
+
+def analyse_windowed_one(
+    item: SeriesInput,
+    window: str,
+    periods: tuple[int, ...] | None,
+    critical: float | None,
+) -> SeriesOutcome:
+    """:func:`analyse_one` for windowed mode: one series, problems as text, picklable.
+
+    The outcome's result is :meth:`WindowedResult.as_detection`, so the
+    ``detect`` command's table and JSON output apply unchanged (``nobs`` counts
+    windows; a note gives the raw points).
+    """
+
+    def run() -> DetectionResult:
+        return detect_windowed(
+            item.series_id,
+            item.timestamps,
+            item.values,
+            window,
+            critical=critical,
+            periods=periods,
+        ).as_detection()
+
+    return _outcome(item.series_id, run)
+
+
+def _outcome(series_id: str, run: Callable[[], DetectionResult]) -> SeriesOutcome:
+    """``run()`` as an outcome: the input's problems in words; a bug does not stop the others."""
+    try:
+        return SeriesOutcome(series_id, run())
     except SeriesError as exc:
-        return SeriesOutcome(item.series_id, None, exc.problem)
+        return SeriesOutcome(series_id, None, exc.problem)
     except ChangekindError as exc:
-        return SeriesOutcome(item.series_id, None, str(exc))
+        return SeriesOutcome(series_id, None, str(exc))
     except Exception as exc:  # a bug: keep the other series going, but say so
         problem = f"internal error ({type(exc).__name__}: {exc}); please report it"
         if os.environ.get(DEBUG_ENV):
             problem += "\n" + traceback.format_exc()
-        return SeriesOutcome(item.series_id, None, problem)
-    return SeriesOutcome(item.series_id, result)
+        return SeriesOutcome(series_id, None, problem)
 
 
 def duplicates_note(n: int) -> str:
@@ -195,7 +194,7 @@ def _run_with_progress(
     worker: Callable[..., SeriesOutcome] | None = None,
 ) -> list[SeriesOutcome]:
     """:func:`analyse_inputs` with a progress bar on stderr when it is a terminal."""
-    err = _stderr()
+    err = err_console()
     if len(items) < 2 or not err.is_terminal:
         return analyse_inputs(items, periods=periods, critical=critical, worker=worker)
     progress = Progress(
@@ -225,104 +224,9 @@ def _run_with_progress(
             progress.stop()
 
 
-# --------------------------------------------------------------------------- output
-
-
-def _finite(value: Any) -> Any:
-    """JSON has no NaN or infinity: write them as null."""
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    if isinstance(value, dict):
-        return {k: _finite(v) for k, v in value.items()}
-    if isinstance(value, list | tuple):
-        return [_finite(v) for v in value]
-    return value
-
-
-def _ordered_events(result: DetectionResult) -> list[Event]:
-    return sorted(result.events, key=lambda e: e.position)
-
-
-def event_records(outcomes: Sequence[SeriesOutcome]) -> list[dict[str, Any]]:
-    """Every event as its JSON record, series in input order, then by time."""
-    return [
-        _finite(event.to_record())
-        for outcome in outcomes
-        if outcome.result is not None
-        for event in _ordered_events(outcome.result)
-    ]
-
-
-def top_weights(event: Event, *, k: int = 3, floor: float = 0.01) -> str:
-    """The leading type weights, e.g. ``'LS 0.79 · TC 0.19'``."""
-    ranked = sorted(event.type_weights, key=lambda kv: -kv[1])
-    shown = [f"{kind} {w:.2f}" for kind, w in ranked[:k] if w >= floor]
-    return " · ".join(shown) or "-"
-
-
-def _num(value: float | None, fmt: str) -> str:
-    if value is None or (isinstance(value, float) and not math.isfinite(value)):
-        return "-"
-    return format(value, fmt)
-
-
-def series_table(result: DetectionResult) -> Table:
-    """A readable table of one series' events."""
-    table = Table(
-        title=f"{result.series_id}",
-        title_justify="left",
-        caption=f"model: {result.model.spec()}",
-        caption_justify="left",
-    )
-    for name, justify in (
-        ("time", "left"),
-        ("type", "left"),
-        ("effect", "right"),
-        ("effect %", "right"),
-        ("t", "right"),
-        ("type weights", "left"),
-        ("status", "left"),
-        ("half-life", "right"),
-    ):
-        table.add_column(name, justify=justify, no_wrap=name in ("time", "type weights"))
-    for event in _ordered_events(result):
-        table.add_row(
-            event.event_time,
-            event.event_type,
-            _num(event.effect, "+.4g"),
-            _num(event.effect_pct, "+.1f"),
-            _num(event.t_stat, "+.2f"),
-            top_weights(event),
-            event.status,
-            event.half_life or "-",
-        )
-    return table
-
-
-def print_result(console: Console, result: DetectionResult) -> None:
-    """One series in human form: events table (or a line), model, patterns, notes."""
-    counts = f"{result.nobs} points, {result.n_missing} missing, critical |t| {result.critical:.2f}"
-    if result.events:
-        console.print(series_table(result))
-        console.print(f"  {counts}", markup=False)
-    else:
-        console.print(f"{result.series_id}: no events ({counts})", markup=False)
-        console.print(f"  model: {result.model.spec()}", markup=False)
-    for pattern in result.patterns:
-        console.print(
-            f"  recurring pattern: spikes every {pattern.period_time} "
-            f"({pattern.period} points), {pattern.occurrences} times, "
-            f"amplitude {pattern.amplitude:+.4g}; absorbed into the seasonal model",
-            markup=False,
-        )
-    for note in result.notes:
-        console.print(f"  note: {note}", markup=False)
-    console.print()
-
-
 def report_problems(outcomes: Sequence[SeriesOutcome]) -> int:
     """One stderr line per failed series; returns how many failed."""
-    err = _stderr()
+    err = err_console()
     failed = [o for o in outcomes if o.problem is not None]
     for outcome in failed:
         err.print(
@@ -335,8 +239,6 @@ def report_problems(outcomes: Sequence[SeriesOutcome]) -> int:
 
 
 def _check_critical(value: float | None) -> float | None:
-    from changekind.tasks.critical import check_critical
-
     try:
         return check_critical(value)
     except ValueError as exc:
@@ -395,17 +297,19 @@ def detect(
     """Find events in every series of INPUT and say what kind they are."""
     worker = None
     if window is not None:
-        from changekind.tasks.window import parse_window
-
         try:
             parse_window(window)
         except ChangekindError as exc:
-            raise _fail_usage(str(exc)) from None
+            raise fail_usage(str(exc)) from None
         worker = functools.partial(_windowed_worker, window=window)
+    problems: list[SourceProblem] = []
     try:
-        items = read_series_file(input)
+        items = read_series_file(input, problems=problems)
     except SourceError as exc:
-        raise _fail_usage(str(exc)) from None
+        raise fail_usage(str(exc)) from None
+    err = err_console()
+    for problem in problems:  # skipped files and rows of a folder, as scan records them
+        err.print(f"changekind: {problem.describe()}", markup=False)
     periods = tuple(season) if season else None
     outcomes = _run_with_progress(
         items, periods=periods, critical=critical, label="analysing", worker=worker
@@ -413,13 +317,13 @@ def detect(
     if as_json:
         sys.stdout.write(json.dumps(event_records(outcomes), indent=2, allow_nan=False) + "\n")
         sys.stdout.flush()
-        err = _stderr()
+        err = err_console()
         for outcome in outcomes:  # merged duplicates: the JSON array has no place for them
             for note in outcome.result.notes if outcome.result is not None else ():
                 if "duplicate timestamp" in note:
                     err.print(f"changekind: series {outcome.series_id!r}: {note}", markup=False)
     else:
-        console = _stdout()
+        console = out_console()
         for outcome in outcomes:
             if outcome.result is not None:
                 print_result(console, outcome.result)
@@ -430,26 +334,24 @@ def detect(
 def _windowed_worker(
     item: SeriesInput, periods: tuple[int, ...] | None, critical: float | None, *, window: str
 ) -> SeriesOutcome:
-    from changekind.flows.cli_window import analyse_windowed_one
-
     return analyse_windowed_one(item, window, periods, critical)
 
 
-def main() -> None:
-    """Entry point of the ``changekind`` console script."""
-    app()
+def windowed_records(
+    series_id: str,
+    timestamps,
+    values,
+    window: str,
+    critical: float | None = None,
+    *,
+    periods: tuple[int, ...] | None = None,
+) -> list[Event]:
+    """Windowed detection of one series: its events (level events and VC), by window.
 
-
-if __name__ == "__main__":
-    # Run as ``python -m``, this file is ``__main__``; the commands register
-    # themselves on the app of the importable module, so run that one.
-    from changekind.flows.cli import main as _main
-
-    _main()
-else:
-    # The other commands register themselves on ``app`` when imported.
-    from changekind.flows import (
-        cli_fleet,  # noqa: F401
-        cli_report,  # noqa: F401
-        cli_window,  # noqa: F401
+    Raises the ConfigError / SeriesError of
+    :func:`changekind.tasks.window.detect_windowed`.
+    """
+    result = detect_windowed(
+        series_id, timestamps, values, window, critical=critical, periods=periods
     )
+    return list(result.events)

@@ -6,8 +6,6 @@ events, and the observations around each event from the source;
 :func:`changekind.tasks.report.write_stored_report` draws the pictures and
 writes ``index.html`` beside them.  No Prefect flow: a report is a read-only
 look at what the scans wrote.
-
-Registers itself on the shared :data:`changekind.flows.cli.app` when imported.
 """
 
 from __future__ import annotations
@@ -15,15 +13,17 @@ from __future__ import annotations
 import contextlib
 from collections.abc import Sequence
 from pathlib import Path
-from typing import TYPE_CHECKING, Annotated, Any
+from typing import Annotated, Any
 
 import typer
+from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
 
-from changekind.flows.cli import EXIT_SERIES_FAILED, _fail_usage, _stderr, _stdout, app
-
-if TYPE_CHECKING:
-    from changekind.tasks.fetch import SourceSpec
-    from changekind.tasks.report.data import WrittenReport
+from changekind.flows.cli.app import EXIT_SERIES_FAILED, app, err_console, fail_usage, out_console
+from changekind.flows.settings import Settings
+from changekind.tasks.errors import ChangekindError
+from changekind.tasks.fetch import SourceSpec, open_source
+from changekind.tasks.report import data
+from changekind.tasks.report.data import WrittenReport
 
 
 def report(
@@ -132,16 +132,13 @@ def report(
     ] = None,
 ) -> None:
     """Write an HTML report of stored events, one picture per event."""
-    from changekind.flows.settings import Settings
-    from changekind.tasks.errors import ChangekindError
-    from changekind.tasks.fetch import open_source
 
     units = parse_units(unit or [])
     settings = Settings()
     db_url = db or settings.db_url
     location = source or settings.source
     if not location:
-        raise _fail_usage(
+        raise fail_usage(
             "the report needs the source the events came from: give --source PATH "
             "(or set CHANGEKIND_SOURCE)"
         )
@@ -169,10 +166,10 @@ def report(
             units=units,
         )
     except ChangekindError as exc:
-        raise _fail_usage(str(exc)) from None
+        raise fail_usage(str(exc)) from None
     missing = written.n_events - written.drawn
     if missing:
-        _stderr().print(
+        err_console().print(
             f"changekind: {missing} event(s) have no picture; the report says why for each",
             markup=False,
         )
@@ -185,7 +182,7 @@ def parse_units(given: Sequence[str]) -> dict[str, str]:
     for text in given:
         pattern, sep, name = text.rpartition("=")
         if not sep or not pattern.strip() or not name.strip():
-            raise _fail_usage(
+            raise fail_usage(
                 f"--unit {text!r} is not PATTERN=UNIT; give for example "
                 "--unit '*/write-latency-ms=ms'"
             )
@@ -210,11 +207,8 @@ def write_stored_report(
     Used by ``changekind report`` and by the demo.  Damaged stored models are
     said on stderr (their events are drawn without them).
     """
-    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
 
-    from changekind.tasks.report import data
-
-    err = _stderr()
+    err = err_console()
     # A progress bar on a terminal only; the same call either way.
     bar = None
     if err.is_terminal:
@@ -241,7 +235,7 @@ def write_stored_report(
     for sid, problem in written.problems:
         err.print(f"changekind: series {sid!r}: {problem}", markup=False)
     hidden = f" ({written.n_hidden} dismissed left out)" if written.n_hidden else ""
-    _stdout().print(
+    out_console().print(
         f"Report of {written.n_events} event(s) in {written.n_series} series{hidden}, "
         f"{written.drawn} picture(s): {written.index}",
         markup=False,

@@ -11,9 +11,8 @@ from __future__ import annotations
 import pytest
 from typer.testing import CliRunner
 
-import changekind.flows.cli_report  # noqa: F401  (registers ``report`` on the app)
 from changekind.flows.cli import app
-from changekind.flows.cli_report import parse_units
+from changekind.flows.cli.report import parse_units
 from tests.tasks.report.pair import STAMPS, T_DOWN, T_GLITCH, T_UP, store_pair
 from tests.tasks.test_report import check_page
 

@@ -30,11 +30,10 @@ import pandas as pd
 import pytest
 from typer.testing import CliRunner
 
+from changekind.flows import steps  # noqa: F401  (imports Prefect here, so its logging binds to the real stderr)
 from changekind.flows.cli import app
 from changekind.flows.demo import score_against_truth
-from changekind.tasks import (
-    persist,  # imports Prefect here, so its logging binds to the real stderr
-)
+from changekind.tasks import persist
 from changekind.tasks.report import picture_name
 from tests.flows.fleet import make_fleet, write_source
 from tests.tasks.test_report import check_page, png_size

@@ -1,14 +1,7 @@
-"""``changekind drill``: the raw points behind a windowed event; windowed detection helpers.
+"""``changekind drill``: the raw points behind a windowed event.
 
-Registers the ``drill`` command on the shared :data:`changekind.flows.cli.app`
-when imported (``flows/cli.py`` imports this module).  Also offers the helpers
-the ``detect`` command uses for ``--window``: :func:`windowed_records` and
-:func:`analyse_windowed_one` (a drop-in for ``analyse_one`` in the process
-pool).
-
-Nothing heavy is imported at module level: the source readers (pyarrow,
-SQLAlchemy) load when ``drill`` runs, matplotlib only for ``--png``, and Prefect
-never.
+matplotlib is imported only for ``--png``, on purpose: it costs a second at
+start-up that the table and CSV outputs do not need.
 """
 
 from __future__ import annotations
@@ -16,22 +9,16 @@ from __future__ import annotations
 import math
 import os
 import sys
-import traceback
 from pathlib import Path
-from typing import TYPE_CHECKING, Annotated
+from typing import Annotated
 
+import numpy as np
+import pandas as pd
 import typer
 from rich.table import Table
 
-from changekind.flows.cli import (
-    DEBUG_ENV,
-    SeriesOutcome,
-    _fail_usage,
-    _stderr,
-    _stdout,
-    app,
-)
-from changekind.flows.cli_fleet import (
+from changekind.flows.cli.app import app, err_console, fail_usage, out_console
+from changekind.flows.cli.options import (
     QueryOpt,
     SeriesColOpt,
     SourceOpt,
@@ -39,80 +26,15 @@ from changekind.flows.cli_fleet import (
     TimeColOpt,
     ValueColOpt,
 )
-from changekind.tasks.errors import ChangekindError, SeriesError
+from changekind.tasks.errors import ChangekindError
+from changekind.tasks.fetch import open_source
 from changekind.tasks.types import format_duration
+from changekind.tasks.window import MAD_SCALE, drill, parse_window
 
-if TYPE_CHECKING:
-    import pandas as pd
-
-    from changekind.flows.inputs import SeriesInput
-    from changekind.tasks.types import Event
+# --------------------------------------------------------------------------- drill
 
 DEFAULT_AROUND = 2
 """Windows shown either side of the drilled one."""
-
-
-# --------------------------------------------------------------------------- detect --window
-
-
-def windowed_records(
-    series_id: str,
-    timestamps,
-    values,
-    window: str,
-    critical: float | None = None,
-    *,
-    periods: tuple[int, ...] | None = None,
-) -> list[Event]:
-    """Windowed detection of one series: its events (level events and VC), by window.
-
-    Raises the ConfigError / SeriesError of
-    :func:`changekind.tasks.window.detect_windowed`.
-    """
-    from changekind.tasks.window import detect_windowed
-
-    result = detect_windowed(
-        series_id, timestamps, values, window, critical=critical, periods=periods
-    )
-    return list(result.events)
-
-
-def analyse_windowed_one(
-    item: SeriesInput,
-    window: str,
-    periods: tuple[int, ...] | None,
-    critical: float | None,
-) -> SeriesOutcome:
-    """``analyse_one`` for windowed mode: one series, problems as text, picklable.
-
-    The outcome's result is :meth:`WindowedResult.as_detection`, so the
-    ``detect`` command's table and JSON output apply unchanged (``nobs`` counts
-    windows; a note gives the raw points).
-    """
-    from changekind.tasks.window import detect_windowed
-
-    try:
-        result = detect_windowed(
-            item.series_id,
-            item.timestamps,
-            item.values,
-            window,
-            critical=critical,
-            periods=periods,
-        )
-    except SeriesError as exc:
-        return SeriesOutcome(item.series_id, None, exc.problem)
-    except ChangekindError as exc:
-        return SeriesOutcome(item.series_id, None, str(exc))
-    except Exception as exc:  # a bug: keep the other series going, but say so
-        problem = f"internal error ({type(exc).__name__}: {exc}); please report it"
-        if os.environ.get(DEBUG_ENV):
-            problem += "\n" + traceback.format_exc()
-        return SeriesOutcome(item.series_id, None, problem)
-    return SeriesOutcome(item.series_id, result.as_detection())
-
-
-# --------------------------------------------------------------------------- drill
 
 
 def _value(x: float) -> str:
@@ -121,9 +43,6 @@ def _value(x: float) -> str:
 
 def _windows_table(rows: pd.DataFrame, title: str) -> Table:
     """One line per window: count, first, min, median, max, last, spread."""
-    import numpy as np
-
-    from changekind.tasks.window import MAD_SCALE
 
     table = Table(title=title, title_justify="left")
     for name in ("window", "start", "points", "first", "min", "median", "max", "last", "spread"):
@@ -176,7 +95,6 @@ def _write_png(rows: pd.DataFrame, path: Path, *, title: str, width: pd.Timedelt
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
-    import pandas as pd
 
     starts = pd.DatetimeIndex(rows["window_start"])
     times = starts + pd.to_timedelta(_within(rows, width), unit="ns")
@@ -208,7 +126,6 @@ def _write_png(rows: pd.DataFrame, path: Path, *, title: str, width: pd.Timedelt
 
 def _within(rows: pd.DataFrame, width: pd.Timedelta):
     """Nanoseconds of each row after its window start (for plotting text timestamps)."""
-    import pandas as pd
 
     stamps = rows["timestamp"]
     if not pd.api.types.is_datetime64_any_dtype(stamps.dtype):
@@ -248,9 +165,7 @@ def drill_command(
     source: SourceOpt = None,
     around: Annotated[
         int,
-        typer.Option(
-            "--around", metavar="K", min=0, max=1000, help="Windows shown either side."
-        ),
+        typer.Option("--around", metavar="K", min=0, max=1000, help="Windows shown either side."),
     ] = DEFAULT_AROUND,
     as_csv: Annotated[
         bool, typer.Option("--csv", help="Print the raw rows as CSV on stdout.")
@@ -284,12 +199,10 @@ def drill_command(
     ] = "UTC",
 ) -> None:
     """Show the raw points of one window (and K windows either side) from the source."""
-    from changekind.tasks.fetch import open_source
-    from changekind.tasks.window import drill, parse_window
 
     source = source if source is not None else os.environ.get("CHANGEKIND_SOURCE")
     if not source:
-        raise _fail_usage("no source given; pass --source PATH (or set CHANGEKIND_SOURCE)")
+        raise fail_usage("no source given; pass --source PATH (or set CHANGEKIND_SOURCE)")
     columns = {
         key: name
         for key, name in (
@@ -311,7 +224,7 @@ def drill_command(
         )
         rows = drill(spec, series_id, event_time, width, around=around)
     except ChangekindError as exc:
-        raise _fail_usage(str(exc)) from None
+        raise fail_usage(str(exc)) from None
 
     focus = rows.loc[rows["window_offset"] == 0, "window_start"].iloc[0]
     name = format_duration(width.total_seconds())
@@ -323,16 +236,16 @@ def drill_command(
         try:
             _write_png(rows, png, title=title, width=width)
         except OSError as exc:
-            raise _fail_usage(f"cannot write {png}: {exc.strerror or exc}") from None
+            raise fail_usage(f"cannot write {png}: {exc.strerror or exc}") from None
     if as_csv:
         out = rows.assign(window_start=rows["window_start"].map(lambda t: t.isoformat()))
         out.to_csv(sys.stdout, index=False, lineterminator="\n")
         sys.stdout.flush()
     elif png is not None:
-        _stdout().print(f"{title}; plot written to {png}", markup=False)
+        out_console().print(f"{title}; plot written to {png}", markup=False)
     else:
-        console = _stdout()
+        console = out_console()
         console.print(_windows_table(rows, title))
         console.print(_points_table(rows))
     if png is not None and as_csv:
-        _stderr().print(f"plot written to {png}", markup=False)
+        err_console().print(f"plot written to {png}", markup=False)
