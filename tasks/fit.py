@@ -19,7 +19,6 @@ from scipy.signal import lfilter
 
 from changekind.tasks.threads import single_blas_thread
 from changekind.tasks.types import Decomposition, FittedModel, round_sig
-from changekind.tasks.wrappers import TaskSpec, lazy_task
 
 MAX_SEASONAL_LAG = 12
 """Longest season given a seasonal AR term automatically (monthly data's 12,
@@ -1057,10 +1056,3 @@ def _natural_lags(decomp: Decomposition) -> tuple[int, ...]:
     series = decomp.series
     natural = BUSINESS_PERIODS if series.business_days else natural_periods(series.step_seconds)
     return tuple(p for p in natural if series.nobs >= 4 * p)
-
-
-_TASKS: dict[str, TaskSpec] = {"fit_task": (fit_model, {"name": "fit"})}
-
-
-def __getattr__(name: str):
-    return lazy_task(__name__, name, _TASKS)
