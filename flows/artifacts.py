@@ -23,8 +23,7 @@ from prefect.artifacts import create_markdown_artifact, create_table_artifact
 
 from changekind.flows.pipeline import RunSummary
 from changekind.tasks import persist
-from changekind.tasks.report.words import number
-from changekind.tasks.types import EVENT_NAMES, REPORTED_TYPES, format_duration
+from changekind.tasks.types import EVENT_NAMES, REPORTED_TYPES, format_duration, number
 
 MAX_TABLE_ROWS = 1000
 """Most rows in the events table (strongest first); the description says how many were left out."""

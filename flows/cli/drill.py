@@ -30,8 +30,7 @@ from changekind.flows.cli.options import (
 )
 from changekind.tasks.errors import ChangekindError
 from changekind.tasks.fetch import open_source
-from changekind.tasks.report.words import number
-from changekind.tasks.types import format_duration
+from changekind.tasks.types import format_duration, number
 from changekind.tasks.window import MAD_SCALE, drill, parse_window
 
 # --------------------------------------------------------------------------- drill

@@ -15,8 +15,7 @@ from rich.table import Table
 
 from changekind.flows.cli.app import err_console
 from changekind.tasks.persist import EVENT_COLUMNS, EVENT_EXTRA_COLUMNS
-from changekind.tasks.report.words import number
-from changekind.tasks.types import DetectionResult, Event
+from changekind.tasks.types import DetectionResult, Event, number
 
 if TYPE_CHECKING:
     from changekind.flows.cli.detect import SeriesOutcome

@@ -13,7 +13,7 @@ from __future__ import annotations
 import contextlib
 from collections.abc import Sequence
 from pathlib import Path
-from typing import Annotated, Any
+from typing import TYPE_CHECKING, Annotated, Any
 
 import typer
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
@@ -34,8 +34,9 @@ from changekind.flows.cli.options import (
 )
 from changekind.tasks.errors import ChangekindError
 from changekind.tasks.fetch import SourceSpec, open_source
-from changekind.tasks.report import data
-from changekind.tasks.report.data import WrittenReport
+
+if TYPE_CHECKING:
+    from changekind.tasks.report.data import WrittenReport
 
 
 def report(
@@ -165,6 +166,10 @@ def write_stored_report(
     Used by ``changekind report`` and by the demo.  Damaged stored models are
     said on stderr (their events are drawn without them).
     """
+
+    # Deliberately here: the report loads matplotlib (about a second), which the
+    # other commands registered on the same app do not need.
+    from changekind.tasks.report import data
 
     err = err_console()
     # A progress bar on a terminal only; the same call either way.

@@ -5,29 +5,16 @@ from __future__ import annotations
 import math
 
 from changekind.tasks.report.views import Verdict
-from changekind.tasks.types import EVENT_NAMES, Event, FittedModel, format_duration
+from changekind.tasks.types import EVENT_NAMES, Event, FittedModel, format_duration, number
 
 __all__ = [
     "axis_label",
     "describe_event",
     "half_life_text",
-    "number",
     "shorten_middle",
     "type_name",
     "verdict_line",
 ]
-
-
-def number(value: object, fmt: str) -> str:
-    """``value`` formatted with ``fmt``, or ``-`` when it is missing, not a number
-    or not finite: the one number formatting of tables, pages and summaries."""
-    if value is None:
-        return "-"
-    try:
-        x = float(value)  # type: ignore[arg-type]
-    except (TypeError, ValueError):
-        return "-"
-    return format(x, fmt) if math.isfinite(x) else "-"
 
 
 def type_name(kind: str) -> str:

@@ -11,7 +11,7 @@ import pytest
 import sqlalchemy as sa
 
 from changekind.tasks.errors import ModelError, TooShortError, mask_url, series_failure
-from changekind.tasks.report.words import number
+from changekind.tasks.types import number
 
 
 @pytest.mark.parametrize(
