@@ -1812,3 +1812,7 @@ finish_run_task = _io_task("finish-run", finish_run)
 record_failures_task = _io_task("record-failures", record_failures)
 set_triage_task = _io_task("set-triage", set_triage)
 migrate_task = _io_task("migrate-db", migrate)
+
+# The tables of series attributes and fleet incidents live on the same MetaData
+# (changekind.tasks.incident_store); importing it here registers them.
+from changekind.tasks import incident_store as _incident_store  # noqa: E402,F401
