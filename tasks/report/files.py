@@ -37,6 +37,7 @@ def write_report(
     sort: str = DEFAULT_SORT,
     dpi: int = FIGURE_DPI,
     on_progress: Callable[[int, int], None] | None = None,
+    incidents_page: str | None = None,
 ) -> Path:
     """Draw every event's picture and write ``index.html`` beside them.
 
@@ -56,6 +57,8 @@ def write_report(
     dpi : int, default=100
     on_progress : callable, optional
         Called with (done, total) after each picture.
+    incidents_page : str, optional
+        The incidents page beside it (linked from the page).
 
     Returns
     -------
@@ -123,6 +126,7 @@ def write_report(
         facts=(*facts, ("made", made)),
         notes=notes,
         verdicts=verdicts,
+        incidents_page=incidents_page,
     )
     index = out / INDEX_NAME
     try:

@@ -70,6 +70,7 @@ def render_report(
     facts: Sequence[tuple[str, str]] = (),
     notes: Mapping[EventKey, str] | None = None,
     verdicts: Mapping[EventKey, Verdict] | None = None,
+    incidents_page: str | None = None,
 ) -> str:
     """The report page as one self-contained HTML document.
 
@@ -89,6 +90,8 @@ def render_report(
         Why an event has no picture.
     verdicts : mapping of (series_id, event_time) to Verdict, optional
         People's verdicts on the events, shown in a column and with each event.
+    incidents_page : str, optional
+        Relative path of the incidents page, linked from the page when given.
 
     Returns
     -------
@@ -135,5 +138,6 @@ def render_report(
         fallback=FALLBACK_STYLE,
         colours=PAGE_COLOURS,
         verdict_colours=VERDICT_COLOURS,
+        incidents_page=incidents_page,
         picture_size=(int(FIGURE_SIZE[0] * FIGURE_DPI), int(FIGURE_SIZE[1] * FIGURE_DPI)),
     )
