@@ -450,6 +450,7 @@ else:
     # The other commands register themselves on ``app`` when imported.
     from changekind.flows import (
         cli_fleet,  # noqa: F401
+        cli_incidents,  # noqa: F401
         cli_report,  # noqa: F401
         cli_window,  # noqa: F401
     )

@@ -44,6 +44,7 @@ __all__ = [
     "confirmed_event",
     "emit_run_events",
     "incident_event",
+    "run_events",
     "size_band",
 ]
 

@@ -88,3 +88,65 @@ def write_source(data: pd.DataFrame, root: Path, *, until: pd.Timestamp | None =
     part = data if until is None else data[data["timestamp"] < until]
     part.to_parquet(root / "part-0.parquet", index=False)
     return root
+
+
+def _event(sid: str, at: pd.Timestamp, kind: str, effect: float):
+    from changekind.tasks.types import Event
+
+    return Event(
+        series_id=sid,
+        position=-1,
+        event_time=at.isoformat(),
+        event_type=kind,
+        effect=effect,
+        effect_pct=100 * effect / 50,
+        t_stat=effect / 1.15,
+        se=1.15,
+        type_weights=((kind, 1.0),),
+        status="confirmed",
+        decay=None,
+        half_life=None,
+        level=50.0,
+        model="ARIMA(1,0,0)",
+    )
+
+
+def store_incident_fleet(url: str, folder: Path) -> tuple[Path, dict[str, object]]:
+    """The fleet as a Parquet source and, in the database at ``url``, its injected
+    events (the rollout's level shifts at each host's upgrade hour, the rack spike),
+    the series' models and labels, and the incidents that follow.  (source, truth)"""
+    from changekind.tasks import incident_store, persist
+    from changekind.tasks.types import FittedModel
+
+    data, truth = make_incident_fleet()
+    source = write_source(data, folder)
+    events = []
+    for sid in sorted(truth["rollout"]):
+        rows = data[data["series_id"] == sid]
+        at = rows.loc[rows["firmware"].eq("5.2").idxmax(), "timestamp"]
+        events.append(_event(sid, at, "LS", 9.2))
+    events += [_event(sid, SPIKE_AT, "AO", 11.5) for sid in sorted(truth["spike"])]
+    ids = sorted(data["series_id"].unique())
+    persist.init_db(url).dispose()
+    persist.write_events(url, "run-1", events)
+    models = [
+        FittedModel(
+            sid,
+            (1, 0, 0),
+            (0, 0, 0, 0),
+            "c",
+            (("sigma2", 1.3),),
+            1.3,
+            288,
+            "mle",
+            True,
+            step_seconds=3600.0,
+        )
+        for sid in ids
+    ]
+    end = data["timestamp"].max().isoformat()
+    persist.save_models(url, models, watermarks=dict.fromkeys(ids, end))
+    last = data.sort_values("timestamp").groupby("series_id").tail(1)
+    incident_store.write_labels(url, "run-1", last[["series_id", "rack", "firmware"]])
+    incident_store.refresh_incidents(url, "run-1")
+    return source, truth

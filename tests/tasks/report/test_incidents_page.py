@@ -13,71 +13,18 @@ half an inch of title, at 100 dpi).
 
 from __future__ import annotations
 
-import pandas as pd
 import pytest
 from PIL import Image
 
-from changekind.tasks import incident_store as store
-from changekind.tasks import persist
 from changekind.tasks.fetch import open_source
 from changekind.tasks.report.data import write_stored_report
-from changekind.tasks.types import Event, FittedModel
-from tests.flows.incident_fleet import SPIKE_AT, make_incident_fleet, write_source
+from tests.flows.incident_fleet import store_incident_fleet
 from tests.tasks.test_report import check_page
-
-
-def _event(sid: str, at: pd.Timestamp, kind: str, effect: float) -> Event:
-    return Event(
-        series_id=sid,
-        position=-1,
-        event_time=at.isoformat(),
-        event_type=kind,
-        effect=effect,
-        effect_pct=100 * effect / 50,
-        t_stat=effect / 1.15,
-        se=1.15,
-        type_weights=((kind, 1.0),),
-        status="confirmed",
-        decay=None,
-        half_life=None,
-        level=50.0,
-        model="ARIMA(1,0,0)",
-    )
 
 
 @pytest.fixture
 def stored(tmp_path, sqlite_url):
-    data, truth = make_incident_fleet()
-    source = write_source(data, tmp_path / "src")
-    events = []
-    for sid in sorted(truth["rollout"]):
-        rows = data[data["series_id"] == sid]
-        at = rows.loc[rows["firmware"].eq("5.2").idxmax(), "timestamp"]
-        events.append(_event(sid, at, "LS", 9.2))
-    events += [_event(sid, SPIKE_AT, "AO", 11.5) for sid in sorted(truth["spike"])]
-    ids = sorted(data["series_id"].unique())
-    persist.init_db(sqlite_url).dispose()
-    persist.write_events(sqlite_url, "run-1", events)
-    models = [
-        FittedModel(
-            sid,
-            (1, 0, 0),
-            (0, 0, 0, 0),
-            "c",
-            (("sigma2", 1.3),),
-            1.3,
-            288,
-            "mle",
-            True,
-            step_seconds=3600.0,
-        )
-        for sid in ids
-    ]
-    end = data["timestamp"].max().isoformat()
-    persist.save_models(sqlite_url, models, watermarks=dict.fromkeys(ids, end))
-    last = data.sort_values("timestamp").groupby("series_id").tail(1)
-    store.write_labels(sqlite_url, "run-1", last[["series_id", "rack", "firmware"]])
-    store.refresh_incidents(sqlite_url, "run-1")
+    source, truth = store_incident_fleet(sqlite_url, tmp_path / "src")
     return {"db": sqlite_url, "spec": open_source(str(source)), "truth": truth}
 
 
