@@ -155,8 +155,9 @@ def write_stored_report(
     ]
     keys = {event_key(e) for e in events}
     whole = run is None and not series
+    labels = _stored_labels(db)
     incidents, page = _write_incidents(
-        db, spec, Path(out), since=since, keep=None if whole else keys, facts=facts
+        db, spec, Path(out), since=since, keep=None if whole else keys, facts=facts, labels=labels
     )
     index = write_report(
         Path(out),
@@ -165,6 +166,7 @@ def write_stored_report(
         sort=sort,
         on_progress=on_progress,
         incidents_page=None if page is None else page.name,
+        labels=labels,
     )
     drawn = sum(1 for _ in index.parent.glob(PICTURE_PATTERN))
     return WrittenReport(
@@ -179,6 +181,16 @@ def write_stored_report(
     )
 
 
+def _stored_labels(db: str) -> dict[str, dict[str, str | None]]:
+    """The series' attributes (none for a database from before them)."""
+    from changekind.tasks import incident_store
+
+    try:
+        return incident_store.read_labels(db)
+    except DBAPIError:
+        return {}
+
+
 def _write_incidents(
     db: str,
     spec: SourceSpec,
@@ -187,6 +199,7 @@ def _write_incidents(
     since: str | None,
     keep: set[tuple[str, str]] | None,
     facts: Sequence[tuple[str, str]],
+    labels: Mapping[str, Mapping[str, str | None]],
 ) -> tuple[int, Path | None]:
     """The incidents page beside the events' page (incidents with a selected member,
     or all since ``since``); no page when there is no incident."""
@@ -196,7 +209,6 @@ def _write_incidents(
     try:
         found = incident_store.read_incidents(db, since=since)
         states = incident_store.incident_states(db)
-        labels = incident_store.read_labels(db)
     except DBAPIError:  # a database from before the incidents (it is migrated by any scan)
         return 0, None
     if keep is not None:

@@ -45,6 +45,7 @@ class _Row:
     verdict: Verdict | None
     alt: str
     words: tuple[str, ...]
+    labels: tuple[tuple[str, str | None], ...] = ()
 
 
 def _environment() -> Environment:
@@ -71,6 +72,7 @@ def render_report(
     notes: Mapping[EventKey, str] | None = None,
     verdicts: Mapping[EventKey, Verdict] | None = None,
     incidents_page: str | None = None,
+    labels: Mapping[str, Mapping[str, str | None]] | None = None,
 ) -> str:
     """The report page as one self-contained HTML document.
 
@@ -92,6 +94,8 @@ def render_report(
         People's verdicts on the events, shown in a column and with each event.
     incidents_page : str, optional
         Relative path of the incidents page, linked from the page when given.
+    labels : mapping of series_id to {label: value}, optional
+        The series' attributes, shown with each of its events.
 
     Returns
     -------
@@ -124,6 +128,7 @@ def render_report(
                     "facts and type weights"
                 ),
                 words=tuple(describe_event(e)),
+                labels=tuple(sorted((labels or {}).get(e.series_id, {}).items())),
             )
         )
     page = _environment().get_template(PAGE_TEMPLATE)

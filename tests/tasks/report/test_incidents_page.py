@@ -33,7 +33,11 @@ def test_incidents_get_their_own_page_linked_from_the_report(stored, tmp_path):
     assert written.n_incidents == 2
     page_path = written.incidents_page
     assert page_path is not None and page_path.name == "incidents.html"
-    assert 'href="incidents.html"' in written.index.read_text(encoding="utf-8")
+    index = written.index.read_text(encoding="utf-8")
+    assert 'href="incidents.html"' in index
+    # Each event is shown with its series' attributes (the source's latest values).
+    section = index[index.index("vault-r2-h2/commit-ms at") :]
+    assert "Attributes of the series: firmware = 5.2, rack = r2" in section[:3000]
     page = check_page(page_path)
     html = page_path.read_text(encoding="utf-8")
     # Newest first: the rack spike (day 10) before the rollout (day 8).
