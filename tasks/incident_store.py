@@ -264,15 +264,16 @@ def write_labels(
     series = sorted({k[0] for k in rows})
     changes: list[dict[str, Any]] = []
     with persist._engine(db) as engine, engine.begin() as conn:
-        stored: dict[tuple[str, str], Any] = {}
-        for chunk in persist._chunks(series):
-            query = sa.select(
-                series_labels.c.series_id, series_labels.c.label, series_labels.c.value
-            )
+        # One read of the whole table (a row per series and label: small), not
+        # thousands of IN lists when a run covers the fleet.
+        wanted = set(series)
+        stored: dict[tuple[str, str], Any] = {
+            (sid, label): value
             for sid, label, value in conn.execute(
-                query.where(series_labels.c.series_id.in_(chunk))
-            ):
-                stored[(sid, label)] = value
+                sa.select(series_labels.c.series_id, series_labels.c.label, series_labels.c.value)
+            )
+            if sid in wanted
+        }
         upserts = []
         for key, row in rows.items():
             if key in stored and stored[key] == row["value"]:
