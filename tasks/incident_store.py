@@ -251,15 +251,19 @@ def write_labels(
         return 0
     when = persist._now(at)
     rows: dict[tuple[str, str], dict[str, Any]] = {}
-    observed = labels["observed_at"] if "observed_at" in labels.columns else None
-    for i, sid in enumerate(labels["series_id"].tolist()):
-        seen = None if observed is None else _text_or_none(observed.iloc[i])
-        for name in names:
-            rows[(str(sid), str(name))] = {
-                "series_id": str(sid),
+    sids = [str(s) for s in labels["series_id"].tolist()]
+    if "observed_at" in labels.columns:
+        seen = [_text_or_none(v) for v in labels["observed_at"].tolist()]
+    else:
+        seen = [None] * len(sids)
+    for name in names:
+        values = [_text_or_none(v) for v in labels[name].tolist()]
+        for sid, value, at in zip(sids, values, seen, strict=True):
+            rows[(sid, str(name))] = {
+                "series_id": sid,
                 "label": str(name),
-                "value": _text_or_none(labels[name].iloc[i]),
-                "observed_at": seen,
+                "value": value,
+                "observed_at": at,
             }
     series = sorted({k[0] for k in rows})
     changes: list[dict[str, Any]] = []
