@@ -333,15 +333,17 @@ def read_fleet_labels(conn: sa.Connection) -> pd.DataFrame:
     ids: set[str] = set(conn.execute(sa.select(persist.series_models.c.series_id)).scalars())
     ids |= set(conn.execute(sa.select(series_labels.c.series_id).distinct()).scalars())
     ids |= set(conn.execute(sa.select(persist.series_events.c.series_id).distinct()).scalars())
-    labels: dict[str, dict[str, str | None]] = {}
-    for sid, label, value in conn.execute(
+    rows = conn.execute(
         sa.select(series_labels.c.series_id, series_labels.c.label, series_labels.c.value)
-    ):
-        labels.setdefault(sid, {})[label] = value
-    names = sorted({n for row in labels.values() for n in row})
-    index = sorted(ids)
-    data = {n: [labels.get(s, {}).get(n) for s in index] for n in names}
-    frame = pd.DataFrame(data, index=pd.Index(index, name="series_id"), dtype=object)
+    ).all()
+    index = pd.Index(sorted(ids), name="series_id")
+    if not rows:
+        return pd.DataFrame(index=index)
+    long = pd.DataFrame([tuple(r) for r in rows], columns=["series_id", "label", "value"])
+    wide = long.pivot(index="series_id", columns="label", values="value")
+    frame = wide.reindex(index).astype(object)
+    frame = frame.where(frame.notna(), None)
+    frame.columns = [str(c) for c in frame.columns]
     return frame
 
 
@@ -533,12 +535,13 @@ def _observed(conn: sa.Connection) -> tuple[pd.Timestamp, pd.Timestamp] | None:
     rows = conn.execute(
         sa.select(persist.series_models.c.analysed_from, persist.series_models.c.watermark)
     ).all()
-    starts = pd.to_datetime(
-        pd.Series([r[0] for r in rows], dtype=object), utc=True, errors="coerce", format="ISO8601"
-    )
-    ends = pd.to_datetime(
-        pd.Series([r[1] for r in rows], dtype=object), utc=True, errors="coerce", format="ISO8601"
-    )
+
+    def parsed(texts: set[Any]) -> pd.Series:  # each distinct text once (most are equal)
+        values = pd.Series(sorted(t for t in texts if t is not None), dtype=object)
+        return pd.to_datetime(values, utc=True, errors="coerce", format="ISO8601")
+
+    starts = parsed({r[0] for r in rows})
+    ends = parsed({r[1] for r in rows})
     if ends.notna().sum() == 0:
         return None
     first_event = conn.execute(sa.select(sa.func.min(persist.series_events.c.event_ts))).scalar()
