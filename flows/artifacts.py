@@ -19,7 +19,10 @@ import re
 from collections.abc import Mapping, Sequence
 from typing import Any
 
+from prefect.artifacts import create_markdown_artifact, create_table_artifact
+
 from changekind.flows.pipeline import RunSummary
+from changekind.tasks import persist
 from changekind.tasks.types import EVENT_NAMES, REPORTED_TYPES, format_duration
 
 MAX_TABLE_ROWS = 1000
@@ -177,12 +180,8 @@ def publish_run_artifacts(
     Call it inside the flow run (the artifacts are attached to the current
     flow run).  Artifact keys are :func:`artifact_key` of the run's kind.
     """
-    from prefect.artifacts import create_markdown_artifact, create_table_artifact
-
     records: list[dict[str, Any]] | None = None
     if db is not None:
-        from changekind.tasks import persist
-
         frame = persist.read_events(db, include_retracted=True)
         frame = frame[frame["last_run_id"] == summary.run_id]
         records = frame.to_dict(orient="records")

@@ -17,7 +17,13 @@ from contextvars import ContextVar
 from dataclasses import dataclass, field, replace
 
 import pandas as pd
+from prefect.futures import as_completed
+from prefect.runtime import flow_run
+from prefect.task_runners import ProcessPoolTaskRunner, ThreadPoolTaskRunner
 
+from changekind.flows.processes import die_with_parent
+from changekind.flows.records import BatchOutcomes, time_key
+from changekind.flows.steps import run_batch_task, start_worker_task, write_outcomes_task
 from changekind.tasks import persist
 from changekind.tasks.batch import (
     AnalysisOptions,
@@ -72,8 +78,6 @@ class RunSummary:
 def current_run_id() -> str:
     """The Prefect flow-run id when inside a flow run, else a fresh UUID."""
     try:
-        from prefect.runtime import flow_run
-
         run = flow_run.id
     except Exception:  # outside a flow run
         run = None
@@ -88,17 +92,12 @@ def make_task_runner(runner: str, *, workers: int, dask_address: str | None = No
     ``dask_address`` (a local cluster of ``workers`` processes when None).
     """
     if runner == "threads":
-        from prefect.task_runners import ThreadPoolTaskRunner
-
         return ThreadPoolTaskRunner(max_workers=workers)
     if runner == "processes":
-        from prefect.task_runners import ProcessPoolTaskRunner
-
-        from changekind.flows.processes import die_with_parent
-
         # Workers end with the run's process, however it ends (flows/processes.py).
         return ProcessPoolTaskRunner(max_workers=workers, initializer=die_with_parent)
     if runner == "dask":
+        # Deliberately here: prefect_dask loads Dask (seconds), for Dask runs only.
         from prefect_dask import DaskTaskRunner
 
         if dask_address:
@@ -111,8 +110,6 @@ def make_task_runner(runner: str, *, workers: int, dask_address: str | None = No
 
 def start_workers(workers: int) -> list:
     """Submit one :func:`~changekind.tasks.batch.start_worker` per worker; wait with ``.wait()``."""
-    from changekind.tasks.batch import start_worker_task
-
     return [start_worker_task.submit() for _ in range(max(1, workers))]
 
 
@@ -147,7 +144,7 @@ def plan_works(
         a backfill's span starts before their analysed span does.
     """
     works = []
-    end_bound = _bound(end, time_kind)
+    end_bound = time_key(end, time_kind)
     for sid in series_ids:
         model = models.get(sid)
         mark = watermarks.get(sid)
@@ -155,7 +152,7 @@ def plan_works(
         same_grid = model is None or model.window == options.window
         warm = model is not None and mark is not None and not refit and same_grid
         if warm and sid not in rewind:
-            mark_bound = _bound(mark, time_kind)
+            mark_bound = time_key(mark, time_kind)
             if (
                 end_bound is not None
                 and mark_bound is not None
@@ -167,7 +164,7 @@ def plan_works(
             first = min(
                 [mark_bound]
                 + [
-                    _bound(e.event_time, time_kind)
+                    time_key(e.event_time, time_kind)
                     for e in known.get(sid, ())
                     if e.status == "provisional"
                 ]
@@ -179,7 +176,7 @@ def plan_works(
                 start = first - lags * pd.Timedelta(seconds=model.step_seconds or 1.0)
             works.append(SeriesWork(sid, model, mark, known.get(sid, ()), start, end_bound))
         else:
-            start = _bound(cold_start, time_kind)
+            start = time_key(cold_start, time_kind)
             works.append(
                 SeriesWork(sid, model, mark, known.get(sid, ()), start, end_bound, refit=True)
             )
@@ -234,7 +231,7 @@ def plan_reach(
     its whole span whatever was analysed before, and two backfills in either
     order end as one over their union.
     """
-    start_bound = _bound(start, time_kind)
+    start_bound = time_key(start, time_kind)
     out: dict[str, Reach] = {}
     for sid in series_ids:
         stored = known.get(sid, ())
@@ -242,20 +239,20 @@ def plan_reach(
         if cov is None:  # never analysed: cold from the start (a scan: all history)
             out[sid] = Reach(report_from=start, known=stored)
             continue
-        begun = _bound(cov.analysed_from, time_kind)
+        begun = time_key(cov.analysed_from, time_kind)
         rewind = not refit and start_bound is not None and begun is not None and begun > start_bound
         if rewind:
-            before = [e for e in stored if _bound(e.event_time, time_kind) < start_bound]
-            later = [e for e in stored if _bound(e.event_time, time_kind) >= start_bound]
+            before = [e for e in stored if time_key(e.event_time, time_kind) < start_bound]
+            later = [e for e in stored if time_key(e.event_time, time_kind) >= start_bound]
             until = _latest([cov.watermark, cov.reanalyse_until], time_kind)
             out[sid] = Reach(start, True, tuple(before), tuple(e.event_time for e in later), until)
             continue
-        mark = _bound(cov.watermark, time_kind)
+        mark = time_key(cov.watermark, time_kind)
         if mark is None:
             before, later = list(stored), []
         else:
-            before = [e for e in stored if _bound(e.event_time, time_kind) <= mark]
-            later = [e for e in stored if _bound(e.event_time, time_kind) > mark]
+            before = [e for e in stored if time_key(e.event_time, time_kind) <= mark]
+            later = [e for e in stored if time_key(e.event_time, time_kind) > mark]
         report_from = cov.analysed_from if start is not None else None
         out[sid] = Reach(
             report_from,
@@ -286,16 +283,12 @@ def execute(
     At most ``2 * workers`` batches are in flight, so the data held in memory
     is a few batches' worth.  Outcomes keep only what the summary needs.
     Works are batched by the time their events are reported from (each
-    batch's options carry it).  Each write is tried again on transient
-    database errors (:func:`~changekind.tasks.persist.retry_transient`);
-    ``before_write`` is called first (the run lock's check).  Parts of the
+    batch's options carry it).  Each write is a Prefect task, tried again on
+    transient database errors (``flows/steps.py``); ``before_write`` is called
+    first (the run lock's check).  Parts of the
     source the batches could not read are recorded with their batch and
     appended to ``problems``.
     """
-    from prefect.futures import as_completed
-
-    from changekind.tasks.batch import run_batch_task
-
     reach = reach or {}
     groups: dict[str | None, list[SeriesWork]] = {}
     for w in works:
@@ -314,7 +307,6 @@ def execute(
     pending: dict = {}
     queue = list(batches)
     limit = max(2, 2 * workers)
-    say = None if logger is None else logger.warning
 
     def finish(future, batch: list[SeriesWork]) -> None:
         nonlocal done
@@ -333,14 +325,15 @@ def execute(
         outs = [_catch_up(o, reach.get(o.series_id), spec.time_kind) for o in outs]
         t0 = time.perf_counter()
 
-        def write():
-            if before_write is not None:
-                before_write()
-            return write_outcomes(
-                db, run_id, outs, reach=reach, time_kind=spec.time_kind, problems=found
-            )
-
-        persist.retry_transient(write, what=f"writing a batch of {len(outs)} series", log=say)
+        write_outcomes_task(
+            db,
+            run_id,
+            BatchOutcomes(tuple(outs)),
+            before_write=before_write,
+            reach=reach,
+            time_kind=spec.time_kind,
+            problems=found,
+        )
         timings["write"] += time.perf_counter() - t0
         if problems is not None:
             problems.extend(found)
@@ -370,63 +363,12 @@ def _catch_up(outcome: SeriesOutcome, reach: Reach | None, time_kind: str) -> Se
         return outcome
     if outcome.mode not in ("cold", "warm"):
         return outcome
-    reached = _bound(outcome.watermark, time_kind)
+    reached = time_key(outcome.watermark, time_kind)
     found = {e.event_time for e in outcome.events} | set(outcome.retract)
-    stale = tuple(t for t in reach.ahead if t not in found and _bound(t, time_kind) <= reached)
+    stale = tuple(t for t in reach.ahead if t not in found and time_key(t, time_kind) <= reached)
     if not stale:
         return outcome
     return replace(outcome, retract=(*outcome.retract, *stale))
-
-
-def write_outcomes(
-    db: str,
-    run_id: str,
-    outcomes: Sequence[SeriesOutcome],
-    *,
-    reach: Mapping[str, Reach] | None = None,
-    time_kind: str = "datetime",
-    problems: Sequence[SourceProblem] = (),
-):
-    """Write one batch's outcomes in one transaction (events, models, watermarks, failures).
-
-    With ``reach``, a cold analysis records where its series' analysed span
-    begins, and ``reanalyse_until`` is kept while the watermark is short of it.
-    """
-    events = [e for o in outcomes for e in o.events]
-    retract = [(o.series_id, t) for o in outcomes for t in o.retract]
-    models = [o.model for o in outcomes if o.model is not None]
-    marks = {o.series_id: o.watermark for o in outcomes if o.watermark is not None}
-    failures = [(o.series_id, *o.failure) for o in outcomes if o.failure is not None]
-    analysed_from: dict[str, str | None] = {}
-    until: dict[str, str | None] = {}
-    for o in outcomes:
-        r = (reach or {}).get(o.series_id)
-        if r is None or o.watermark is None:
-            continue
-        if o.mode == "cold" and o.model is not None:
-            analysed_from[o.series_id] = r.report_from
-        if r.until is not None:
-            short = _bound(o.watermark, time_kind) < _bound(r.until, time_kind)
-            until[o.series_id] = r.until if short else None
-    return persist.write_batch(
-        db,
-        run_id,
-        events=events,
-        retract=retract,
-        models=models,
-        watermarks=marks,
-        failures=failures,
-        analysed_from=analysed_from,
-        reanalyse_until=until,
-        problems=problem_rows(problems),
-    )
-
-
-def problem_rows(
-    problems: Sequence[SourceProblem],
-) -> list[tuple[str, int | None, str | None, str]]:
-    """Source problems as the rows of ``source_problems``."""
-    return [(p.location, p.row, p.series_id, p.problem) for p in problems]
 
 
 def summarize(
@@ -487,17 +429,6 @@ def summarize(
     )
 
 
-def stored_state(db: str, series_ids: Sequence[str] | None = None):
-    """Models, watermarks and known events of the series, and a (type, status) index."""
-    models = persist.load_models(db, series_ids)
-    marks = persist.load_watermarks(db, series_ids)
-    known = persist.load_known_events(db, series_ids)
-    index = {
-        (sid, e.event_time): (e.event_type, e.status) for sid, evs in known.items() for e in evs
-    }
-    return models, marks, known, index
-
-
 def _slim(outcome: SeriesOutcome) -> SeriesOutcome:
     """Drop the model from a kept outcome (the summary needs only counts and events)."""
     if outcome.model is None:
@@ -505,21 +436,10 @@ def _slim(outcome: SeriesOutcome) -> SeriesOutcome:
     return replace(outcome, model=None)
 
 
-def _bound(value: object, time_kind: str):
-    if value is None:
-        return None
-    if time_kind == "numeric":
-        return float(value)  # type: ignore[arg-type]
-    stamp = pd.Timestamp(value)  # type: ignore[arg-type]
-    if stamp.tz is not None:  # compared in UTC; the fetch step maps zones back
-        stamp = stamp.tz_convert("UTC").tz_localize(None)
-    return stamp
-
-
 def _latest(labels: Sequence[str | None], time_kind: str) -> str | None:
     """The latest of some time labels (None ignored)."""
     given = [label for label in labels if label is not None]
-    return max(given, key=lambda label: _bound(label, time_kind)) if given else None
+    return max(given, key=lambda label: time_key(label, time_kind)) if given else None
 
 
 def _before(bound):

@@ -152,6 +152,7 @@ def shared_prefect_server() -> Iterator[str | None]:
     the run's settings point at it: worker processes get the settings in
     their environment and use this server instead of each starting their own.
     """
+    # Deliberately here: the CLI imports this module and loads Prefect only for a run.
     from prefect.settings import PREFECT_API_URL, get_current_settings, temporary_settings
 
     if get_current_settings().api.url:

@@ -23,24 +23,37 @@ from pathlib import Path
 import pandas as pd
 from prefect import flow, get_run_logger
 
+from changekind.flows.artifacts import publish_run_artifacts
+from changekind.flows.notify import emit_run_events
 from changekind.flows.pipeline import (
     RunSummary,
-    _bound,
     current_run_id,
     execute,
     plan_reach,
     plan_works,
-    problem_rows,
     start_workers,
-    stored_state,
     summarize,
 )
 from changekind.flows.processes import stop_children_with_this_process
+from changekind.flows.records import problem_rows, time_key
 from changekind.flows.settings import RunOptions, resolve_db
+from changekind.flows.steps import (
+    close_stale_runs_task,
+    finish_run_task,
+    load_coverage_task,
+    migrate_task,
+    record_source_problems_task,
+    refresh_incidents_task,
+    start_run_task,
+    stored_state_task,
+    take_lock_task,
+    write_labels_task,
+    write_report_task,
+)
 from changekind.tasks import persist
-from changekind.tasks.errors import ConfigError, RunBusyError
+from changekind.tasks.errors import ChangekindError, ConfigError, RunBusyError
 from changekind.tasks.fetch import ColumnMap, SourceProblem, open_source, survey_source
-from changekind.tasks.labels import check_label_columns
+from changekind.tasks.labels import check_label_columns, read_labels
 from changekind.tasks.runlock import RunLock
 
 
@@ -73,19 +86,16 @@ def _run(
     # clear): it comes from the environment or a Secret block (settings.py).
     db = resolve_db(db)
 
-    def call(what: str, fn, *args, **kwargs):
-        return persist.retry_transient(lambda: fn(*args, **kwargs), what=what, log=logger.warning)
-
-    call("migrating the database", persist.migrate, db)
+    migrate_task(db)
     spec = open_source(source, columns=_columns(columns), table=table, query=query)
     labels = check_label_columns(spec, label_columns)  # a wrong name: nothing is run
     span = (chunks[0][0], chunks[-1][1])
     try:
         lock = RunLock(db, run_id, kind, wait_seconds=options.wait_seconds)
-        call("taking the run lock", lock.acquire)
+        take_lock_task(lock)
     except RunBusyError as exc:
-        call("recording the run", persist.start_run, db, run_id, kind, *_span(span))
-        call("recording the run", persist.finish_run, db, run_id, "failed", message=str(exc))
+        start_run_task(db, run_id, kind, *_span(span))
+        finish_run_task(db, run_id, "failed", message=str(exc))
         raise
     try:
         with stop_children_with_this_process():
@@ -96,7 +106,6 @@ def _run(
                 options,
                 run_id=run_id,
                 lock=lock,
-                call=call,
                 logger=logger,
                 t0=t0,
                 series=series,
@@ -120,7 +129,6 @@ def _locked_run(
     *,
     run_id: str,
     lock: RunLock,
-    call,
     logger,
     t0: float,
     series: Sequence[str] | None,
@@ -134,7 +142,7 @@ def _locked_run(
 ) -> RunSummary:
     """The run, once it holds the database (see :mod:`changekind.tasks.runlock`)."""
     starting = start_workers(options.workers)  # worker imports overlap the planning
-    closed = call("closing abandoned runs", persist.close_stale_runs, db, run_id)
+    closed = close_stale_runs_task(db, run_id)
     for stale in closed:
         logger.warning("run %s had been left 'running' (killed?); recorded as abandoned", stale)
     survey = survey_source(spec)
@@ -144,7 +152,7 @@ def _locked_run(
     if closed:
         notes.append(f"closed {len(closed)} abandoned run(s): {', '.join(closed)}")
     if report_from is not None:
-        coverage = call("reading the analysed spans", persist.load_coverage, db, ids)
+        coverage = load_coverage_task(db, ids)
         chunks, extended = extend_chunks(
             chunks, chunk, coverage, start=report_from, time_kind=spec.time_kind
         )
@@ -152,18 +160,12 @@ def _locked_run(
             notes.append(extended)
             logger.warning("%s", extended)
     span = (chunks[0][0], chunks[-1][1])
-    call("recording the run", persist.start_run, db, run_id, kind, *_span(span))
+    start_run_task(db, run_id, kind, *_span(span))
     if problems:
-        call(
-            "recording the source's problems",
-            persist.record_source_problems,
-            db,
-            run_id,
-            problem_rows(problems),
-        )
+        record_source_problems_task(db, run_id, problem_rows(problems))
         for problem in problems:
             logger.warning("source: %s", problem.describe())
-    labelled = _store_labels(spec, db, run_id, labels, ids, call=call, logger=logger)
+    labelled = _store_labels(spec, db, run_id, labels, ids, logger=logger)
     analysis = options.analysis(report_from=report_from)
     outcomes_all = []
     timings: dict[str, float] = {"open": time.perf_counter() - t0}
@@ -172,8 +174,8 @@ def _locked_run(
     try:
         for k, (_, chunk_end) in enumerate(chunks, start=1):
             t_plan = time.perf_counter()
-            models, marks, known, index = call("reading the stored state", stored_state, db, ids)
-            coverage = call("reading the analysed spans", persist.load_coverage, db, ids)
+            models, marks, known, index = stored_state_task(db, ids)
+            coverage = load_coverage_task(db, ids)
             if k == 1:
                 before = index
             reach = plan_reach(
@@ -227,14 +229,7 @@ def _locked_run(
         if notes:
             message += "; " + "; ".join(notes)
         try:
-            call(
-                "recording the run's failure",
-                persist.finish_run,
-                db,
-                run_id,
-                "failed",
-                message=message,
-            )
+            finish_run_task(db, run_id, "failed", message=message)
         except Exception as record_exc:  # the database is gone: the next run closes the row
             logger.error("could not record the run's failure: %s", record_exc)
         raise
@@ -254,9 +249,7 @@ def _locked_run(
         problems=tuple(p.describe() for p in dict.fromkeys(problems)),
     )
     notes.extend(summary.notes)
-    incident_changes, notified = _update_incidents(
-        db, run_id, options, call=call, logger=logger, notes=notes
-    )
+    incident_changes, notified = _update_incidents(db, run_id, options, logger=logger, notes=notes)
     summary = replace(
         summary,
         notes=tuple(notes),
@@ -269,9 +262,7 @@ def _locked_run(
             f"{len(summary.problems)} part(s) of the source could not be read "
             "(table source_problems)"
         )
-    call(
-        "recording the run's end",
-        persist.finish_run,
+    finish_run_task(
         db,
         run_id,
         "completed",
@@ -284,8 +275,6 @@ def _locked_run(
         message="; ".join(notes) or None,
     )
     try:
-        from changekind.flows.artifacts import publish_run_artifacts
-
         publish_run_artifacts(summary, db=db)
     except Exception as exc:  # the run's data is written; a missing page must not fail it
         logger.warning("could not publish the run's artifacts: %s", exc)
@@ -306,17 +295,14 @@ def _locked_run(
     return summary
 
 
-def _store_labels(spec, db: str, run_id: str, labels: Sequence[str], ids, *, call, logger) -> int:
+def _store_labels(spec, db: str, run_id: str, labels: Sequence[str], ids, *, logger) -> int:
     """Read the source's label columns (latest value per series) and store them."""
     if not labels:
         return 0
-    from changekind.tasks.incident_store import write_labels
-    from changekind.tasks.labels import read_labels
-
     found = read_labels(spec, labels)
     wanted = set(ids)
     frame = found.frame[found.frame["series_id"].isin(wanted)]
-    changed = call("storing the series' labels", write_labels, db, run_id, frame)
+    changed = write_labels_task(db, run_id, frame)
     logger.info(
         "labels %s of %d series read; %d value(s) changed",
         ", ".join(labels),
@@ -327,18 +313,15 @@ def _store_labels(spec, db: str, run_id: str, labels: Sequence[str], ids, *, cal
 
 
 def _update_incidents(
-    db: str, run_id: str, options: RunOptions, *, call, logger, notes: list[str]
+    db: str, run_id: str, options: RunOptions, *, logger, notes: list[str]
 ) -> tuple[tuple[tuple[str, int], ...], int]:
     """Bring the incidents up to date and announce what is new (never fails the run).
 
     The update works from the event revisions since the last update, so a
     failure here leaves the work to the next run.
     """
-    from changekind.flows.notify import emit_run_events
-    from changekind.tasks.incident_store import refresh_incidents
-
     try:
-        refresh = call("updating the incidents", refresh_incidents, db, run_id)
+        refresh = refresh_incidents_task(db, run_id)
     except Exception as exc:  # the run's events are written; the next update catches up
         logger.warning("could not update the incidents (the next run will): %s", exc)
         notes.append(f"incidents not updated ({exc}); the next run updates them")
@@ -377,24 +360,24 @@ def extend_chunks(
     short continues to its ``reanalyse_until``: the span grows by whole chunks
     until it covers those.  Returns the chunks and a note when they grew.
     """
-    begin = _bound(start, time_kind)
+    begin = time_key(start, time_kind)
     targets = []
     rewound = 0
     for cov in coverage.values():
         if cov.reanalyse_until is not None:
             targets.append(cov.reanalyse_until)
-        begun = _bound(cov.analysed_from, time_kind)
+        begun = time_key(cov.analysed_from, time_kind)
         if begun is not None and begun > begin and cov.watermark is not None:
             targets.append(cov.watermark)
             rewound += 1
     out = [tuple(c) for c in chunks]
     if not targets or chunk is None:
         return out, None
-    until = max(_bound(t, time_kind) for t in targets)
+    until = max(time_key(t, time_kind) for t in targets)
     size = float(chunk) if time_kind == "numeric" else pd.Timedelta(chunk)
     grew = False
-    while _bound(out[-1][1], time_kind) <= until:
-        last = _bound(out[-1][1], time_kind)
+    while time_key(out[-1][1], time_kind) <= until:
+        last = time_key(out[-1][1], time_kind)
         nxt = last + size
         label = nxt if time_kind == "numeric" else nxt.isoformat()
         out.append((out[-1][1], label))
@@ -548,11 +531,8 @@ def split_span(start: str, end: str, chunk: str, warmup: str):
 
 def _write_report(logger, db: str, spec, report_dir: str, run_id: str) -> None:
     """The run's events as an HTML report with a picture each (never fails the run)."""
-    from changekind.tasks.errors import ChangekindError
-    from changekind.tasks.report.data import write_stored_report_task
-
     try:
-        written = write_stored_report_task(db, spec, Path(report_dir), run=run_id)
+        written = write_report_task(db, spec, Path(report_dir), run=run_id)
     except (ChangekindError, OSError) as exc:
         logger.warning("could not write the run's report to %s: %s", report_dir, exc)
         return
@@ -580,8 +560,6 @@ def _span_text(value: object) -> str | None:
 
 def _last_per_series(outcomes):
     """One outcome per series: its events over all chunks; cold if fitted in any chunk."""
-    from dataclasses import replace
-
     merged: dict[str, object] = {}
     for o in outcomes:
         prev = merged.get(o.series_id)

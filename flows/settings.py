@@ -8,10 +8,12 @@ from __future__ import annotations
 import os
 from typing import Literal
 
+import sqlalchemy as sa
 from pydantic import BaseModel, ConfigDict, Field, SecretStr, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
 from changekind.tasks.batch import AnalysisOptions
+from changekind.tasks.critical import CRITICAL_RANGE
 from changekind.tasks.errors import ConfigError
 from changekind.tasks.window import window_text
 
@@ -46,7 +48,9 @@ class RunOptions(BaseModel):
 
     model_config = ConfigDict(frozen=True, extra="forbid")
 
-    critical: float | None = Field(default=None, gt=1.0, le=20.0)
+    critical: float | None = Field(
+        default=None, gt=CRITICAL_RANGE[0], le=CRITICAL_RANGE[1]
+    )  # the engine's one range (changekind.tasks.critical.check_critical)
     periods: tuple[int, ...] | None = None
     min_points: int = Field(default=96, ge=24, le=1_000_000)
     context_points: int = Field(default=240, ge=10, le=100_000)
@@ -98,8 +102,6 @@ def split_password(url: str) -> tuple[str, str | None]:
     What goes into a flow run's parameters is the first: Prefect stores the
     parameters where anyone who can read its server reads them.
     """
-    import sqlalchemy as sa
-
     try:
         parsed = sa.make_url(url)
     except sa.exc.ArgumentError:
@@ -119,8 +121,6 @@ def resolve_db(db: str | None) -> str:
     ``CHANGEKIND_DB_PASSWORD_BLOCK``, when set.  Read in the flow's process,
     so the password stays in its environment or the Secret block.
     """
-    import sqlalchemy as sa
-
     settings = Settings()
     url = db if db else settings.db_url
     if split_password(url)[1] is not None:
@@ -129,6 +129,7 @@ def resolve_db(db: str | None) -> str:
     if settings.db_password is not None:
         password = settings.db_password.get_secret_value()
     elif settings.db_password_block:
+        # Deliberately here: the CLI imports this module and must not load Prefect.
         from prefect.blocks.system import Secret
 
         password = str(Secret.load(settings.db_password_block).get())

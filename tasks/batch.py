@@ -24,7 +24,6 @@ Per series (``analyse_series_work``, pure):
 
 from __future__ import annotations
 
-import math
 import os
 import time
 from collections.abc import Sequence
@@ -473,7 +472,7 @@ def _needs_refit(
     for e in result.events:
         if e.event_type in ("LS", "VC") and e.status == "confirmed":
             return f"confirmed {e.event_type}"
-    scale = _resid_scale(result.notes)
+    scale = result.resid_scale
     n_new = len(index) - first_new
     if scale is not None and n_new >= 20:
         # n s^2 / sigma^2 ~ chi2(n) without drift (robust s from the new points).
@@ -578,14 +577,6 @@ def _points_since(index: pd.Index, label: str | None, step_seconds: float | None
 def _last_observed(values: np.ndarray) -> int:
     ok = np.flatnonzero(~np.isnan(values))
     return int(ok[-1]) if ok.size else values.size - 1
-
-
-def _resid_scale(notes: Sequence[str]) -> float | None:
-    for note in notes:
-        if note.startswith("resid_scale="):
-            value = float(note.split("=", 1)[1])
-            return value if math.isfinite(value) else None
-    return None
 
 
 def start_worker() -> int:

@@ -7,6 +7,8 @@ do about it.
 
 from __future__ import annotations
 
+import sqlalchemy as sa
+
 
 class ChangekindError(Exception):
     """Base class of every error changekind raises on purpose."""
@@ -78,3 +80,26 @@ class RunBusyError(ChangekindError):
 
 class RunFailedError(ChangekindError):
     """A fleet run failed part-way (what it wrote stays; a rerun continues)."""
+
+
+def is_transient(exc: BaseException | None) -> bool:
+    """Whether a failure may pass on retry: the one classifier every retry uses.
+
+    Transient: a lost or refused connection, a lock held by another writer, a
+    server going down, a file system that did not answer (``OSError``,
+    ``TimeoutError``, SQLAlchemy's operational and interface errors, a
+    connection invalidated under a statement).  Not transient: bad input, bad
+    configuration, a bug.  One of our own errors is transient when the error
+    it was raised from is (``raise SourceError(...) from exc``).
+    """
+    if exc is None:
+        return False
+    if isinstance(exc, DatabaseUnavailableError):
+        return True
+    if isinstance(exc, ChangekindError):
+        return exc.__cause__ is not None and is_transient(exc.__cause__)
+    if isinstance(exc, sa.exc.DBAPIError):
+        if exc.connection_invalidated:
+            return True
+        return isinstance(exc, sa.exc.OperationalError | sa.exc.InterfaceError)
+    return isinstance(exc, OSError | TimeoutError)

@@ -57,7 +57,9 @@ from changekind.tasks.incidents import (
     LabelShare,
     update_incidents,
 )
-from changekind.tasks.persist import UtcDateTime, metadata
+from changekind.tasks.persist.convert import _as_datetime, _chunks, _now, _upsert
+from changekind.tasks.persist.engines import _engine
+from changekind.tasks.persist.schema import Database, UtcDateTime, metadata
 from changekind.tasks.types import REPORTED_TYPES
 
 __all__ = [
@@ -228,7 +230,7 @@ into account and the observed record they were computed for."""
 
 
 def write_labels(
-    db: persist.Database,
+    db: Database,
     run_id: str,
     labels: pd.DataFrame,
     *,
@@ -249,7 +251,7 @@ def write_labels(
     names = [c for c in labels.columns if c not in ("series_id", "observed_at")]
     if not names or labels.empty:
         return 0
-    when = persist._now(at)
+    when = _now(at)
     rows: dict[tuple[str, str], dict[str, Any]] = {}
     sids = [str(s) for s in labels["series_id"].tolist()]
     if "observed_at" in labels.columns:
@@ -267,7 +269,7 @@ def write_labels(
             }
     series = sorted({k[0] for k in rows})
     changes: list[dict[str, Any]] = []
-    with persist._engine(db) as engine, engine.begin() as conn:
+    with _engine(db) as engine, engine.begin() as conn:
         # One read of the whole table (a row per series and label: small), not
         # thousands of IN lists when a run covers the fleet.
         wanted = set(series)
@@ -294,7 +296,7 @@ def write_labels(
                     "changed_at": when,
                 }
             )
-        persist._upsert(
+        _upsert(
             conn,
             series_labels,
             upserts,
@@ -307,17 +309,17 @@ def write_labels(
 
 
 def read_labels(
-    db: persist.Database, series_ids: Sequence[str] | None = None
+    db: Database, series_ids: Sequence[str] | None = None
 ) -> dict[str, dict[str, str | None]]:
     """The current labels: ``series_id -> {label: value}`` (only series that have labels)."""
     query = sa.select(series_labels.c.series_id, series_labels.c.label, series_labels.c.value)
     out: dict[str, dict[str, str | None]] = {}
-    with persist._engine(db) as engine, engine.connect() as conn:
+    with _engine(db) as engine, engine.connect() as conn:
         if series_ids is None:
             rows = list(conn.execute(query))
         else:
             rows = []
-            for chunk in persist._chunks(sorted(set(series_ids))):
+            for chunk in _chunks(sorted(set(series_ids))):
                 rows.extend(conn.execute(query.where(series_labels.c.series_id.in_(chunk))))
     for sid, label, value in sorted(rows, key=lambda r: (r[0], r[1])):
         out.setdefault(sid, {})[label] = value
@@ -366,7 +368,7 @@ def _incident_rows(conn: sa.Connection, condition: Any) -> list[Incident]:
     ids = [h["incident_id"] for h in heads]
     members: dict[str, list[dict[str, Any]]] = {}
     shares: dict[str, list[dict[str, Any]]] = {}
-    for chunk in persist._chunks(ids):
+    for chunk in _chunks(ids):
         for r in conn.execute(
             sa.select(incident_members).where(incident_members.c.incident_id.in_(chunk))
         ).mappings():
@@ -436,7 +438,7 @@ def _incident_rows(conn: sa.Connection, condition: Any) -> list[Incident]:
 
 
 def read_incidents(
-    db: persist.Database,
+    db: Database,
     *,
     since: datetime | str | None = None,
     open_only: bool = False,
@@ -447,20 +449,20 @@ def read_incidents(
     ``open_only``: only incidents in state ``open``.
     """
     conditions = [sa.true()]
-    since_ts = persist._as_datetime(since, "since")
+    since_ts = _as_datetime(since, "since")
     if since_ts is not None:
         conditions.append(incidents.c.end_ts >= since_ts)
     if open_only:
         conditions.append(incidents.c.state == "open")
-    with persist._engine(db) as engine, engine.connect() as conn:
+    with _engine(db) as engine, engine.connect() as conn:
         found = _incident_rows(conn, sa.and_(*conditions))
     found.sort(key=lambda i: (i.start, i.incident_id), reverse=True)
     return found
 
 
-def incident_states(db: persist.Database) -> dict[str, str]:
+def incident_states(db: Database) -> dict[str, str]:
     """``incident_id -> state`` of every stored incident."""
-    with persist._engine(db) as engine, engine.connect() as conn:
+    with _engine(db) as engine, engine.connect() as conn:
         return dict(conn.execute(sa.select(incidents.c.incident_id, incidents.c.state)).all())
 
 
@@ -656,7 +658,7 @@ def _keys_json(keys: Sequence[tuple[str, str]]) -> str:
 
 
 def refresh_incidents(
-    db: persist.Database,
+    db: Database,
     run_id: str,
     *,
     rule: GroupingRule | None = None,
@@ -697,9 +699,9 @@ def refresh_incidents(
     """
     t0 = time.perf_counter()
     rule = GroupingRule() if rule is None else rule
-    when = persist._now(at)
+    when = _now(at)
     ev, rev = persist.series_events, persist.event_revisions
-    with persist._engine(db) as engine, engine.begin() as conn:
+    with _engine(db) as engine, engine.begin() as conn:
         # Step 1
         sync = (
             conn.execute(sa.select(incident_sync).where(incident_sync.c.name == _SYNC_NAME))
@@ -760,7 +762,7 @@ def refresh_incidents(
         )
 
         def move_sync(n_settled: int = 0) -> None:
-            persist._upsert(
+            _upsert(
                 conn,
                 incident_sync,
                 [

@@ -26,6 +26,7 @@ import sqlalchemy as sa
 
 from changekind.tasks import fetch
 from changekind.tasks.errors import ConfigError, SourceError
+from changekind.tasks.fetch.reading import _READERS
 
 __all__ = [
     "LABEL_OPTION",
@@ -86,7 +87,7 @@ def source_columns(spec: fetch.SourceSpec) -> list[str]:
     if spec.kind == "sql":
         with _SqlSource(spec) as (_conn, src):
             return list(src.c.keys())
-    reader = fetch._READERS[spec.kind](spec)
+    reader = _READERS[spec.kind](spec)
     try:
         return list(reader.dataset.schema.names)
     finally:
@@ -200,7 +201,7 @@ def _time_order(times: pd.Series) -> np.ndarray:
 
 
 def _read_arrow(spec: fetch.SourceSpec, names: Sequence[str]) -> pd.DataFrame:
-    reader = fetch._READERS[spec.kind](spec)
+    reader = _READERS[spec.kind](spec)
     try:
         dataset = reader.dataset
         _check_present(spec, names, dataset.schema.names)

@@ -9,6 +9,11 @@
     and dropped after the test.  When the server cannot be reached the test is
     skipped with the reason, except under ``CI=true``, where it fails: CI must
     run the PostgreSQL tests.
+
+Markers (pyproject.toml): ``integration`` for tests that start processes,
+servers or clusters (subprocess, Dask, deployment, crash and fault tests);
+``slow`` for the Monte Carlo checks of the engine.  The unit tier is
+``-m "not slow and not integration"``; ``.ci/run`` runs every tier.
 """
 
 from __future__ import annotations
@@ -21,6 +26,17 @@ from pathlib import Path
 import pytest
 import sqlalchemy as sa
 from sqlalchemy.pool import NullPool
+
+SLOW_FILES = ("test_montecarlo_small.py",)
+"""Monte Carlo test files, marked ``slow`` here by name (the engine's own test
+files are kept as they are while the engine is restructured)."""
+
+
+def pytest_collection_modifyitems(items: list[pytest.Item]) -> None:
+    for item in items:
+        if item.path.name in SLOW_FILES:
+            item.add_marker(pytest.mark.slow)
+
 
 PG_BASE_URL = os.environ.get(
     "CHANGEKIND_TEST_PG_URL", "postgresql+psycopg://postgres@127.0.0.1:5432/test"

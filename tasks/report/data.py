@@ -5,15 +5,10 @@ with their verdicts, the series' other stored events (each picture marks its
 neighbours), the series' stored models, and the observations around each
 event from the source (window medians, or spreads for a variance change, when
 the model was fitted on windows).  :func:`write_stored_report` puts this
-together with :func:`~changekind.tasks.report.files.write_report`;
-``write_stored_report_task`` is the Prefect task the fleet flows run after a
-scan or backfill when asked for a report, and ``changekind report`` calls the
-same function.
-
-Nothing here imports Prefect: the task wrapper is built on first use
-(:mod:`changekind.tasks.wrappers`), and :mod:`changekind.tasks.persist`, which
-builds its own task wrappers when imported, is imported by the functions that
-read the database.
+together with :func:`~changekind.tasks.report.files.write_report`; the fleet
+flows run it as a Prefect task (``flows/steps.py``) after a scan or backfill
+when asked for a report, and ``changekind report`` calls it directly.  Nothing
+here imports Prefect.
 """
 
 from __future__ import annotations
@@ -27,6 +22,7 @@ import pandas as pd
 import sqlalchemy as sa
 from sqlalchemy.exc import DBAPIError
 
+from changekind.tasks import persist
 from changekind.tasks.errors import ConfigError, ModelError, SeriesError, SourceError
 from changekind.tasks.fetch import SourceSpec, read_series
 from changekind.tasks.report.files import PICTURE_PATTERN, write_report
@@ -41,7 +37,6 @@ from changekind.tasks.report.views import (
 )
 from changekind.tasks.types import Event, FittedModel
 from changekind.tasks.window import summarize_windows
-from changekind.tasks.wrappers import TaskSpec, lazy_task
 
 __all__ = [
     "WrittenReport",
@@ -250,8 +245,6 @@ def _check_sqlite_file(db: str) -> None:
 
 
 def _read_events(db: str, **selection) -> pd.DataFrame:
-    from changekind.tasks import persist  # imports Prefect (its task wrappers)
-
     _check_sqlite_file(db)
     try:
         return persist.read_events(db, **selection)
@@ -295,8 +288,6 @@ def stored_models(
     db: str, series_ids: Sequence[str]
 ) -> tuple[dict[str, FittedModel], dict[str, str]]:
     """Stored models by series; a damaged one is left out with the reason."""
-    from changekind.tasks import persist  # imports Prefect (its task wrappers)
-
     try:
         return persist.load_models(db, list(series_ids)), {}
     except ModelError:
@@ -391,15 +382,3 @@ def build_views(
             stamps, values = slice_window(e, stamps, values, model=model, neighbours=near)
             views[event_key(e)] = EventView(e, stamps, values, model, verdict=verdict, **extra)
     return [views[event_key(e)] for e in events]
-
-
-_TASKS: dict[str, TaskSpec] = {
-    "write_stored_report_task": (
-        write_stored_report,
-        {"name": "write-report", "retries": 1, "retry_delay_seconds": 5},
-    ),
-}
-
-
-def __getattr__(name: str):
-    return lazy_task(__name__, name, _TASKS)

@@ -33,6 +33,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from changekind.tasks import fetch
+from changekind.tasks.fetch import reading
 
 
 def build(root: Path, n_series: int, n_points: int, rng: np.random.Generator) -> pd.DataFrame:
@@ -121,8 +122,8 @@ def main() -> None:
 
             def warm(windows, groups: int, spec=spec) -> Callable[[], int]:
                 def run() -> int:
-                    saved = fetch.MAX_FILTER_GROUPS
-                    fetch.MAX_FILTER_GROUPS = groups
+                    saved = reading.MAX_FILTER_GROUPS
+                    reading.MAX_FILTER_GROUPS = groups
                     try:
                         return sum(
                             len(f)
@@ -130,14 +131,14 @@ def main() -> None:
                             for _, f in batch
                         )
                     finally:
-                        fetch.MAX_FILTER_GROUPS = saved
+                        reading.MAX_FILTER_GROUPS = saved
 
                 return run
 
             cases = [
                 ("read all, filter 100 series in pandas", no_pushdown),
                 ("read_series, 100 series, whole span", one_batch),
-                ("warm scan, same watermark", warm(same, fetch.MAX_FILTER_GROUPS)),
+                ("warm scan, same watermark", warm(same, reading.MAX_FILTER_GROUPS)),
                 ("warm scan, 4 watermark groups, OR per group", warm(few, 10**6)),
                 ("warm scan, 4 watermark groups, earliest start + trim", warm(few, 0)),
                 ("warm scan, varied watermarks, OR per series", warm(varied, 10**6)),

@@ -26,7 +26,6 @@ from prefect.types.names import ArtifactKey
 from pydantic import TypeAdapter
 from typer.testing import CliRunner
 
-import changekind.flows.cli_report  # noqa: F401  (registers ``report`` on the app)
 from changekind.flows.artifacts import artifact_key, publish_run_artifacts, run_markdown
 from changekind.flows.cli import app
 from changekind.flows.scan import scan_flow

@@ -142,7 +142,7 @@ def test_a_locked_sqlite_file_mid_scan_is_survived(prefect_server, source, tmp_p
     path = tmp_path / "locked.db"
     db = f"sqlite:///{path}"
     # Writers wait 0.5 s for the lock instead of 30, so the lock outlasts the wait.
-    monkeypatch.setattr(persist, "SQLITE_BUSY_TIMEOUT_SECONDS", 0.5)
+    monkeypatch.setattr(persist.engines, "SQLITE_BUSY_TIMEOUT_SECONDS", 0.5)
     held = []
 
     def hold() -> None:
@@ -173,8 +173,7 @@ def test_a_database_gone_for_good_fails_the_run_with_exit_3_and_the_next_run_clo
     src = write_source(fleet, tmp_path / "src")
     path = tmp_path / "gone.db"
     db = f"sqlite:///{path}"
-    monkeypatch.setattr(persist, "SQLITE_BUSY_TIMEOUT_SECONDS", 0.2)
-    monkeypatch.setattr(persist, "RETRY_DELAYS", (0.2, 0.2))
+    monkeypatch.setattr(persist.engines, "SQLITE_BUSY_TIMEOUT_SECONDS", 0.2)
     stop, locked = threading.Event(), threading.Event()
 
     def hold() -> None:  # a writer that never lets go
@@ -190,9 +189,9 @@ def test_a_database_gone_for_good_fails_the_run_with_exit_3_and_the_next_run_clo
             app, ["scan", "--source", str(src), "--db", db, "--workers", "2", *extra]
         )
 
-    from changekind.flows import pipeline
+    from changekind.flows import records
 
-    real = pipeline.write_outcomes
+    real = records.write_outcomes
 
     def write_then_lock(*args, **kwargs):  # the CLI draws its own progress: hook the writer
         written = real(*args, **kwargs)
@@ -201,12 +200,12 @@ def test_a_database_gone_for_good_fails_the_run_with_exit_3_and_the_next_run_clo
             locked.wait(timeout=30)
         return written
 
-    monkeypatch.setattr(pipeline, "write_outcomes", write_then_lock)
+    monkeypatch.setattr(records, "write_outcomes", write_then_lock)
     try:
         result = scan()
     finally:
         stop.set()
-    monkeypatch.setattr(pipeline, "write_outcomes", real)
+    monkeypatch.setattr(records, "write_outcomes", real)
     assert result.exit_code == 3, result.output
     assert "failed" in result.output and "run it again" in result.output
     written = persist.content_snapshot(db)["series_models"]

@@ -29,7 +29,7 @@ from changekind.flows.notify import (
 )
 from changekind.tasks.incident_store import ConfirmedEvent, IncidentRefresh
 from changekind.tasks.incidents import IncidentChange, group_incidents
-from tests.tasks.test_incidents import STEP, make_events, make_labels
+from tests.tasks.incidents.test_incidents import STEP, make_events, make_labels
 
 AUTOMATIONS = Path(__file__).resolve().parents[2] / "infra" / "automation-incidents.yaml"
 

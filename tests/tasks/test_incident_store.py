@@ -23,7 +23,7 @@ from changekind.tasks import incident_store as store
 from changekind.tasks import persist
 from changekind.tasks.incidents import group_incidents
 from changekind.tasks.types import Event, FittedModel
-from tests.tasks.test_incidents import (
+from tests.tasks.incidents.test_incidents import (
     DAY,
     ROLLOUT_FIRMWARE,
     STEP,
@@ -147,8 +147,11 @@ def test_migration_0005_adds_tables_and_views_and_keeps_rows(url: str) -> None:
         with engine.connect() as conn:
             views = set(sa.inspect(conn).get_view_names())
         assert {"open_incidents", "event_labels"} <= views
-        config = persist._alembic_config()
         from alembic import command
+
+        from changekind.tasks.persist.engines import _alembic_config
+
+        config = _alembic_config()
 
         with engine.begin() as conn:
             config.attributes["connection"] = conn

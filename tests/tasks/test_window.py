@@ -30,8 +30,8 @@ from scipy.signal import lfilter
 from scipy.stats import median_abs_deviation
 from typer.testing import CliRunner
 
-from changekind.flows import cli_window  # importing it registers `drill` on the app
 from changekind.flows.cli import app
+from changekind.flows.cli import detect as cli_window  # the windowed detect helpers
 from changekind.tasks.errors import ConfigError, SeriesError, SourceError, TooShortError
 from changekind.tasks.fetch import open_source
 from changekind.tasks.types import EVENT_NAMES, EVENT_TYPES, FittedModel
@@ -542,7 +542,7 @@ def test_drill_command_without_a_source_says_how_to_give_one(monkeypatch):
 
 
 def test_detect_helpers_for_the_command_line(raw):
-    from changekind.flows.inputs import SeriesInput
+    from changekind.tasks.fetch.inputs import SeriesInput
 
     day = raw[(raw["timestamp"] >= START + pd.Timedelta(days=1))
               & (raw["timestamp"] < START + pd.Timedelta(days=1, hours=16))]

@@ -1,6 +1,6 @@
-"""Importing the report does not import Prefect; its Prefect task is built on first use.
+"""Importing the report does not import Prefect; the flows build its Prefect task.
 
-Like ``test_detect_does_not_import_prefect`` in tests/flows/test_cli.py: a
+Like ``test_detect_does_not_import_prefect`` in tests/flows/cli/test_detect.py: a
 fresh interpreter imports every module of the package and says whether
 ``prefect`` got loaded.  Read-only commands (``changekind report``) must not
 pay Prefect's start-up for a look at the database.
@@ -11,6 +11,8 @@ from __future__ import annotations
 import os
 import subprocess
 import sys
+
+import pytest
 
 CODE = """
 import importlib, pkgutil, sys
@@ -24,6 +26,7 @@ print(len(names), "prefect" in sys.modules)
 """
 
 
+@pytest.mark.integration  # a fresh interpreter
 def test_importing_every_report_module_does_not_load_prefect():
     env = {**os.environ, "PYTHONWARNINGS": "ignore"}
     done = subprocess.run(
@@ -39,11 +42,12 @@ def test_importing_every_report_module_does_not_load_prefect():
     assert int(n_modules) >= 10 and loaded == "False"
 
 
-def test_the_flows_prefect_task_is_built_on_first_use():
+def test_the_flows_run_the_report_as_a_prefect_task():
     from prefect import Task
 
+    from changekind.flows.steps import write_stored_report_task
     from changekind.tasks.report import data
 
-    task = data.write_stored_report_task
-    assert isinstance(task, Task) and task.fn is data.write_stored_report
-    assert task.name == "write-report"
+    assert isinstance(write_stored_report_task, Task)
+    assert write_stored_report_task.fn is data.write_stored_report
+    assert write_stored_report_task.name == "write-report"

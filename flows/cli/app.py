@@ -1,0 +1,150 @@
+"""The ``changekind`` application: exit codes, consoles and the mapping of errors.
+
+Every command registers itself on :data:`app` (``flows/cli/__init__.py``
+imports each command module).  Exit codes: 0 done, every series and file
+analysed; 1 done, but some series, rows or source files could not be analysed
+(each is named on stderr and recorded); 2 bad usage or configuration (nothing
+was run); 3 the run failed part-way (a rerun continues from each series'
+watermark); 4 another run holds the database (nothing was run); 130
+interrupted.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+from collections.abc import Iterator, Mapping
+from contextlib import contextmanager
+
+import typer
+from pydantic import ValidationError
+from rich.console import Console
+
+from changekind.tasks.errors import ChangekindError, ConfigError
+
+EXIT_SERIES_FAILED = 1
+"""Some series could not be analysed (the others were)."""
+
+EXIT_USAGE = 2
+"""Bad usage or unreadable input; nothing was analysed."""
+
+DEBUG_ENV = "CHANGEKIND_DEBUG"
+"""Set to 1 to get the traceback of an unexpected error in a series."""
+
+app = typer.Typer(
+    name="changekind",
+    help="Find and classify events (AO, LS, TC, IO) in fleets of metric series.",
+    no_args_is_help=True,
+    add_completion=False,
+    pretty_exceptions_enable=False,
+)
+
+
+def out_console() -> Console:
+    """Console for results: plain lines are never hard-wrapped (commands stay copyable)."""
+    console = Console(highlight=False, soft_wrap=True)
+    if not console.is_terminal:
+        console = Console(highlight=False, soft_wrap=True, width=120)
+    return console
+
+
+def err_console() -> Console:
+    return Console(stderr=True, highlight=False, soft_wrap=True)
+
+
+def fail_usage(message: str) -> typer.Exit:
+    """Print one clear line on stderr; return the exit to raise."""
+    err_console().print(f"changekind: error: {message}", markup=False)
+    return typer.Exit(EXIT_USAGE)
+
+
+EXIT_RUN_FAILED = 3
+"""The run itself failed (not one series: the run); a rerun continues where it stopped."""
+
+EXIT_BUSY = 4
+"""Another fleet run holds the database (one run at a time per database); nothing was run."""
+
+EXIT_INTERRUPTED = 130
+"""Stopped by Ctrl-C (128 + SIGINT, the shell's convention)."""
+
+OPTION_NAMES = {
+    "critical": "--critical",
+    "min_points": "--min-points",
+    "workers": "--workers",
+    "wait_seconds": "--wait",
+}
+
+
+def validation_text(exc: Exception, names: Mapping[str, str]) -> str:
+    """A pydantic ValidationError in one line, fields named as the user wrote them."""
+    errors = getattr(exc, "errors", None)
+    if errors is None:
+        return str(exc)
+    parts = []
+    for err in errors():
+        loc = err.get("loc") or ("",)
+        name = names.get(str(loc[0]), str(loc[0]))
+        message = str(err.get("msg", "invalid")).removeprefix("Value error, ")
+        parts.append(f"{name} {err.get('input')!r}: {message}")
+    return "; ".join(parts)
+
+
+# --------------------------------------------------------------------------- running a flow
+
+
+class _NoTraceback(logging.Filter):
+    """Keep Prefect's error lines on the console but drop their tracebacks."""
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        record.exc_info = None
+        record.exc_text = None
+        record.stack_info = None
+        return True
+
+
+@contextmanager
+def console_without_tracebacks() -> Iterator[None]:
+    """While a flow runs, the root console handler prints no tracebacks (unless debugging)."""
+    if os.environ.get(DEBUG_ENV):
+        yield
+        return
+    quiet = _NoTraceback()
+    handlers = list(logging.getLogger().handlers)
+    for handler in handlers:
+        handler.addFilter(quiet)
+    try:
+        yield
+    finally:
+        for handler in handlers:
+            handler.removeFilter(quiet)
+
+
+def is_configuration(exc: BaseException) -> bool:
+    """A problem of the configuration (exit 2), not of the run (exit 3)."""
+
+    return isinstance(exc, ConfigError | ValidationError)
+
+
+def known_cause(exc: BaseException) -> BaseException | None:
+    """The ChangekindError (or pydantic ValidationError) behind an exception, if any."""
+
+    seen: set[int] = set()
+    current: BaseException | None = exc
+    while current is not None and id(current) not in seen:
+        if isinstance(current, ChangekindError | ValidationError):
+            return current
+        seen.add(id(current))
+        current = current.__cause__ or current.__context__
+    return None
+
+
+@contextmanager
+def usage_errors() -> Iterator[None]:
+    """Turn configuration problems into one stderr line and exit code 2."""
+
+    try:
+        yield
+    except ChangekindError as exc:  # ConfigError from the checks here, or from the steps
+        raise fail_usage(str(exc)) from None
+    except ValidationError as exc:
+        raise fail_usage(validation_text(exc, OPTION_NAMES)) from None

@@ -1,0 +1,314 @@
+"""Checking a fleet command's configuration before any flow runs.
+
+The settings, the options, the source
+(:func:`~changekind.tasks.fetch.open_source`) and the database
+(:func:`~changekind.tasks.persist.connect`) are checked in this process: a
+flow wraps the errors raised inside it in its own machinery; checked here, bad
+configuration gets one clear line on stderr and exit code 2 instead.
+"""
+
+from __future__ import annotations
+
+import inspect
+import os
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import pandas as pd
+import sqlalchemy as sa
+from pydantic import ValidationError
+
+from changekind.flows.cli.app import OPTION_NAMES, validation_text
+from changekind.flows.settings import RunOptions, Settings, split_password
+from changekind.tasks import persist
+from changekind.tasks.errors import ConfigError
+from changekind.tasks.fetch import open_source
+from changekind.tasks.window import window_text
+
+RUNNERS: tuple[str, ...] = ("threads", "processes", "dask")
+
+PREFECT_DEFAULTS: dict[str, str] = {
+    # Offline machines: no telemetry (it also logs a harmless "database is locked").
+    "PREFECT_SERVER_ANALYTICS_ENABLED": "false",
+    # Per-task INFO logging costs 20-35 % of the orchestration time (PREFECT-NOTES).
+    "PREFECT_LOGGING_LEVEL": "WARNING",
+    # The ephemeral server's default 20 s start-up timeout was seen to expire under load.
+    "PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS": "120",
+}
+"""Set in the CLI process (unless already set) before Prefect is imported."""
+
+DASK_DEFAULTS: dict[str, str] = {
+    # A local cluster logs some 30 INFO lines (start, workers, closing) on stderr.
+    "DASK_LOGGING__DISTRIBUTED": "warning",
+}
+"""Set (unless already set) before a Dask runner is made."""
+
+
+_SETTING_NAMES = {
+    "db_url": "CHANGEKIND_DB_URL",
+    "source": "CHANGEKIND_SOURCE",
+    "runner": "CHANGEKIND_RUNNER",
+    "workers": "CHANGEKIND_WORKERS",
+    "dask_address": "CHANGEKIND_DASK_ADDRESS",
+}
+
+
+# --------------------------------------------------------------------------- configuration
+
+
+def prefect_defaults(environ: dict[str, str] | None = None) -> None:
+    """Set :data:`PREFECT_DEFAULTS` in the environment where they are not set yet."""
+    env = os.environ if environ is None else environ
+    for name, value in PREFECT_DEFAULTS.items():
+        env.setdefault(name, value)
+
+
+def path_text(path: Path | None) -> str | None:
+    return None if path is None else str(path)
+
+
+def fleet_arguments(given: Mapping[str, Any]) -> dict[str, Any]:
+    """The fleet command's own parameters that :func:`fleet_config` checks."""
+    wanted = inspect.signature(fleet_config).parameters
+    return {name: value for name, value in given.items() if name in wanted}
+
+
+def env_settings():
+    """The deployment defaults (``CHANGEKIND_*``); a bad variable is a usage problem."""
+
+    try:
+        return Settings()
+    except ValidationError as exc:
+        raise ConfigError(
+            f"bad environment setting: {validation_text(exc, _SETTING_NAMES)}"
+        ) from None
+
+
+def database_url(db: str | None) -> str:
+    return db if db is not None else env_settings().db_url
+
+
+def check_db(url: str) -> None:
+    """Connect once (and let go): an unreachable database is a usage problem."""
+
+    engine = persist.connect(url)
+    engine.dispose()
+
+
+def require_tables(url: str) -> None:
+    """The database exists and holds changekind's tables (reading commands only)."""
+
+    parsed = sa.make_url(url) if "://" in url else None
+    if parsed is not None and parsed.get_backend_name() == "sqlite":
+        path = parsed.database
+        if path and path != ":memory:" and not Path(path).exists():
+            raise ConfigError(
+                f"no database at {path!r}; run 'changekind scan' (or 'changekind demo') first, "
+                "or point --db / CHANGEKIND_DB_URL at an existing one"
+            )
+    engine = persist.connect(url)
+    try:
+        present = sa.inspect(engine).has_table(persist.series_events.name)
+    finally:
+        engine.dispose()
+    if not present:
+        raise ConfigError(
+            f"database {engine.url.render_as_string(hide_password=True)!r} holds no changekind "
+            "tables yet; run 'changekind scan' or 'changekind backfill' against it first"
+        )
+
+
+@dataclass(frozen=True, slots=True)
+class FleetConfig:
+    """Everything a fleet command checked before starting its flow."""
+
+    source: str
+    db: str
+    runner: str
+    workers: int
+    dask_address: str | None
+    options: RunOptions
+    columns: dict[str, str] | None
+    time_kind: str
+    sql: dict[str, str] = field(default_factory=dict)
+
+
+def fleet_config(
+    *,
+    source: str | None,
+    db: str | None,
+    runner: str | None,
+    dask_address: str | None,
+    workers: int | None,
+    series_column: str | None,
+    timestamp_column: str | None,
+    value_column: str | None,
+    table: str | None,
+    query: str | None,
+    critical: float | None,
+    min_points: int | None,
+    window: str | None = None,
+    wait: float | None = None,
+) -> FleetConfig:
+    """Check a fleet command's configuration in the order a person would fix it.
+
+    Raises
+    ------
+    ConfigError, ChangekindError
+        The first problem found, in words (the caller prints it).
+
+    Notes
+    -----
+    1. Environment settings.  2. Runner and Dask address.  3. Analysis options.
+    4. The source (opened and its columns checked).  5. The database (connected).
+    6. A Dask runner needs a Prefect server.
+    """
+
+    # Step 1: environment settings.
+    settings = env_settings()
+    source = source if source is not None else settings.source
+    if not source:
+        raise ConfigError("no source given; pass --source PATH (or set CHANGEKIND_SOURCE)")
+    db = db if db is not None else settings.db_url
+
+    # Step 2: runner.
+    chosen = runner if runner is not None else settings.runner
+    if chosen not in RUNNERS:
+        raise ConfigError(f"unknown runner {chosen!r}; use --runner threads, processes or dask")
+    address = dask_address if dask_address is not None else settings.dask_address
+    if dask_address is not None and chosen != "dask":
+        raise ConfigError(
+            f"--dask-address applies to --runner dask only (the runner is {chosen!r}); "
+            "add --runner dask or drop --dask-address"
+        )
+    if chosen != "dask":
+        address = None
+
+    # Step 3: analysis options.
+    knobs: dict[str, Any] = {}
+    for name, value in (
+        ("critical", critical),
+        ("min_points", min_points),
+        ("wait_seconds", wait),
+    ):
+        if value is not None:
+            knobs[name] = value
+    if window is not None:
+        knobs["window"] = window_text(window)  # a bad window: ConfigError in its own words
+    knobs["workers"] = workers if workers is not None else settings.workers
+    try:
+        options = RunOptions(**knobs)
+    except ValidationError as exc:
+        raise ConfigError(validation_text(exc, OPTION_NAMES)) from None
+
+    # Step 4: the source.
+    columns = {
+        key: name
+        for key, name in (
+            ("series_id", series_column),
+            ("timestamp", timestamp_column),
+            ("value", value_column),
+        )
+        if name is not None
+    }
+    spec = open_source(source, columns=columns or None, table=table, query=query)
+    sql = {k: v for k, v in (("table", table), ("query", query)) if v is not None}
+
+    # Step 5: the database.
+    check_db(db)
+
+    # Step 6: Dask workers cannot share an ephemeral Prefect server.
+    if chosen == "dask":
+        prefect_defaults()
+        for name, value in DASK_DEFAULTS.items():
+            os.environ.setdefault(name, value)
+        # Deliberately here: Prefect is loaded for a Dask run only (seconds of start-up).
+        from prefect.settings import get_current_settings
+
+        if not get_current_settings().api.url:
+            raise ConfigError(
+                "--runner dask needs a Prefect server that its worker processes can share; "
+                "start one with 'prefect server start' and set "
+                "PREFECT_API_URL=http://127.0.0.1:4200/api (or use --runner processes)"
+            )
+    return FleetConfig(
+        source=source if spec.kind == "sql" else spec.location,
+        db=db,
+        runner=chosen,
+        workers=options.workers,
+        dask_address=address,
+        options=options,
+        columns=columns or None,
+        time_kind=spec.time_kind,
+        sql=sql,
+    )
+
+
+def check_time(value: str | None, what: str, time_kind: str) -> str | None:
+    """A time bound the source can compare with: a number or a date-time, as it holds."""
+    if value is None:
+        return None
+    if time_kind == "numeric":
+        try:
+            float(value)
+        except ValueError:
+            raise ConfigError(
+                f"{what} {value!r} is not a number, and the source's timestamps are numbers"
+            ) from None
+        return value
+
+    bad = False
+    try:
+        float(value)
+        bad = True
+    except ValueError:
+        pass
+    if not bad:
+        try:
+            stamp = pd.Timestamp(value)
+            bad = stamp is pd.NaT
+        except (ValueError, TypeError, OverflowError):
+            bad = True
+    if bad:
+        raise ConfigError(
+            f"{what} {value!r} is not a date-time; give an ISO 8601 time such as "
+            "2026-06-01 or 2026-06-01T12:00:00Z"
+        )
+    return value
+
+
+def flow_arguments(flow: Any, config: FleetConfig, **extra: Any) -> dict[str, Any]:
+    """The flow's parameters from the checked configuration."""
+
+    params = inspect.signature(flow.fn).parameters
+    arguments: dict[str, Any] = {
+        "source": config.source,
+        "db": _db_parameter(config.db),
+        "options": config.options,
+        "columns": config.columns,
+        **{k: v for k, v in extra.items() if v is not None},
+    }
+    for name, value in config.sql.items():
+        if name not in params:
+            raise ConfigError(
+                f"--{name} is not supported yet: the fleet flows of this version read "
+                "Parquet and CSV sources only; export the series to Parquet meanwhile"
+            )
+        arguments[name] = value
+    return arguments
+
+
+def _db_parameter(url: str) -> str:
+    """The database URL as a flow parameter: without its password.
+
+    Prefect stores flow-run parameters in the clear; the password goes to
+    this process's environment (``CHANGEKIND_DB_PASSWORD``), where the flow
+    finds it (:func:`~changekind.flows.settings.resolve_db`).
+    """
+
+    public, password = split_password(url)
+    if password is not None:
+        os.environ["CHANGEKIND_DB_PASSWORD"] = password
+    return public

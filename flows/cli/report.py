@@ -1,0 +1,246 @@
+"""``changekind report``: an HTML page with one picture per stored event.
+
+Reads the events from the database (all, or those of one run, since a time,
+of some series) with their verdicts, the series' stored models and other
+events, and the observations around each event from the source;
+:func:`changekind.tasks.report.write_stored_report` draws the pictures and
+writes ``index.html`` beside them.  No Prefect flow: a report is a read-only
+look at what the scans wrote.
+"""
+
+from __future__ import annotations
+
+import contextlib
+from collections.abc import Sequence
+from pathlib import Path
+from typing import Annotated, Any
+
+import typer
+from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
+
+from changekind.flows.cli.app import EXIT_SERIES_FAILED, app, err_console, fail_usage, out_console
+from changekind.flows.settings import Settings
+from changekind.tasks.errors import ChangekindError
+from changekind.tasks.fetch import SourceSpec, open_source
+from changekind.tasks.report import data
+from changekind.tasks.report.data import WrittenReport
+
+
+def report(
+    out: Annotated[
+        Path,
+        typer.Option("--out", metavar="DIR", help="Folder for index.html and the pictures."),
+    ] = Path("changekind-report"),
+    db: Annotated[
+        str | None,
+        typer.Option(
+            "--db",
+            metavar="URL",
+            help="Database the scans wrote to.  Default: CHANGEKIND_DB_URL, else "
+            "sqlite:///changekind.db.",
+            show_default=False,
+        ),
+    ] = None,
+    source: Annotated[
+        str | None,
+        typer.Option(
+            "--source",
+            metavar="PATH",
+            help="Where the series live (Parquet, CSV or a SQL URL), as given to the scan.  "
+            "Default: CHANGEKIND_SOURCE.",
+            show_default=False,
+        ),
+    ] = None,
+    run: Annotated[
+        str | None,
+        typer.Option(
+            "--run",
+            metavar="RUN_ID",
+            help="Only events new in, or changed by, this run.",
+            show_default=False,
+        ),
+    ] = None,
+    since: Annotated[
+        str | None,
+        typer.Option(
+            "--since",
+            metavar="T",
+            help="Only events at or after this time (ISO 8601; naive times are UTC).",
+            show_default=False,
+        ),
+    ] = None,
+    series: Annotated[
+        list[str] | None,
+        typer.Option(
+            "--series",
+            metavar="ID",
+            help="Only this series; repeat for several.",
+            show_default=False,
+        ),
+    ] = None,
+    table: Annotated[
+        str | None,
+        typer.Option("--table", help="SQL sources: the table to read.", show_default=False),
+    ] = None,
+    query: Annotated[
+        str | None,
+        typer.Option("--query", help="SQL sources: a SELECT to read.", show_default=False),
+    ] = None,
+    series_column: Annotated[
+        str, typer.Option("--series-column", help="Source column of the series id.")
+    ] = "series_id",
+    timestamp_column: Annotated[
+        str, typer.Option("--timestamp-column", help="Source column of the timestamp.")
+    ] = "timestamp",
+    value_column: Annotated[
+        str, typer.Option("--value-column", help="Source column of the value.")
+    ] = "value",
+    timestamp_unit: Annotated[
+        str | None,
+        typer.Option(
+            "--timestamp-unit",
+            help="Numeric timestamps are epoch times in this unit (s, ms, us, ns).",
+            show_default=False,
+        ),
+    ] = None,
+    sort: Annotated[
+        str,
+        typer.Option(
+            "--sort",
+            metavar="ORDER",
+            help="Order of the list: effect_pct (largest |effect %| first), effect "
+            "(largest |effect| in the series' units), t (largest |t|) or time (newest "
+            "first).  Ties by |t|, then series and time; dismissed events always last.",
+        ),
+    ] = "effect_pct",
+    hide_dismissed: Annotated[
+        bool,
+        typer.Option(
+            "--hide-dismissed",
+            help="Leave out events a person dismissed (changekind triage ... dismissed).",
+        ),
+    ] = False,
+    unit: Annotated[
+        list[str] | None,
+        typer.Option(
+            "--unit",
+            metavar="PATTERN=UNIT",
+            help="Unit of the series matching PATTERN (a series id or a shell pattern such "
+            "as '*/write-latency-ms'), shown on the pictures' axes; repeat for several.",
+            show_default=False,
+        ),
+    ] = None,
+) -> None:
+    """Write an HTML report of stored events, one picture per event."""
+
+    units = parse_units(unit or [])
+    settings = Settings()
+    db_url = db or settings.db_url
+    location = source or settings.source
+    if not location:
+        raise fail_usage(
+            "the report needs the source the events came from: give --source PATH "
+            "(or set CHANGEKIND_SOURCE)"
+        )
+    try:
+        spec = open_source(
+            location,
+            columns={
+                "series_id": series_column,
+                "timestamp": timestamp_column,
+                "value": value_column,
+            },
+            table=table,
+            query=query,
+            timestamp_unit=timestamp_unit,
+        )
+        written = write_stored_report(
+            db_url,
+            spec,
+            out,
+            run=run,
+            since=since,
+            series=series,
+            sort=sort,
+            hide_dismissed=hide_dismissed,
+            units=units,
+        )
+    except ChangekindError as exc:
+        raise fail_usage(str(exc)) from None
+    missing = written.n_events - written.drawn
+    if missing:
+        err_console().print(
+            f"changekind: {missing} event(s) have no picture; the report says why for each",
+            markup=False,
+        )
+        raise typer.Exit(EXIT_SERIES_FAILED)
+
+
+def parse_units(given: Sequence[str]) -> dict[str, str]:
+    """``--unit PATTERN=UNIT`` options as a mapping (the last ``=`` splits)."""
+    units: dict[str, str] = {}
+    for text in given:
+        pattern, sep, name = text.rpartition("=")
+        if not sep or not pattern.strip() or not name.strip():
+            raise fail_usage(
+                f"--unit {text!r} is not PATTERN=UNIT; give for example "
+                "--unit '*/write-latency-ms=ms'"
+            )
+        units[pattern.strip()] = name.strip()
+    return units
+
+
+def write_stored_report(
+    db_url: str,
+    spec: SourceSpec,
+    out: Path,
+    *,
+    run: str | None = None,
+    since: str | None = None,
+    series: Sequence[str] | None = None,
+    **options: Any,
+) -> WrittenReport:
+    """:func:`changekind.tasks.report.write_stored_report` with a progress bar, announced.
+
+    ``options`` are its keywords (``sort``, ``hide_dismissed``, ``units``).
+
+    Used by ``changekind report`` and by the demo.  Damaged stored models are
+    said on stderr (their events are drawn without them).
+    """
+
+    err = err_console()
+    # A progress bar on a terminal only; the same call either way.
+    bar = None
+    if err.is_terminal:
+        columns = (TextColumn("drawing"), BarColumn(), MofNCompleteColumn())
+        bar = Progress(*columns, console=err, transient=True)
+    with bar or contextlib.nullcontext():
+        on_progress = None
+        if bar is not None:
+            task_id = bar.add_task("drawing", total=None)
+
+            def on_progress(done: int, total: int) -> None:
+                bar.update(task_id, completed=done, total=total)
+
+        written = data.write_stored_report(
+            db_url,
+            spec,
+            out,
+            run=run,
+            since=since,
+            series=series,
+            on_progress=on_progress,
+            **options,
+        )
+    for sid, problem in written.problems:
+        err.print(f"changekind: series {sid!r}: {problem}", markup=False)
+    hidden = f" ({written.n_hidden} dismissed left out)" if written.n_hidden else ""
+    out_console().print(
+        f"Report of {written.n_events} event(s) in {written.n_series} series{hidden}, "
+        f"{written.drawn} picture(s): {written.index}",
+        markup=False,
+    )
+    return written
+
+
+app.command(name="report")(report)

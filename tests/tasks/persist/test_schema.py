@@ -1,0 +1,211 @@
+"""The schema and its migrations (tasks/persist/schema.py, engines.py).
+
+The reference is the input itself: what goes in must come back (bit for bit
+for floats); expected rows of the views are worked out by hand or by pandas
+from the same input, independently of the SQL.  Every test taking the
+``url``/``engine`` fixture runs on SQLite and on the real PostgreSQL server.
+"""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+import pytest
+import sqlalchemy as sa
+from alembic import command
+from alembic.autogenerate import compare_metadata
+from alembic.config import Config
+from alembic.migration import MigrationContext
+from alembic.script import ScriptDirectory
+
+from changekind.tasks import persist
+from changekind.tasks.persist import (
+    VERSION_TABLE,
+    init_db,
+    metadata,
+    migrate,
+    migrations_dir,
+    set_triage,
+    table_snapshot,
+    write_events,
+)
+from tests.tasks.persist.tables import (
+    T0,
+    VIEW_NAMES,
+    VIEWS_0001,
+    event_row,
+    load_migration,
+    make_event,
+    normalized,
+    revisions,
+    view_definitions,
+    views_sql,
+)
+
+# --------------------------------------------------------------------------- schema
+
+
+def test_migrations_build_exactly_the_metadata(engine: sa.Engine) -> None:
+    with engine.connect() as conn:
+        context = MigrationContext.configure(
+            conn, opts={"compare_type": True, "version_table": VERSION_TABLE}
+        )
+        assert compare_metadata(context, metadata) == []
+        assert (
+            context.get_current_revision()
+            == ScriptDirectory(str(migrations_dir())).get_current_head()
+        )
+        inspector = sa.inspect(conn)
+        assert set(inspector.get_view_names()) == VIEW_NAMES
+        assert set(inspector.get_table_names()) == {t.name for t in metadata.sorted_tables} | {
+            VERSION_TABLE
+        }
+
+
+def test_schema_comparison_can_fail(engine: sa.Engine) -> None:
+    """The check above is not vacuous: a MetaData with one more column differs."""
+    drifted = sa.MetaData()
+    for table in metadata.sorted_tables:
+        table.to_metadata(drifted)
+    drifted.tables["scan_runs"].append_column(sa.Column("extra", sa.Integer))
+    with engine.connect() as conn:
+        context = MigrationContext.configure(
+            conn, opts={"compare_type": True, "version_table": VERSION_TABLE}
+        )
+        diff = compare_metadata(context, drifted)
+    assert [(d[0], d[2], d[3].name) for d in diff] == [("add_column", "scan_runs", "extra")]
+
+
+def test_migrate_again_is_a_no_op_and_cwd_does_not_matter(
+    engine: sa.Engine, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    write_events(engine, "run-1", [make_event()], at=T0)
+    before = table_snapshot(engine)
+    monkeypatch.chdir(tmp_path)  # the script folder is found from the package, not the cwd
+    migrate(engine)
+    assert table_snapshot(engine) == before
+
+
+def _alembic(engine: sa.Engine, action: str, revision: str) -> None:
+    config = Config()
+    config.set_main_option("script_location", str(migrations_dir()))
+    with engine.begin() as conn:
+        config.attributes["connection"] = conn
+        getattr(command, action)(config, revision)
+
+
+def test_migration_0002_keeps_rows_and_admits_variance_changes(url: str) -> None:
+    """0001 -> 0002 keeps events, revisions, triage and views; VC rows pass; downgrade undoes it."""
+    engine = persist.connect(url)
+    try:
+        migrate(engine, revision="0001")
+        write_events(engine, "run-1", [make_event()], at=T0)
+        set_triage(engine, "edge-latency", "2024-03-01T10:00:00Z", "explained", reason="rollout")
+        vc = make_event(event_time="2024-03-02T10:00:00Z", event_type="VC")
+        with pytest.raises(sa.exc.IntegrityError), engine.begin() as conn:  # 0001 refuses VC
+            conn.execute(
+                sa.insert(persist.series_events),
+                [
+                    {
+                        **event_row(engine, "edge-latency", "2024-03-01T10:00:00Z"),
+                        "event_time": "x",
+                        "event_type": "VC",
+                    }
+                ],
+            )
+        before = table_snapshot(engine)
+        migrate(engine, revision="0002")
+        assert table_snapshot(engine) == before
+        with engine.connect() as conn:
+            assert set(sa.inspect(conn).get_view_names()) == VIEWS_0001
+            assert conn.execute(sa.text("SELECT COUNT(*) FROM open_level_shifts")).scalar() == 1
+        write_events(engine, "run-2", [vc], at=T0)
+        assert event_row(engine, "edge-latency", "2024-03-02T10:00:00Z")["event_type"] == "VC"
+        assert [r["change"] for r in revisions(engine)] == ["new", "new"]
+        _alembic(engine, "downgrade", "0001")
+        with engine.connect() as conn:
+            kinds = conn.execute(sa.select(persist.series_events.c.event_type)).scalars().all()
+        assert kinds == ["LS"]
+    finally:
+        engine.dispose()
+
+
+def test_migration_0003_keeps_rows_and_admits_abandoned_runs(url: str) -> None:
+    """0002 -> 0003: models, runs and views kept; new columns NULL; 'abandoned' allowed."""
+    engine = persist.connect(url)
+    try:
+        migrate(engine, revision="0002")
+        write_events(engine, "run-1", [make_event()], at=T0)
+        with engine.begin() as conn:
+            conn.execute(
+                sa.text(
+                    "INSERT INTO scan_runs (run_id, kind, status, series_total, series_ok, "
+                    "series_failed, events_new, events_changed, events_retracted, started_at) "
+                    "VALUES ('old', 'scan', 'running', 0, 0, 0, 0, 0, 0, :t)"
+                ),
+                {"t": T0},
+            )
+            conn.execute(
+                sa.text(
+                    "INSERT INTO series_models (series_id, model_json, arima_order, sigma2, nobs, "
+                    "fitted_at, watermark) VALUES ('s', '{}', '(1,0,0)(0,0,0,0)', 1.0, 10, :t, 'w')"
+                ),
+                {"t": T0},
+            )
+            with pytest.raises(sa.exc.IntegrityError), conn.begin_nested():
+                conn.execute(sa.text("UPDATE scan_runs SET status = 'abandoned'"))
+        migrate(engine)
+        assert persist.load_coverage(engine) == {"s": persist.Coverage(None, "w", None)}
+        assert persist.close_stale_runs(engine, "new", at=T0) == ["old"]
+        runs = table_snapshot(engine)["scan_runs"]
+        assert [(r[0], r[4]) for r in runs] == [("old", "abandoned")]
+        assert "closed by run new" in runs[0][-1]
+        with engine.connect() as conn:
+            assert set(sa.inspect(conn).get_view_names()) == VIEW_NAMES
+        _alembic(engine, "downgrade", "0002")
+        with engine.connect() as conn:
+            assert conn.execute(sa.text("SELECT status FROM scan_runs")).scalar() == "failed"
+            assert "run_locks" not in sa.inspect(conn).get_table_names()
+            assert conn.execute(sa.text("SELECT watermark FROM series_models")).scalar() == "w"
+    finally:
+        engine.dispose()
+
+
+def test_downgrade_removes_tables_and_views(url: str) -> None:
+    engine = init_db(url)
+    try:
+        config = Config()
+        config.set_main_option("script_location", str(migrations_dir()))
+        with engine.begin() as conn:
+            config.attributes["connection"] = conn
+            command.downgrade(config, "base")
+        with engine.connect() as conn:
+            inspector = sa.inspect(conn)
+            assert inspector.get_view_names() == []
+            assert set(inspector.get_table_names()) == {VERSION_TABLE}
+    finally:
+        engine.dispose()
+
+
+@pytest.mark.parametrize("dialect", ["sqlite", "postgresql"])
+def test_views_sql_is_the_migration_text(dialect: str) -> None:
+    expected = {
+        re.search(r"CREATE VIEW (\w+)", sql).group(1): normalized(sql)  # type: ignore[union-attr]
+        for name in ("0001_initial_schema.py", "0005_series_labels_and_incidents.py")
+        for sql in load_migration(name).view_statements(dialect)
+    }
+    assert {name: normalized(sql) for name, sql in views_sql(dialect).items()} == expected
+
+
+def test_views_sql_builds_the_same_views_as_the_migrations(engine: sa.Engine) -> None:
+    """Re-create the views from infra/views.sql: the database keeps the same definitions."""
+    with engine.begin() as conn:
+        migrated = view_definitions(conn)
+        for name in migrated:
+            conn.exec_driver_sql(f"DROP VIEW {name}")
+        for sql in views_sql(conn.dialect.name).values():
+            conn.exec_driver_sql(sql)
+        rebuilt = view_definitions(conn)
+    assert set(migrated) == VIEW_NAMES
+    assert rebuilt == migrated
