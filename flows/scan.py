@@ -249,6 +249,7 @@ def _locked_run(
         problems=tuple(p.describe() for p in dict.fromkeys(problems)),
     )
     notes.extend(summary.notes)
+    t_incidents = time.perf_counter()
     incident_changes, notified = _update_incidents(db, run_id, options, logger=logger, notes=notes)
     summary = replace(
         summary,
@@ -256,6 +257,7 @@ def _locked_run(
         incidents=incident_changes,
         notified=notified,
         labelled=labelled,
+        timings=(*summary.timings, ("incidents", time.perf_counter() - t_incidents)),
     )
     if summary.problems:
         notes.append(

@@ -30,7 +30,13 @@ from changekind.tasks.errors import ConfigError
 if TYPE_CHECKING:
     from changekind.tasks.incidents import Incident
 
-__all__ = ["INCIDENT_CSV_COLUMNS", "incident_csv", "incident_records", "incidents"]
+__all__ = [
+    "INCIDENT_CSV_COLUMNS",
+    "incident_csv",
+    "incident_records",
+    "incidents",
+    "incidents_table",
+]
 
 INCIDENT_CSV_COLUMNS: tuple[str, ...] = (
     "incident_id",
@@ -88,7 +94,7 @@ def incident_csv(records: Sequence[Mapping[str, Any]]) -> str:
     return buffer.getvalue()
 
 
-def _table(records: Sequence[Mapping[str, Any]], *, title: str) -> Table:
+def incidents_table(records: Sequence[Mapping[str, Any]], *, title: str) -> Table:
     table = Table(title=title, title_justify="left")
     for name in ("start (UTC)", "end", "series", "% of fleet", "type", "dir", "median %"):
         table.add_column(
@@ -184,5 +190,5 @@ def incidents(
         title = f"{len(records)} incidents, newest first"
         if len(shown) < len(records):
             title += f" (the newest {len(shown)} shown; --json or --csv for all)"
-        console.print(_table(shown, title=title))
+        console.print(incidents_table(shown, title=title))
     sys.stdout.flush()

@@ -90,3 +90,36 @@ def test_the_injected_rollout_is_one_incident_sharing_the_new_firmware(fleet):
     assert score.other_incidents == 0
     assert "5 of the rollout's 5 series" in score.words()
     assert score_rollout_incident([], fleet.rollout_series).incident_id is None
+
+
+@pytest.mark.slow
+def test_the_demo_finds_the_rollout_as_an_incident(prefect_server, tmp_path):
+    """The whole demo (engine, flows, incidents, report) on 16 controllers over 5 days, 4
+    of them on the rollout: the incident holding the rollout's series shares firmware 7.3
+    (the injected events alone group so: no other story's event falls within a link).
+
+    Reference: the injected truth (truth.csv and the fleet's rollout series)."""
+    import json
+
+    from typer.testing import CliRunner
+
+    from changekind.flows.cli import app
+
+    out = tmp_path / "demo"
+    args = ["demo", "--controllers", "16", "--days", "5", "--seed", "2031", "--out", str(out)]
+    result = CliRunner().invoke(app, args)
+    assert result.exit_code in (0, 1), result.stderr
+    fleet = make_demo_fleet(np.random.default_rng(2031), n_controllers=16, days=5)
+    records = json.loads((out / "incidents.json").read_text())
+    best = max(
+        records, key=lambda r: len({m["series_id"] for m in r["members"]} & fleet.rollout_series)
+    )
+    found = {m["series_id"] for m in best["members"]} & fleet.rollout_series
+    assert len(fleet.rollout_series) == 4
+    assert len(found) >= 3  # the engine may miss one small shift (4-8 sd, one day of history)
+    assert best["shared_labels"].get("firmware") == NEW_FIRMWARE
+    assert f"{len(found)} of the rollout's 4 series in incident {best['incident_id']}" in (
+        result.stdout
+    )
+    page = (out / "report" / "incidents.html").read_text(encoding="utf-8")
+    assert best["incident_id"] in page and "firmware = 7.3" in page
