@@ -88,3 +88,31 @@ def test_bad_use_is_refused_with_a_message(tmp_path, db):
     assert both.exit_code == 2 and "not both" in both.stderr
     missing = runner.invoke(app, ["incidents", "--db", f"sqlite:///{tmp_path / 'none.db'}"])
     assert missing.exit_code == 2 and "no database" in missing.stderr
+
+
+def test_a_label_column_that_does_not_exist_is_named_with_those_that_do(tmp_path):
+    """Nothing runs (exit code 2); the message lists the source's columns."""
+    from tests.flows.incident_fleet import make_incident_fleet, write_source
+
+    data, _ = make_incident_fleet()
+    source = write_source(data.head(48), tmp_path / "src")
+    db = f"sqlite:///{tmp_path / 'ck.db'}"
+    done = runner.invoke(
+        app,
+        [
+            "scan",
+            "--source",
+            str(source),
+            "--db",
+            db,
+            "--label-column",
+            "rack",
+            "--label-column",
+            "region",
+        ],
+    )
+    assert done.exit_code == 2
+    message = " ".join(done.stderr.split())
+    assert "no column 'region' for --label-column" in message
+    assert "series_id, timestamp, value, rack, firmware" in message
+    assert not (tmp_path / "ck.db").exists()  # refused before the database is opened
