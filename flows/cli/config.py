@@ -24,6 +24,7 @@ from changekind.flows.settings import RunOptions, Settings, split_password
 from changekind.tasks import persist
 from changekind.tasks.errors import ConfigError, mask_url
 from changekind.tasks.fetch import open_source
+from changekind.tasks.labels import check_label_columns
 from changekind.tasks.timeaxis import parse_instant
 from changekind.tasks.window import window_text
 
@@ -133,6 +134,7 @@ class FleetConfig:
     columns: dict[str, str] | None
     time_kind: str
     sql: dict[str, str] = field(default_factory=dict)
+    labels: tuple[str, ...] = ()
 
 
 def column_map(
@@ -159,6 +161,7 @@ def fleet_config(
     min_points: int | None,
     window: str | None = None,
     wait: float | None = None,
+    label_column: list[str] | None = None,
 ) -> FleetConfig:
     """Check a fleet command's configuration in the order a person would fix it.
 
@@ -215,6 +218,7 @@ def fleet_config(
     columns = column_map(series_column, timestamp_column, value_column)
     spec = open_source(source, columns=columns or None, table=table, query=query)
     sql = {k: v for k, v in (("table", table), ("query", query)) if v is not None}
+    labels = check_label_columns(spec, label_column)  # names the columns there are
 
     # Step 5: the database.
     check_db(db)
@@ -243,6 +247,7 @@ def fleet_config(
         columns=columns or None,
         time_kind=spec.time_kind,
         sql=sql,
+        labels=labels,
     )
 
 
@@ -282,6 +287,8 @@ def flow_arguments(flow: Any, config: FleetConfig, **extra: Any) -> dict[str, An
         "columns": config.columns,
         **{k: v for k, v in extra.items() if v is not None},
     }
+    if config.labels:
+        arguments["label_columns"] = list(config.labels)
     for name, value in config.sql.items():
         if name not in params:
             raise ConfigError(

@@ -7,13 +7,14 @@ import sys
 from typing import Annotated
 
 import pandas as pd
+import sqlalchemy as sa
 import typer
 
 from changekind.flows.cli.app import app, fail_usage, out_console, usage_errors
 from changekind.flows.cli.config import database_url, require_tables
 from changekind.flows.cli.options import DbOpt, SeriesOpt, SinceOpt
 from changekind.flows.cli.output import TABLE_ROWS, event_csv, event_json_records, events_table
-from changekind.tasks import persist
+from changekind.tasks import incident_store, persist
 from changekind.tasks.errors import ConfigError
 
 
@@ -52,10 +53,12 @@ def events(
             series_ids=series or None,
             include_retracted=include_retracted,
         )
+        labels = _series_labels(url)
     if as_json:
-        sys.stdout.write(json.dumps(event_json_records(frame), indent=2, allow_nan=False) + "\n")
+        records = event_json_records(frame, labels)
+        sys.stdout.write(json.dumps(records, indent=2, allow_nan=False) + "\n")
     elif as_csv:
-        sys.stdout.write(event_csv(frame))
+        sys.stdout.write(event_csv(frame, labels))
     else:
         console = out_console()
         if frame.empty:
@@ -65,8 +68,16 @@ def events(
         title = f"{len(frame)} events"
         if len(shown) < len(frame):
             title += f" (the newest {len(shown)} shown; --json or --csv for all)"
-        console.print(events_table(shown, title=title))
+        console.print(events_table(shown, title=title, labels=labels))
     sys.stdout.flush()
+
+
+def _series_labels(url: str) -> dict[str, dict[str, str | None]]:
+    """The series' attributes (none in a database from before them: its next run adds them)."""
+    try:
+        return incident_store.read_labels(url)
+    except sa.exc.DBAPIError:
+        return {}
 
 
 def _stored_time(url: str, series_id: str, event_time: str) -> str:

@@ -168,6 +168,17 @@ WaitOpt = Annotated[
         show_default=False,
     ),
 ]
+LabelOpt = Annotated[
+    list[str] | None,
+    typer.Option(
+        "--label-column",
+        metavar="NAME",
+        help="A source column that describes a series (rack, host, firmware...); repeat "
+        "for several.  Its latest value per series is stored and incidents say which "
+        "values their series share.",
+        show_default=False,
+    ),
+]
 JsonOpt = Annotated[
     bool,
     typer.Option("--json", help="Print only the run's summary as JSON on stdout."),

@@ -145,6 +145,9 @@ def summary_record(summary: RunSummary) -> dict[str, Any]:
             "timings": dict(summary.timings),
             "source_problems": list(summary.problems),
             "notes": list(summary.notes),
+            "incidents": dict(summary.incidents),
+            "notified": summary.notified,
+            "labelled": summary.labelled,
         }
     )
 
@@ -223,8 +226,14 @@ def report_failures(summary: RunSummary) -> None:
 # --------------------------------------------------------------------------- events, triage
 
 
-def event_json_records(frame: pd.DataFrame) -> list[dict[str, Any]]:
-    """Stored events as records of the ``detect --json`` contract (NaN as null)."""
+def event_json_records(
+    frame: pd.DataFrame, labels: Mapping[str, Mapping[str, str | None]] | None = None
+) -> list[dict[str, Any]]:
+    """Stored events as records of the ``detect --json`` contract (NaN as null).
+
+    With ``labels`` (series id -> {attribute: value}), each record ends with
+    ``labels``: its series' attributes (an empty object when it has none).
+    """
 
     records = []
     for row in frame.loc[:, list(EVENT_COLUMNS)].itertuples(index=False):
@@ -235,14 +244,23 @@ def event_json_records(frame: pd.DataFrame) -> list[dict[str, Any]]:
             elif name == "type_weights":
                 value = {k: float(v) for k, v in value.items()}
             record[name] = value
+        if labels is not None:
+            record["labels"] = dict(labels.get(record["series_id"], {}))
         records.append(finite(record))
     return records
 
 
-def event_csv(frame: pd.DataFrame) -> str:
-    """Stored events as CSV: the contract's columns, then triage and bookkeeping."""
+def event_csv(
+    frame: pd.DataFrame, labels: Mapping[str, Mapping[str, str | None]] | None = None
+) -> str:
+    """Stored events as CSV: the contract's columns, then triage and bookkeeping,
+    then (with ``labels``) ``labels``: the series' attributes as a JSON object."""
 
     out = frame.loc[:, [*EVENT_COLUMNS, *EVENT_EXTRA_COLUMNS]].copy()
+    if labels is not None:
+        out["labels"] = [
+            json.dumps(dict(labels.get(s, {})), sort_keys=True) for s in out["series_id"]
+        ]
     out["type_weights"] = [json.dumps(w, sort_keys=False) for w in out["type_weights"]]
     for name in ("event_ts", "first_seen", "last_seen", "triage_at"):
         out[name] = [None if v is None or v != v else v.isoformat() for v in out[name]]
@@ -256,10 +274,17 @@ def _weights_text(weights: Mapping[str, float], *, k: int = 2, floor: float = 0.
     return " · ".join(f"{t} {w:.2f}" for t, w in ranked[:k] if w >= floor) or "-"
 
 
-def events_table(frame: pd.DataFrame, *, title: str) -> Table:
-    """Stored events in a readable table."""
+def events_table(
+    frame: pd.DataFrame,
+    *,
+    title: str,
+    labels: Mapping[str, Mapping[str, str | None]] | None = None,
+) -> Table:
+    """Stored events in a readable table (with an ``attributes`` column when ``labels``)."""
     table = Table(title=title, title_justify="left")
     texts = ("series", "time", "weights", "status", "triage")
+    if labels:
+        texts = (*texts, "attributes")
     for name in ("series", "time", "type", "effect", "effect %", "t", *texts[2:]):
         table.add_column(
             name,
@@ -278,5 +303,10 @@ def events_table(frame: pd.DataFrame, *, title: str) -> Table:
             _weights_text(row.type_weights),
             row.status,
             row.triage_state or "-",
+            *(
+                [", ".join(f"{k}={v}" for k, v in sorted(labels.get(row.series_id, {}).items()))]
+                if labels
+                else []
+            ),
         )
     return table

@@ -63,6 +63,8 @@ class WrittenReport:
     drawn: int
     problems: tuple[tuple[str, str], ...] = ()
     n_hidden: int = 0
+    n_incidents: int = 0
+    incidents_page: Path | None = None
 
 
 def write_stored_report(
@@ -145,7 +147,21 @@ def write_stored_report(
         ("order", SORT_ORDERS[sort].words),
         ("dismissed events", hidden),
     ]
-    index = write_report(Path(out), views, facts=facts, sort=sort, on_progress=on_progress)
+    keys = {event_key(e) for e in events}
+    whole = run is None and not series
+    labels = _stored_labels(db)
+    incidents, page = _write_incidents(
+        db, spec, Path(out), since=since, keep=None if whole else keys, facts=facts, labels=labels
+    )
+    index = write_report(
+        Path(out),
+        views,
+        facts=facts,
+        sort=sort,
+        on_progress=on_progress,
+        incidents_page=None if page is None else page.name,
+        labels=labels,
+    )
     drawn = sum(1 for _ in index.parent.glob(PICTURE_PATTERN))
     return WrittenReport(
         index=index,
@@ -154,9 +170,54 @@ def write_stored_report(
         drawn=drawn,
         problems=tuple(sorted(problems.items())),
         n_hidden=n_hidden,
+        n_incidents=incidents,
+        incidents_page=page,
     )
 
 
+def _stored_labels(db: str) -> dict[str, dict[str, str | None]]:
+    """The series' attributes (none for a database from before them)."""
+    from changekind.tasks import incident_store
+
+    try:
+        return incident_store.read_labels(db)
+    except DBAPIError:
+        return {}
+
+
+def _write_incidents(
+    db: str,
+    spec: SourceSpec,
+    out: Path,
+    *,
+    since: str | None,
+    keep: set[tuple[str, str]] | None,
+    facts: Sequence[tuple[str, str]],
+    labels: Mapping[str, Mapping[str, str | None]],
+) -> tuple[int, Path | None]:
+    """The incidents page beside the events' page (incidents with a selected member,
+    or all since ``since``); no page when there is no incident."""
+    from changekind.tasks import incident_store
+    from changekind.tasks.report.incidents import read_member_series, write_incident_report
+
+    try:
+        found = incident_store.read_incidents(db, since=since)
+        states = incident_store.incident_states(db)
+    except DBAPIError:  # a database from before the incidents (it is migrated by any scan)
+        return 0, None
+    if keep is not None:
+        found = [i for i in found if i.member_keys & keep]
+    if not found:
+        return 0, None
+    steps = {
+        sid: m.step_seconds or 0.0
+        for sid, m in stored_models(db, sorted({s for i in found for s in i.series_ids}))[0].items()
+    }
+    series = read_member_series(spec, found, steps)
+    page = write_incident_report(
+        out, found, series, labels=labels, states=states, facts=list(facts)
+    )
+    return len(found), page
 def _check_sqlite_file(db: str) -> None:
     """A report never creates a database: a SQLite file that is not there is an error."""
     try:
