@@ -51,6 +51,7 @@ from changekind.tasks import persist
 from changekind.tasks.errors import ChangekindError, ConfigError, RunBusyError
 from changekind.tasks.fetch import ColumnMap, SourceProblem, open_source, survey_source
 from changekind.tasks.runlock import RunLock
+from changekind.tasks.timeaxis import parse_instant
 
 
 def _columns(columns: dict[str, str] | None) -> ColumnMap | None:
@@ -423,14 +424,28 @@ def refit_flow(
 
 
 def split_span(start: str, end: str, chunk: str, warmup: str):
-    """Chunks ``[(s0, e0), ...]`` covering ``start <= t < end``, and the warm-up start."""
-    try:
-        a, b = float(start), float(end)
-        size, back = float(chunk), float(warmup)
-        numeric = True
-    except ValueError:
-        numeric = False
-    if numeric:
+    """Chunks ``[(s0, e0), ...]`` covering ``start <= t < end``, and the warm-up start.
+
+    ``start`` and ``end`` are read by the time axis's rule
+    (:func:`~changekind.tasks.timeaxis.parse_instant`: ISO 8601, a naive time
+    is UTC, or numbers); the chunk edges are written naive when both bounds
+    were, else in the zone of the first aware bound.
+    """
+    a = parse_instant(start, what="backfill start")
+    b = parse_instant(end, what="backfill end")
+    if isinstance(a, float) != isinstance(b, float):
+        raise ConfigError(
+            f"backfill span {start!r}..{end!r} mixes a number and a date-time; give both "
+            "as numbers (numeric timestamps) or both as ISO 8601 times"
+        )
+    if isinstance(a, float) and isinstance(b, float):
+        try:
+            size, back = float(chunk), float(warmup)
+        except ValueError:
+            raise ConfigError(
+                f"chunk {chunk!r} and warm-up {warmup!r} must be numbers for a source with "
+                "numeric timestamps"
+            ) from None
         if not (b > a and size > 0 and back >= 0):
             raise ConfigError("backfill needs start < end, a positive chunk and warm-up >= 0")
         edges = [a]
@@ -439,21 +454,26 @@ def split_span(start: str, end: str, chunk: str, warmup: str):
         edges.append(b)
         return [(edges[i], edges[i + 1]) for i in range(len(edges) - 1)], a - back
     try:
-        ta, tb = pd.Timestamp(start), pd.Timestamp(end)
         size_td, back_td = pd.Timedelta(chunk), pd.Timedelta(warmup)
     except ValueError as exc:
         raise ConfigError(
-            f"backfill span {start!r}..{end!r} with chunk {chunk!r} and warm-up {warmup!r} "
-            f"is not understood ({exc}); use ISO times and durations such as 7D or 6h"
+            f"backfill chunk {chunk!r} and warm-up {warmup!r} are not understood ({exc}); "
+            "use durations such as 7D or 6h"
         ) from None
-    if not (tb > ta and size_td > pd.Timedelta(0) and back_td >= pd.Timedelta(0)):
+    if not (b > a and size_td > pd.Timedelta(0) and back_td >= pd.Timedelta(0)):
         raise ConfigError("backfill needs start < end, a positive chunk and warm-up >= 0")
-    edges = [ta]
-    while edges[-1] + size_td < tb:
+    zones = [t.tz for t in (pd.Timestamp(start), pd.Timestamp(end)) if t.tz is not None]
+
+    def text(instant: pd.Timestamp) -> str:
+        shown = instant.tz_convert(zones[0]) if zones else instant.tz_localize(None)
+        return shown.isoformat()
+
+    edges = [a]
+    while edges[-1] + size_td < b:
         edges.append(edges[-1] + size_td)
-    edges.append(tb)
-    chunks = [(edges[i].isoformat(), edges[i + 1].isoformat()) for i in range(len(edges) - 1)]
-    return chunks, (ta - back_td).isoformat()
+    edges.append(b)
+    chunks = [(text(edges[i]), text(edges[i + 1])) for i in range(len(edges) - 1)]
+    return chunks, text(a - back_td)
 
 
 def _write_report(logger, db: str, spec, report_dir: str, run_id: str) -> None:

@@ -69,6 +69,8 @@ EXIT_INTERRUPTED = 130
 
 OPTION_NAMES = {
     "critical": "--critical",
+    "periods": "--season",
+    "window": "--window",
     "min_points": "--min-points",
     "workers": "--workers",
     "wait_seconds": "--wait",

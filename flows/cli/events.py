@@ -11,7 +11,7 @@ import typer
 
 from changekind.flows.cli.app import app, fail_usage, out_console, usage_errors
 from changekind.flows.cli.config import database_url, require_tables
-from changekind.flows.cli.options import DbOpt, SeriesOpt
+from changekind.flows.cli.options import DbOpt, SeriesOpt, SinceOpt
 from changekind.flows.cli.output import TABLE_ROWS, event_csv, event_json_records, events_table
 from changekind.tasks import persist
 from changekind.tasks.errors import ConfigError
@@ -20,15 +20,7 @@ from changekind.tasks.errors import ConfigError
 @app.command()
 def events(
     db: DbOpt = None,
-    since: Annotated[
-        str | None,
-        typer.Option(
-            "--since",
-            metavar="T",
-            help="Only events at or after this time (ISO 8601; naive times are UTC).",
-            show_default=False,
-        ),
-    ] = None,
+    since: SinceOpt = None,
     series: SeriesOpt = None,
     as_json: Annotated[
         bool,

@@ -15,7 +15,7 @@ from rich.table import Table
 
 from changekind.flows.cli.app import err_console
 from changekind.tasks.persist import EVENT_COLUMNS, EVENT_EXTRA_COLUMNS
-from changekind.tasks.types import DetectionResult, Event
+from changekind.tasks.types import DetectionResult, Event, number
 
 if TYPE_CHECKING:
     from changekind.flows.cli.detect import SeriesOutcome
@@ -62,12 +62,6 @@ def top_weights(event: Event, *, k: int = 3, floor: float = 0.01) -> str:
     return " · ".join(shown) or "-"
 
 
-def number_text(value: float | None, fmt: str) -> str:
-    if value is None or (isinstance(value, float) and not math.isfinite(value)):
-        return "-"
-    return format(value, fmt)
-
-
 def series_table(result: DetectionResult) -> Table:
     """A readable table of one series' events."""
     table = Table(
@@ -91,9 +85,9 @@ def series_table(result: DetectionResult) -> Table:
         table.add_row(
             event.event_time,
             event.event_type,
-            number_text(event.effect, "+.4g"),
-            number_text(event.effect_pct, "+.1f"),
-            number_text(event.t_stat, "+.2f"),
+            number(event.effect, "+.4g"),
+            number(event.effect_pct, "+.1f"),
+            number(event.t_stat, "+.2f"),
             top_weights(event),
             event.status,
             event.half_life or "-",
@@ -187,9 +181,9 @@ def print_summary(console: Console, summary: RunSummary, *, wall: float | None =
                 e.series_id,
                 e.event_time,
                 e.event_type,
-                number_text(e.effect, "+.4g"),
-                number_text(e.effect_pct, "+.1f"),
-                number_text(e.t_stat, "+.2f"),
+                number(e.effect, "+.4g"),
+                number(e.effect_pct, "+.1f"),
+                number(e.t_stat, "+.2f"),
                 e.status,
             )
         console.print(table)
@@ -278,9 +272,9 @@ def events_table(frame: pd.DataFrame, *, title: str) -> Table:
             row.series_id,
             row.event_time,
             row.event_type,
-            number_text(row.effect, "+.4g"),
-            number_text(row.effect_pct, "+.1f"),
-            number_text(row.t_stat, "+.2f"),
+            number(row.effect, "+.4g"),
+            number(row.effect_pct, "+.1f"),
+            number(row.t_stat, "+.2f"),
             _weights_text(row.type_weights),
             row.status,
             row.triage_state or "-",

@@ -23,7 +23,7 @@ import sqlalchemy as sa
 from sqlalchemy.exc import DBAPIError
 
 from changekind.tasks import persist
-from changekind.tasks.errors import ConfigError, ModelError, SeriesError, SourceError
+from changekind.tasks.errors import ConfigError, ModelError, SeriesError, SourceError, mask_url
 from changekind.tasks.fetch import SourceSpec, read_series
 from changekind.tasks.report.files import PICTURE_PATTERN, write_report
 from changekind.tasks.report.order import DEFAULT_SORT, SORT_ORDERS
@@ -41,7 +41,6 @@ from changekind.tasks.window import summarize_windows
 __all__ = [
     "WrittenReport",
     "build_views",
-    "masked_url",
     "read_selected_events",
     "stored_models",
     "unit_of",
@@ -140,7 +139,7 @@ def write_stored_report(
     else:
         hidden = "listed last"
     facts = [
-        ("database", masked_url(db)),
+        ("database", mask_url(db)),
         ("source", spec.describe),
         ("selection", "; ".join(s for s in selection if s) or "all stored events"),
         ("order", SORT_ORDERS[sort].words),
@@ -156,14 +155,6 @@ def write_stored_report(
         problems=tuple(sorted(problems.items())),
         n_hidden=n_hidden,
     )
-
-
-def masked_url(db: str) -> str:
-    """The database URL with its password hidden."""
-    try:
-        return sa.make_url(db).render_as_string(hide_password=True)
-    except Exception:  # an unreadable URL is reported by persist with its own message
-        return db
 
 
 def _check_sqlite_file(db: str) -> None:
@@ -188,7 +179,7 @@ def _read_events(db: str, **selection) -> pd.DataFrame:
     except DBAPIError as exc:
         first = str(getattr(exc, "orig", exc)).splitlines()[0]
         raise SourceError(
-            f"cannot read events from {masked_url(db)} ({first}); is it the database of a "
+            f"cannot read events from {mask_url(db)} ({first}); is it the database of a "
             "changekind scan? run a scan first or give another --db"
         ) from None
 

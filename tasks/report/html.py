@@ -25,8 +25,8 @@ from changekind.tasks.report.style import (
     VERDICT_COLOURS,
 )
 from changekind.tasks.report.views import EventKey, Verdict, event_key
-from changekind.tasks.report.words import describe_event, number, type_name
-from changekind.tasks.types import REPORTED_TYPES, Event
+from changekind.tasks.report.words import describe_event, type_name
+from changekind.tasks.types import REPORTED_TYPES, Event, number
 
 __all__ = ["PAGE_TEMPLATE", "render_report"]
 
