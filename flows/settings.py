@@ -13,6 +13,7 @@ from pydantic import BaseModel, ConfigDict, Field, SecretStr, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
 from changekind.tasks.batch import AnalysisOptions
+from changekind.tasks.critical import CRITICAL_RANGE
 from changekind.tasks.errors import ConfigError
 from changekind.tasks.window import window_text
 
@@ -47,9 +48,9 @@ class RunOptions(BaseModel):
 
     model_config = ConfigDict(frozen=True, extra="forbid")
 
-    # One bound for every command (detect and the fleet runs): above one standard
-    # error (below, every point is an event), at most 100 (|t| of no real event).
-    critical: float | None = Field(default=None, gt=1.0, le=100.0)
+    critical: float | None = Field(
+        default=None, gt=CRITICAL_RANGE[0], le=CRITICAL_RANGE[1]
+    )  # the engine's one range (changekind.tasks.critical.check_critical)
     periods: tuple[int, ...] | None = None
     min_points: int = Field(default=96, ge=24, le=1_000_000)
     context_points: int = Field(default=240, ge=10, le=100_000)

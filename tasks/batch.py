@@ -24,7 +24,6 @@ Per series (``analyse_series_work``, pure):
 
 from __future__ import annotations
 
-import math
 import os
 import time
 from collections.abc import Sequence
@@ -50,7 +49,6 @@ from changekind.tasks.window import (
     summarize_windows,
     windowed_model,
 )
-from changekind.tasks.wrappers import TaskSpec, lazy_task
 
 Mode = Literal["cold", "warm", "unchanged", "deferred", "failed"]
 
@@ -473,7 +471,7 @@ def _needs_refit(
     for e in result.events:
         if e.event_type in ("LS", "VC") and e.status == "confirmed":
             return f"confirmed {e.event_type}"
-    scale = _resid_scale(result.notes)
+    scale = result.resid_scale
     n_new = len(index) - first_new
     if scale is not None and n_new >= 20:
         # n s^2 / sigma^2 ~ chi2(n) without drift (robust s from the new points).
@@ -580,14 +578,6 @@ def _last_observed(values: np.ndarray) -> int:
     return int(ok[-1]) if ok.size else values.size - 1
 
 
-def _resid_scale(notes: Sequence[str]) -> float | None:
-    for note in notes:
-        if note.startswith("resid_scale="):
-            value = float(note.split("=", 1)[1])
-            return value if math.isfinite(value) else None
-    return None
-
-
 def start_worker() -> int:
     """Do nothing but load this module (and so the engine) where the task runs.
 
@@ -596,16 +586,3 @@ def start_worker() -> int:
     instead of delaying the first batch.  Returns the worker's process id.
     """
     return os.getpid()
-
-
-_TASKS: dict[str, TaskSpec] = {
-    "start_worker_task": (start_worker, {"name": "start-worker"}),
-    "run_batch_task": (
-        run_batch,
-        {"name": "analyse-batch", "retries": 2, "retry_delay_seconds": [2, 5]},
-    ),
-}
-
-
-def __getattr__(name: str):
-    return lazy_task(__name__, name, _TASKS)

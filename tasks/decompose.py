@@ -29,7 +29,6 @@ from changekind.tasks.errors import (
     TooShortError,
 )
 from changekind.tasks.types import Decomposition, RegularSeries, StampLabels
-from changekind.tasks.wrappers import TaskSpec, lazy_task
 
 MIN_POINTS = 24
 """Fewest observed points the engine analyses (an ARIMA with a few terms and a
@@ -90,6 +89,11 @@ def regularize(series_id: str, timestamps, values) -> RegularSeries:
     goes to its nearest grid slot; observations that share a slot are resolved
     by their median (the first one's timestamp text is kept).
     6. Slots with no observation are missing values.
+
+    Business-day data (daily, with almost no observation on Saturdays and
+    Sundays) is put on a grid of weekdays (``business_days=True``): a
+    calendar-day grid would be 2/7 missing and carry a spurious weekly cycle.
+    Holidays stay gaps.
     """
     # Step 1: values.
     if len(values) != len(timestamps):
@@ -129,6 +133,7 @@ def regularize(series_id: str, timestamps, values) -> RegularSeries:
     ticks = stamps.view("i8").astype(float) if is_time else stamps.astype(np.float64)
 
     # Step 4: spacing.
+    business = False
     distinct = np.unique(ticks)
     if distinct.size < 2:
         raise TimestampError(series_id, "needs at least two distinct timestamps to infer a spacing")
@@ -143,8 +148,13 @@ def regularize(series_id: str, timestamps, values) -> RegularSeries:
         step = _nice_step(step, is_time)
         if step <= 0:
             raise TimestampError(series_id, "timestamps have no positive spacing")
-        # Step 5: snap each timestamp to its nearest grid slot.
-        slot = np.rint((ticks - ticks[0]) / step).astype(np.int64)
+        # Step 5: snap each timestamp to its nearest grid slot (business-day
+        # data: its slot among the weekdays, so weekends are no gaps).
+        business = is_time and step == _DAY_NS and _business_days(stamps)
+        if business:
+            slot = _business_slots(stamps)
+        else:
+            slot = np.rint((ticks - ticks[0]) / step).astype(np.int64)
     size = int(slot[-1]) + 1
     if size > MAX_GRID_RATIO * max(distinct.size, 1) and size > 10_000:
         raise TimestampError(
@@ -184,6 +194,10 @@ def regularize(series_id: str, timestamps, values) -> RegularSeries:
         if months:
             start = start.normalize().replace(day=1)
             index: pd.Index = pd.date_range(start, periods=size, freq=pd.DateOffset(months=months))
+        elif business:
+            first_day = stamps[0].astype("datetime64[D]")
+            days = np.busday_offset(first_day, np.arange(size), roll="forward")
+            index = pd.DatetimeIndex(days.astype("datetime64[ns]") + (stamps[0] - first_day))
         else:
             index = pd.DatetimeIndex(start + delta * np.arange(size))
         if tz is not None:
@@ -193,9 +207,33 @@ def regularize(series_id: str, timestamps, values) -> RegularSeries:
         index = pd.Index(float(stamps[0]) + step * np.arange(size))
         step_value = step
 
-    series = RegularSeries(series_id, index, grid, step_value, grid_labels, n_duplicates)
+    series = RegularSeries(
+        series_id, index, grid, step_value, grid_labels, n_duplicates, business_days=business
+    )
     check_series(series)
     return series
+
+
+_DAY_NS = 86_400e9
+
+WEEKEND_SHARE = 0.02
+"""Largest share of observations on Saturdays and Sundays for daily data to be
+taken as business-day data (our own threshold)."""
+
+
+def _business_days(stamps: np.ndarray) -> bool:
+    """Daily stamps with (almost) no weekend observation, over at least three weeks."""
+    days = stamps.astype("datetime64[D]")
+    if days.size < 15 or (days[-1] - days[0]).astype(int) < 21:
+        return False
+    weekend = ~np.is_busday(days)
+    return float(weekend.mean()) <= WEEKEND_SHARE
+
+
+def _business_slots(stamps: np.ndarray) -> np.ndarray:
+    """Weekday index of each stamp from the first (a weekend stamp joins the next Monday)."""
+    days = stamps.astype("datetime64[D]")
+    return np.busday_count(days[0], days).astype(np.int64)
 
 
 def check_series(series: RegularSeries) -> None:
@@ -214,6 +252,10 @@ def check_series(series: RegularSeries) -> None:
             series.series_id,
             f"every observed value equals {observed[0]:g}; a constant series has nothing to detect",
         )
+
+
+BUSINESS_PERIODS = (5, 261)
+"""Week and year of a business-day grid (261 weekdays a year on average)."""
 
 
 def natural_periods(step_seconds: float) -> tuple[int, ...]:
@@ -278,7 +320,8 @@ def decompose(
     """
     n = series.nobs
     if periods is None:
-        candidates = [p for p in natural_periods(series.step_seconds) if n >= MIN_CYCLES_AUTO * p]
+        natural = BUSINESS_PERIODS if series.business_days else natural_periods(series.step_seconds)
+        candidates = [p for p in natural if n >= MIN_CYCLES_AUTO * p]
         automatic = True
     else:
         candidates = [int(p) for p in periods]
@@ -491,13 +534,3 @@ def _parse_timestamps(series_id: str, timestamps) -> tuple[np.ndarray, list[str]
         parsed = parsed.dt.tz_convert("UTC").dt.tz_localize(None)
     stamps = parsed.to_numpy(dtype="datetime64[ns]")
     return stamps, labels, tz
-
-
-_TASKS: dict[str, TaskSpec] = {
-    "regularize_task": (regularize, {"name": "regularize"}),
-    "decompose_task": (decompose, {"name": "decompose"}),
-}
-
-
-def __getattr__(name: str):
-    return lazy_task(__name__, name, _TASKS)

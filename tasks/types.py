@@ -114,6 +114,7 @@ class RegularSeries:
     step: pd.Timedelta | float
     labels: Sequence[str | None]
     n_duplicates: int = 0
+    business_days: bool = False
 
     @property
     def nobs(self) -> int:
@@ -152,6 +153,7 @@ class RegularSeries:
             self.step,
             self.labels[-n:],
             0,
+            self.business_days,
         )
 
 
@@ -179,6 +181,25 @@ class Decomposition:
         """Add the seasonal part back to ``adjusted`` (default: the decomposition's own)."""
         base = self.adjusted if adjusted is None else np.asarray(adjusted, dtype=float)
         return base + self.seasonal
+
+
+@dataclass(frozen=True, slots=True)
+class ResidualTail:
+    """How heavy the tails of a model's standardized residuals are.
+
+    ``df`` and ``scale`` of a Student t fitted (location 0) to the residuals
+    divided by the engine's robust sigma; ``df`` is ``inf`` for Gaussian
+    tails.  ``method`` names the estimator (see changekind.tasks.critical).
+    """
+
+    df: float
+    scale: float
+    nobs: int
+    method: str = "student-t mle"
+
+    @property
+    def gaussian(self) -> bool:
+        return not math.isfinite(self.df)
 
 
 @dataclass(frozen=True, slots=True)
@@ -216,6 +237,8 @@ class FittedModel:
     fingerprint: str | None = None
     window: str | None = None
     spread: FittedModel | None = None
+    business_days: bool = False
+    tail: ResidualTail | None = None
 
     @property
     def param_dict(self) -> dict[str, float]:
@@ -280,6 +303,8 @@ class FittedModel:
                 fingerprint=data.get("fingerprint"),
                 window=data.get("window"),
                 spread=None if data.get("spread") is None else cls.from_dict(data["spread"]),
+                business_days=bool(data.get("business_days", False)),
+                tail=None if data.get("tail") is None else ResidualTail(**data["tail"]),
             )
         except (KeyError, TypeError, ValueError) as exc:
             raise ModelError(
@@ -322,6 +347,9 @@ class Event:
     model: str
     window_start: str | None = None
     window_end: str | None = None
+    effect_sigma: float | None = None
+    """The effect in noise sigma (|omega| / sigma of the model).  Not yet part of
+    :meth:`to_record` (the stored columns): persistence adds it."""
 
     @property
     def weights(self) -> dict[str, float]:
@@ -372,3 +400,9 @@ class DetectionResult:
     n_iter: int
     patterns: tuple[Pattern, ...] = ()
     notes: tuple[str, ...] = field(default=())
+    n_fits: int = 0
+    """Exact likelihood fits made (each a state-space maximum-likelihood estimate)."""
+    resid_scale: float | None = None
+    """Warm screen: robust scale of the new points' residuals over the model's sigma."""
+    budget_spent: bool = False
+    """The work budget ran out: the engine kept what it had (the notes say where)."""

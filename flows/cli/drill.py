@@ -75,14 +75,17 @@ def _points_table(rows: pd.DataFrame) -> Table:
     table.add_column("time", justify="left", no_wrap=True)
     table.add_column("value", justify="right")
     table.add_column("window", justify="right")
-    for stamp, value, offset in zip(
-        rows["timestamp"], rows["value"], rows["window_offset"], strict=True
+    table.add_column("extreme", justify="center")
+    extreme = rows["extreme"] if "extreme" in rows else [False] * len(rows)
+    for stamp, value, offset, far in zip(
+        rows["timestamp"], rows["value"], rows["window_offset"], extreme, strict=True
     ):
         when = stamp.isoformat() if hasattr(stamp, "isoformat") else str(stamp)
         table.add_row(
             when,
             _point(float(value)),
             f"{int(offset):+d}" if offset else "0",
+            "yes" if far else "",
             style="bold" if offset == 0 else None,
         )
     return table

@@ -1,6 +1,6 @@
 """The fitted effect of an event on its series, and how far it reaches.
 
-The shapes are the engine's (:func:`changekind.tasks.detect.series_shape`):
+The shapes are the engine's (:data:`changekind.tasks.effects.EFFECTS`):
 a pulse for an AO, a step for an LS, a fading jump omega delta^k for a TC and
 the shock carried through the model's psi weights for an IO.  A variance
 change (windowed mode) is drawn as a step in the window spreads.
@@ -13,7 +13,7 @@ from typing import Any
 
 import numpy as np
 
-from changekind.tasks.detect import series_shape
+from changekind.tasks.effects import EFFECTS
 from changekind.tasks.fit import psi_weights
 from changekind.tasks.report.axis import event_tick, grid_offsets, grid_step, read_axis
 from changekind.tasks.types import Event, FittedModel
@@ -40,7 +40,7 @@ def unit_path(event: Event, length: int, model: FittedModel | None = None) -> np
             kind = "AO"
         else:
             psi = psi_weights(model, length)
-    return series_shape(kind, length, delta=event.decay, psi=psi)
+    return EFFECTS[kind].path(length, delta=event.decay, psi=psi)
 
 
 def effect_reach(event: Event, model: FittedModel | None = None, *, horizon: int) -> int | None:

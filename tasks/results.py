@@ -1,0 +1,67 @@
+"""Events as reported: the search's candidates in the series' own units and times."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from changekind.tasks.effects import EFFECTS, SEARCHED
+from changekind.tasks.search import Candidate
+from changekind.tasks.types import Event, FittedModel, RegularSeries, format_duration, round_sig
+
+SETTLE = 8
+"""An event with fewer observations after it than this (or than two decay
+half-lives of a TC) is provisional: the types still look alike there."""
+
+
+def to_event(
+    series: RegularSeries,
+    model: FittedModel,
+    c: Candidate,
+    weights: dict[str, float],
+    refined_delta: float | None,
+) -> Event:
+    n = series.nobs
+    delta = c.delta if c.delta is not None else refined_delta
+    after = n - 1 - c.position
+    decays = EFFECTS[c.kind].decays
+    half_steps = math.log(0.5) / math.log(delta) if decays and delta else None
+    settle = max(SETTLE, 2 * half_steps if half_steps else 0)
+    level = _local_level(series.values, c.position)
+    pct = 100.0 * c.omega / level if abs(level) > 1e-9 * (1 + abs(c.omega)) else None
+    effect, t_stat = round_sig(c.omega), round_sig(c.t)
+    return Event(
+        series_id=series.series_id,
+        position=c.position,
+        event_time=series.label(c.position),
+        event_type=c.kind,  # type: ignore[arg-type]
+        effect=effect,
+        effect_pct=None if pct is None else round_sig(pct),
+        t_stat=t_stat,
+        se=round_sig(abs(effect / t_stat)) if t_stat else float("nan"),
+        type_weights=tuple((k, round(weights[k], 4)) for k in SEARCHED),
+        status="provisional" if after < settle else "confirmed",
+        decay=round(delta, 4) if decays and delta is not None else None,
+        half_life=_half_life(series, half_steps),
+        level=round_sig(level),
+        model=model.spec(),
+        effect_sigma=round_sig(abs(c.omega) / model.sigma) if model.sigma2 > 0 else None,
+    )
+
+
+def _local_level(values: np.ndarray, T: int, window: int = 24) -> float:
+    before = values[max(0, T - window) : T]
+    before = before[~np.isnan(before)]
+    if before.size == 0:
+        after = values[T + 1 : T + 1 + window]
+        before = after[~np.isnan(after)]
+    return float(np.median(before)) if before.size else float("nan")
+
+
+def _half_life(series: RegularSeries, steps: float | None) -> str | None:
+    if steps is None:
+        return None
+    if series.is_datetime:
+        return format_duration(steps * series.step_seconds)
+    return f"{steps * series.step_seconds:.3g} index units"
