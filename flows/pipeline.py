@@ -330,7 +330,8 @@ def execute(
             run_id,
             BatchOutcomes(tuple(outs)),
             before_write=before_write,
-            reach=reach,
+            # This batch's entries only: Prefect walks a task's mappings for futures.
+            reach={o.series_id: reach[o.series_id] for o in outs if o.series_id in reach},
             time_kind=spec.time_kind,
             problems=found,
         )
