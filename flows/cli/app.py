@@ -71,6 +71,8 @@ OPTION_NAMES = {
     "critical": "--critical",
     "false_budget": "--false-budget",
     "min_effect": "--min-effect",
+    "periods": "--season",
+    "window": "--window",
     "min_points": "--min-points",
     "workers": "--workers",
     "wait_seconds": "--wait",

@@ -7,28 +7,21 @@ import sys
 from typing import Annotated
 
 import pandas as pd
+import sqlalchemy as sa
 import typer
 
 from changekind.flows.cli.app import app, fail_usage, out_console, usage_errors
 from changekind.flows.cli.config import database_url, require_tables
-from changekind.flows.cli.options import DbOpt, SeriesOpt
+from changekind.flows.cli.options import DbOpt, SeriesOpt, SinceOpt
 from changekind.flows.cli.output import TABLE_ROWS, event_csv, event_json_records, events_table
-from changekind.tasks import persist
+from changekind.tasks import incident_store, persist
 from changekind.tasks.errors import ConfigError
 
 
 @app.command()
 def events(
     db: DbOpt = None,
-    since: Annotated[
-        str | None,
-        typer.Option(
-            "--since",
-            metavar="T",
-            help="Only events at or after this time (ISO 8601; naive times are UTC).",
-            show_default=False,
-        ),
-    ] = None,
+    since: SinceOpt = None,
     series: SeriesOpt = None,
     as_json: Annotated[
         bool,
@@ -71,11 +64,13 @@ def events(
             series_ids=series or None,
             include_retracted=include_retracted,
         )
+        labels = _series_labels(url)
     frame = sort_events(frame, sort)
     if as_json:
-        sys.stdout.write(json.dumps(event_json_records(frame), indent=2, allow_nan=False) + "\n")
+        records = event_json_records(frame, labels)
+        sys.stdout.write(json.dumps(records, indent=2, allow_nan=False) + "\n")
     elif as_csv:
-        sys.stdout.write(event_csv(frame))
+        sys.stdout.write(event_csv(frame, labels))
     else:
         console = out_console()
         if frame.empty:
@@ -86,7 +81,7 @@ def events(
         if len(shown) < len(frame):
             which = "newest" if sort == "time" else f"largest by {sort}"
             title += f" (the {which} {len(shown)} shown; --json or --csv for all)"
-        console.print(events_table(shown, title=title))
+        console.print(events_table(shown, title=title, labels=labels))
     sys.stdout.flush()
 
 
@@ -106,6 +101,14 @@ def sort_events(frame: pd.DataFrame, key: str) -> pd.DataFrame:
     size = frame[_SORT_COLUMNS[key]].abs()
     order = size.sort_values(ascending=False, na_position="last", kind="stable").index
     return frame.loc[order].reset_index(drop=True)
+
+
+def _series_labels(url: str) -> dict[str, dict[str, str | None]]:
+    """The series' attributes (none in a database from before them: its next run adds them)."""
+    try:
+        return incident_store.read_labels(url)
+    except sa.exc.DBAPIError:
+        return {}
 
 
 def _stored_time(url: str, series_id: str, event_time: str) -> str:

@@ -15,7 +15,7 @@ from rich.table import Table
 
 from changekind.flows.cli.app import err_console
 from changekind.tasks.persist import EVENT_COLUMNS, EVENT_EXTRA_COLUMNS
-from changekind.tasks.types import DetectionResult, Event
+from changekind.tasks.types import DetectionResult, Event, number
 
 if TYPE_CHECKING:
     from changekind.flows.cli.detect import SeriesOutcome
@@ -62,12 +62,6 @@ def top_weights(event: Event, *, k: int = 3, floor: float = 0.01) -> str:
     return " · ".join(shown) or "-"
 
 
-def number_text(value: float | None, fmt: str) -> str:
-    if value is None or (isinstance(value, float) and not math.isfinite(value)):
-        return "-"
-    return format(value, fmt)
-
-
 def series_table(result: DetectionResult) -> Table:
     """A readable table of one series' events."""
     table = Table(
@@ -91,9 +85,9 @@ def series_table(result: DetectionResult) -> Table:
         table.add_row(
             event.event_time,
             event.event_type,
-            number_text(event.effect, "+.4g"),
-            number_text(event.effect_pct, "+.1f"),
-            number_text(event.t_stat, "+.2f"),
+            number(event.effect, "+.4g"),
+            number(event.effect_pct, "+.1f"),
+            number(event.t_stat, "+.2f"),
             top_weights(event),
             event.status,
             event.half_life or "-",
@@ -153,6 +147,9 @@ def summary_record(summary: RunSummary) -> dict[str, Any]:
             "notes": list(summary.notes),
             "refits": dict(summary.refits),
             "refits_deferred": summary.refits_deferred,
+            "incidents": dict(summary.incidents),
+            "notified": summary.notified,
+            "labelled": summary.labelled,
         }
     )
 
@@ -189,9 +186,9 @@ def print_summary(console: Console, summary: RunSummary, *, wall: float | None =
                 e.series_id,
                 e.event_time,
                 e.event_type,
-                number_text(e.effect, "+.4g"),
-                number_text(e.effect_pct, "+.1f"),
-                number_text(e.t_stat, "+.2f"),
+                number(e.effect, "+.4g"),
+                number(e.effect_pct, "+.1f"),
+                number(e.t_stat, "+.2f"),
                 e.status,
             )
         console.print(table)
@@ -231,8 +228,14 @@ def report_failures(summary: RunSummary) -> None:
 # --------------------------------------------------------------------------- events, triage
 
 
-def event_json_records(frame: pd.DataFrame) -> list[dict[str, Any]]:
-    """Stored events as records of the ``detect --json`` contract (NaN as null)."""
+def event_json_records(
+    frame: pd.DataFrame, labels: Mapping[str, Mapping[str, str | None]] | None = None
+) -> list[dict[str, Any]]:
+    """Stored events as records of the ``detect --json`` contract (NaN as null).
+
+    With ``labels`` (series id -> {attribute: value}), each record ends with
+    ``labels``: its series' attributes (an empty object when it has none).
+    """
 
     records = []
     for row in frame.loc[:, list(EVENT_COLUMNS)].itertuples(index=False):
@@ -243,14 +246,23 @@ def event_json_records(frame: pd.DataFrame) -> list[dict[str, Any]]:
             elif name == "type_weights":
                 value = {k: float(v) for k, v in value.items()}
             record[name] = value
+        if labels is not None:
+            record["labels"] = dict(labels.get(record["series_id"], {}))
         records.append(finite(record))
     return records
 
 
-def event_csv(frame: pd.DataFrame) -> str:
-    """Stored events as CSV: the contract's columns, then triage and bookkeeping."""
+def event_csv(
+    frame: pd.DataFrame, labels: Mapping[str, Mapping[str, str | None]] | None = None
+) -> str:
+    """Stored events as CSV: the contract's columns, then triage and bookkeeping,
+    then (with ``labels``) ``labels``: the series' attributes as a JSON object."""
 
     out = frame.loc[:, [*EVENT_COLUMNS, *EVENT_EXTRA_COLUMNS]].copy()
+    if labels is not None:
+        out["labels"] = [
+            json.dumps(dict(labels.get(s, {})), sort_keys=True) for s in out["series_id"]
+        ]
     out["type_weights"] = [json.dumps(w, sort_keys=False) for w in out["type_weights"]]
     for name in ("event_ts", "first_seen", "last_seen", "triage_at"):
         out[name] = [None if v is None or v != v else v.isoformat() for v in out[name]]
@@ -264,10 +276,17 @@ def _weights_text(weights: Mapping[str, float], *, k: int = 2, floor: float = 0.
     return " · ".join(f"{t} {w:.2f}" for t, w in ranked[:k] if w >= floor) or "-"
 
 
-def events_table(frame: pd.DataFrame, *, title: str) -> Table:
-    """Stored events in a readable table."""
+def events_table(
+    frame: pd.DataFrame,
+    *,
+    title: str,
+    labels: Mapping[str, Mapping[str, str | None]] | None = None,
+) -> Table:
+    """Stored events in a readable table (with an ``attributes`` column when ``labels``)."""
     table = Table(title=title, title_justify="left")
     texts = ("series", "time", "weights", "status", "triage")
+    if labels:
+        texts = (*texts, "attributes")
     for name in ("series", "time", "type", "effect", "effect %", "t", *texts[2:]):
         table.add_column(
             name,
@@ -280,11 +299,16 @@ def events_table(frame: pd.DataFrame, *, title: str) -> Table:
             row.series_id,
             row.event_time,
             row.event_type,
-            number_text(row.effect, "+.4g"),
-            number_text(row.effect_pct, "+.1f"),
-            number_text(row.t_stat, "+.2f"),
+            number(row.effect, "+.4g"),
+            number(row.effect_pct, "+.1f"),
+            number(row.t_stat, "+.2f"),
             _weights_text(row.type_weights),
             row.status,
             row.triage_state or "-",
+            *(
+                [", ".join(f"{k}={v}" for k, v in sorted(labels.get(row.series_id, {}).items()))]
+                if labels
+                else []
+            ),
         )
     return table

@@ -1,7 +1,7 @@
 """Effects that matter: ``series_events.effect_sigma`` and ``series_events.duration``.
 
 Revision ID: 0006
-Revises: 0004
+Revises: 0005
 Create Date: 2026-12-05 00:00:01
 
 Each event carries its size in the units people decide by: ``effect`` (series
@@ -11,9 +11,6 @@ size), ``duration`` how long a level shift has lasted so far (from the event
 to the last analysed point) or a temporary change lasts (until 5 % of its
 jump remains).  Nullable columns only: existing rows read NULL for them.  The
 views ``events_needing_triage`` and ``open_level_shifts`` gain both columns.
-
-Numbered after the incidents migration (0005) that is merged beside it; this
-branch chains it after 0004 until that merge re-chains it after 0005.
 """
 
 from __future__ import annotations
@@ -24,7 +21,7 @@ import sqlalchemy as sa
 from alembic import op
 
 revision: str = "0006"
-down_revision: str | Sequence[str] | None = "0004"
+down_revision: str | Sequence[str] | None = "0005"
 branch_labels: str | Sequence[str] | None = None
 depends_on: str | Sequence[str] | None = None
 

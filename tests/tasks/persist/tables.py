@@ -20,7 +20,8 @@ from changekind.tasks.persist import (
 from changekind.tasks.types import Event, FittedModel
 
 T0 = datetime(2024, 3, 1, 12, 0, tzinfo=UTC)
-VIEW_NAMES = {"open_level_shifts", "daily_event_counts", "events_needing_triage"}
+VIEWS_0001 = {"open_level_shifts", "daily_event_counts", "events_needing_triage"}
+VIEW_NAMES = VIEWS_0001 | {"open_incidents", "event_labels"}  # 0005
 
 
 # --------------------------------------------------------------------------- fixtures
