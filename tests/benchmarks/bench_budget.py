@@ -68,7 +68,7 @@ def main() -> None:
     print(
         f"fleet: {n} clean + {k} shifted minute series, cold on {HISTORY} points then "
         f"{SCANS} hourly scans of {PER_SCAN}; budget {args.budget:g} per series per 30 days; "
-        f"{wall:.1f} s in all"
+        f"refit share {args.refit_share:g}; {wall:.1f} s in all"
     )
     for name, want in (("gaussian", False), ("heavy t(3)", True)):
         ids = {sid(i) for i in range(n) if heavy[i] == want}
