@@ -8,7 +8,7 @@ import numpy as np
 
 from changekind.tasks.effects import EFFECTS, SEARCHED
 from changekind.tasks.search import Candidate
-from changekind.tasks.types import Event, FittedModel, RegularSeries, format_duration, round_sig
+from changekind.tasks.types import Event, FittedModel, RegularSeries, round_sig
 
 SETTLE = 8
 """An event with fewer observations after it than this (or than two decay
@@ -59,9 +59,8 @@ def _local_level(values: np.ndarray, T: int, window: int = 24) -> float:
     return float(np.median(before)) if before.size else float("nan")
 
 
-def _half_life(series: RegularSeries, steps: float | None) -> str | None:
+def _half_life(series: RegularSeries, steps: float | None) -> float | None:
+    """Seconds (date-time grid) or index units (numeric grid)."""
     if steps is None:
         return None
-    if series.is_datetime:
-        return format_duration(steps * series.step_seconds)
-    return f"{steps * series.step_seconds:.3g} index units"
+    return round_sig(steps * series.step_seconds)

@@ -330,7 +330,9 @@ class Event:
     type_weights: tuple[tuple[str, float], ...]
     status: Status
     decay: float | None
-    half_life: str | None
+    half_life: float | None
+    """Half-life of a decaying effect: seconds on a date-time grid, index units on
+    a numeric one (a number, so tables can sort and sum it); None for other types."""
     level: float
     model: str
     window_start: str | None = None

@@ -11,10 +11,12 @@ interrupted.
 
 from __future__ import annotations
 
+import importlib.metadata
 import logging
 import os
 from collections.abc import Iterator, Mapping
 from contextlib import contextmanager
+from typing import Annotated
 
 import typer
 from pydantic import ValidationError
@@ -40,10 +42,53 @@ app = typer.Typer(
 )
 
 
+_typer_display_type = typer.core.TyperOption.display_type_rich
+
+
+def _display_type(self: typer.core.TyperOption, ctx: typer.Context) -> str | None:
+    """The placeholder after an option in help: none for a flag (``--json``)."""
+    if self.is_flag:
+        return None
+    return _typer_display_type(self, ctx)
+
+
+# Typer's help prints a type placeholder after every parameter, ``<bool>`` after
+# flags that take no value and ``<str>`` after arguments already named by their
+# metavar; changekind's help names each value (URL, PATH, N) and leaves flags bare.
+typer.core.TyperOption.display_type_rich = _display_type  # type: ignore[method-assign]
+typer.core.TyperArgument.display_type_rich = lambda self, ctx: None  # type: ignore[method-assign]
+
+
+def _show_version(value: bool) -> None:
+    if value:
+        try:
+            version = importlib.metadata.version("changekind")
+        except importlib.metadata.PackageNotFoundError:  # run from a source tree
+            version = "unknown (not installed)"
+        typer.echo(f"changekind {version}")
+        raise typer.Exit()
+
+
+@app.callback()
+def _main(
+    version: Annotated[
+        bool,
+        typer.Option(
+            "--version",
+            help="Print changekind's version and stop.",
+            callback=_show_version,
+            is_eager=True,
+        ),
+    ] = False,
+) -> None:
+    """Find and classify events (AO, LS, TC, IO) in fleets of metric series."""
+
+
 def out_console() -> Console:
     """Console for results: plain lines are never hard-wrapped (commands stay copyable)."""
     console = Console(highlight=False, soft_wrap=True)
-    if not console.is_terminal:
+    if not console.is_terminal and not os.environ.get("COLUMNS"):
+        # Piped output has no width: wide enough for every column, unless COLUMNS says.
         console = Console(highlight=False, soft_wrap=True, width=120)
     return console
 

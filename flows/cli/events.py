@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import sys
+from datetime import datetime
 from typing import Annotated
 
 import pandas as pd
@@ -11,10 +12,34 @@ import typer
 
 from changekind.flows.cli.app import app, fail_usage, out_console, usage_errors
 from changekind.flows.cli.config import database_url, require_tables
-from changekind.flows.cli.options import DbOpt, SeriesOpt
+from changekind.flows.cli.options import DbOpt
 from changekind.flows.cli.output import TABLE_ROWS, event_csv, event_json_records, events_table
 from changekind.tasks import persist
 from changekind.tasks.errors import ConfigError
+from changekind.tasks.timeaxis import parse_instant
+
+StoredSeriesOpt = Annotated[
+    list[str] | None,
+    typer.Option(
+        "--series",
+        metavar="ID",
+        help="Only this series; repeat for several.  Default: every series with stored events.",
+        show_default=False,
+    ),
+]
+
+
+def _time_bound(value: str | None, option: str) -> datetime | None:
+    """An ISO 8601 bound (naive is UTC); a number or an ambiguous date is refused."""
+    if value is None:
+        return None
+    when = parse_instant(value, what=option)
+    if isinstance(when, float):
+        raise ConfigError(
+            f"{option} {value!r} is a number; stored events are filtered by date-time, so "
+            "give an ISO 8601 time such as 2030-03-05T00:00:00Z"
+        )
+    return when.to_pydatetime(warn=False)
 
 
 @app.command()
@@ -29,17 +54,80 @@ def events(
             show_default=False,
         ),
     ] = None,
-    series: SeriesOpt = None,
+    until: Annotated[
+        str | None,
+        typer.Option(
+            "--until",
+            metavar="T",
+            help="Only events at or before this time (ISO 8601; naive times are UTC).",
+            show_default=False,
+        ),
+    ] = None,
+    series: StoredSeriesOpt = None,
+    event_type: Annotated[
+        list[str] | None,
+        typer.Option(
+            "--type",
+            metavar="TYPE",
+            help="Only this event type (AO, LS, TC, IO, VC); repeat for several.",
+            show_default=False,
+        ),
+    ] = None,
+    status: Annotated[
+        list[str] | None,
+        typer.Option(
+            "--status",
+            metavar="STATUS",
+            help="Only this status (provisional, confirmed, retracted); repeat for several.",
+            show_default=False,
+        ),
+    ] = None,
+    triage_state: Annotated[
+        list[str] | None,
+        typer.Option(
+            "--triage",
+            metavar="STATE",
+            help="Only this verdict (acknowledged, dismissed, explained, or none for events "
+            "nobody has judged); repeat for several.",
+            show_default=False,
+        ),
+    ] = None,
+    min_effect_pct: Annotated[
+        float | None,
+        typer.Option(
+            "--min-effect-pct",
+            metavar="PCT",
+            help="Only events whose effect is at least this many percent of the level, "
+            "either sign (events without a percentage are left out).",
+            show_default=False,
+        ),
+    ] = None,
+    limit: Annotated[
+        int | None,
+        typer.Option(
+            "--limit",
+            metavar="N",
+            help=f"At most N events, the first in the chosen order.  Default: all for --json "
+            f"and --csv, {TABLE_ROWS} in the table.",
+            show_default=False,
+        ),
+    ] = None,
+    oldest_first: Annotated[
+        bool,
+        typer.Option("--oldest-first", help="List the oldest events first."),
+    ] = False,
     as_json: Annotated[
         bool,
         typer.Option(
-            "--json", help="Print only a JSON array of events (the detect --json fields)."
+            "--json",
+            help="Print only a JSON array of events (the detect --json fields).",
         ),
     ] = False,
     as_csv: Annotated[
         bool,
         typer.Option(
-            "--csv", help="Print only CSV: the event fields, then triage and run columns."
+            "--csv",
+            help="Print only CSV: the event fields, then triage and run columns.",
         ),
     ] = False,
     include_retracted: Annotated[
@@ -47,19 +135,32 @@ def events(
         typer.Option("--include-retracted", help="Also list events later scans retracted."),
     ] = False,
 ) -> None:
-    """List the stored events, oldest first."""
+    """List the stored events, newest first."""
     if as_json and as_csv:
         raise fail_usage("give --json or --csv, not both")
+    if limit is not None and limit < 1:
+        raise fail_usage(f"--limit must be at least 1, got {limit}")
     with usage_errors():
+        filters = {
+            "since": _time_bound(since, "--since"),
+            "until": _time_bound(until, "--until"),
+            "series_ids": series or None,
+            "include_retracted": include_retracted,
+            "event_types": event_type or None,
+            "statuses": status or None,
+            "triage": triage_state or None,
+            "min_effect_pct": min_effect_pct,
+        }
         url = database_url(db)
         require_tables(url)
-
+        machine = as_json or as_csv
+        shown_limit = limit if machine else min(limit or TABLE_ROWS, TABLE_ROWS)
         frame = persist.read_events(
-            url,
-            since=since,
-            series_ids=series or None,
-            include_retracted=include_retracted,
+            url, **filters, newest_first=not oldest_first, limit=shown_limit
         )
+        total = None
+        if not machine and len(frame) == shown_limit:
+            total = persist.count_events(url, **filters)
     if as_json:
         sys.stdout.write(json.dumps(event_json_records(frame), indent=2, allow_nan=False) + "\n")
     elif as_csv:
@@ -69,11 +170,11 @@ def events(
         if frame.empty:
             console.print("no events stored (for these filters)", markup=False)
             return
-        shown = frame.tail(TABLE_ROWS)
-        title = f"{len(frame)} events"
-        if len(shown) < len(frame):
-            title += f" (the newest {len(shown)} shown; --json or --csv for all)"
-        console.print(events_table(shown, title=title))
+        order = "oldest" if oldest_first else "newest"
+        title = f"{total if total is not None else len(frame)} events, {order} first"
+        if total is not None and len(frame) < total:
+            title += f" ({len(frame)} shown; --limit, --json or --csv for more)"
+        console.print(events_table(frame, title=title, width=console.width))
     sys.stdout.flush()
 
 

@@ -36,7 +36,7 @@ def report(
         typer.Option(
             "--db",
             metavar="URL",
-            help="Database the scans wrote to.  Default: CHANGEKIND_DB_URL, else "
+            help="Database the scans wrote to.  Default: $CHANGEKIND_DB_URL, else "
             "sqlite:///changekind.db.",
             show_default=False,
         ),
@@ -47,7 +47,7 @@ def report(
             "--source",
             metavar="PATH",
             help="Where the series live (Parquet, CSV or a SQL URL), as given to the scan.  "
-            "Default: CHANGEKIND_SOURCE.",
+            "Default: $CHANGEKIND_SOURCE.",
             show_default=False,
         ),
     ] = None,
@@ -80,25 +80,30 @@ def report(
     ] = None,
     table: Annotated[
         str | None,
-        typer.Option("--table", help="SQL sources: the table to read.", show_default=False),
+        typer.Option(
+            "--table", metavar="T", help="SQL sources: the table to read.", show_default=False
+        ),
     ] = None,
     query: Annotated[
         str | None,
-        typer.Option("--query", help="SQL sources: a SELECT to read.", show_default=False),
+        typer.Option(
+            "--query", metavar="Q", help="SQL sources: a SELECT to read.", show_default=False
+        ),
     ] = None,
     series_column: Annotated[
-        str, typer.Option("--series-column", help="Source column of the series id.")
+        str, typer.Option("--series-column", metavar="C", help="Source column of the series id.")
     ] = "series_id",
     timestamp_column: Annotated[
-        str, typer.Option("--timestamp-column", help="Source column of the timestamp.")
+        str, typer.Option("--timestamp-column", metavar="C", help="Source column of the timestamp.")
     ] = "timestamp",
     value_column: Annotated[
-        str, typer.Option("--value-column", help="Source column of the value.")
+        str, typer.Option("--value-column", metavar="C", help="Source column of the value.")
     ] = "value",
     timestamp_unit: Annotated[
         str | None,
         typer.Option(
             "--timestamp-unit",
+            metavar="UNIT",
             help="Numeric timestamps are epoch times in this unit (s, ms, us, ns).",
             show_default=False,
         ),

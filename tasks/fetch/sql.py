@@ -26,6 +26,7 @@ from changekind.tasks.fetch.values import (
     _is_number,
     _safe_url,
 )
+from changekind.tasks.persist.engines import our_driver
 
 # ---------------------------------------------------------------------------
 # SQL through SQLAlchemy Core
@@ -33,6 +34,7 @@ from changekind.tasks.fetch.values import (
 
 
 def _make_engine(url: sa.URL) -> sa.Engine:
+    url = our_driver(url)
     connect_args: dict[str, Any] = {}
     if url.get_backend_name() == "postgresql":
         connect_args["connect_timeout"] = CONNECT_TIMEOUT_S

@@ -33,7 +33,9 @@ from __future__ import annotations
 
 from changekind.tasks.persist.engines import connect, init_db, migrate, migrations_dir
 from changekind.tasks.persist.events import (
+    TRIAGE_NONE,
     WriteSummary,
+    count_events,
     load_known_events,
     read_events,
     set_triage,
@@ -93,6 +95,7 @@ __all__ = [
     "RUN_KINDS",
     "RUN_STATUSES",
     "SQLITE_BUSY_TIMEOUT_SECONDS",
+    "TRIAGE_NONE",
     "TRIAGE_STATES",
     "VERSION_TABLE",
     "Coverage",
@@ -103,6 +106,7 @@ __all__ = [
     "close_stale_runs",
     "connect",
     "content_snapshot",
+    "count_events",
     "event_revisions",
     "finish_run",
     "init_db",

@@ -97,7 +97,7 @@ series_events = sa.Table(
     sa.Column("type_weights", sa.Text, nullable=False),
     sa.Column("status", sa.Text, nullable=False),
     sa.Column("decay", sa.Float, nullable=True),
-    sa.Column("half_life", sa.Text, nullable=True),
+    sa.Column("half_life", sa.Float, nullable=True),  # seconds, or index units
     sa.Column("level", sa.Float, nullable=False),
     sa.Column("model", sa.Text, nullable=False),
     # Bookkeeping: which run first wrote the row and which last changed it.
@@ -298,4 +298,4 @@ _UPDATED_ON_CHANGE = (
     "last_run_id",
     "last_seen",
 )
-_FLOAT_EVENT_COLUMNS = ("effect", "effect_pct", "t_stat", "se", "decay", "level")
+_FLOAT_EVENT_COLUMNS = ("effect", "effect_pct", "t_stat", "se", "decay", "half_life", "level")

@@ -113,7 +113,7 @@ def event_from_record(record: Mapping[str, Any]) -> Event:
         type_weights=pairs,
         status=record["status"],
         decay=opt(record.get("decay")),
-        half_life=text(record.get("half_life")),
+        half_life=opt(record.get("half_life")),
         level=float(record["level"]),
         model=str(record["model"]),
         window_start=text(record.get("window_start")),
