@@ -6,16 +6,18 @@ Only flows (and the CLI) read configuration; tasks receive plain values.
 from __future__ import annotations
 
 import os
-from typing import Literal
+from typing import TYPE_CHECKING, Literal
 
 import sqlalchemy as sa
 from pydantic import BaseModel, ConfigDict, Field, SecretStr, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
-from changekind.tasks.batch import AnalysisOptions
 from changekind.tasks.critical import CRITICAL_RANGE
 from changekind.tasks.errors import ConfigError
 from changekind.tasks.window import window_text
+
+if TYPE_CHECKING:  # the engine (scipy) is imported by the commands that analyse
+    from changekind.tasks.batch import AnalysisOptions
 
 DEFAULT_DB_URL = "sqlite:///changekind.db"
 Runner = Literal["threads", "processes", "dask"]
@@ -81,6 +83,8 @@ class RunOptions(BaseModel):
         return value
 
     def analysis(self, *, report_from: str | None = None) -> AnalysisOptions:
+        from changekind.tasks.batch import AnalysisOptions  # the engine, for runs only
+
         return AnalysisOptions(
             critical=self.critical,
             periods=self.periods,

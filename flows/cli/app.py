@@ -18,6 +18,7 @@ from collections.abc import Iterator, Mapping
 from contextlib import contextmanager
 from typing import Annotated
 
+import click
 import typer
 from pydantic import ValidationError
 from rich.console import Console
@@ -33,7 +34,51 @@ EXIT_USAGE = 2
 DEBUG_ENV = "CHANGEKIND_DEBUG"
 """Set to 1 to get the traceback of an unexpected error in a series."""
 
+COMMAND_MODULES: dict[str, str] = {
+    "detect": "detect",
+    "scan": "runs",
+    "backfill": "runs",
+    "refit": "runs",
+    "events": "events",
+    "triage": "events",
+    "report": "report",
+    "drill": "drill",
+    "demo": "demo",
+}
+"""Each command and the module of ``changekind.flows.cli`` that defines it."""
+
+
+class LazyCommands(typer.core.TyperGroup):
+    """The command group: a command's module is imported when the command is used.
+
+    ``changekind events`` thus never imports the engine (scipy, statsmodels),
+    the report's drawing (matplotlib) or the flows (Prefect): start-up is what
+    the command itself needs.  ``--help`` lists every command (imports all).
+    """
+
+    def list_commands(self, ctx: click.Context) -> list[str]:
+        return list(dict.fromkeys([*COMMAND_MODULES, *super().list_commands(ctx)]))
+
+    def get_command(self, ctx: click.Context, cmd_name: str) -> click.Command | None:
+        if cmd_name not in self.commands and cmd_name in COMMAND_MODULES:
+            importlib.import_module(f"changekind.flows.cli.{COMMAND_MODULES[cmd_name]}")
+            for info in app.registered_commands:
+                assert info.callback is not None
+                name = info.name or typer.main.get_command_name(info.callback.__name__)
+                if name == cmd_name:
+                    self.add_command(
+                        typer.main.get_command_from_info(
+                            info,
+                            pretty_exceptions_short=app.pretty_exceptions_short,
+                            rich_markup_mode=app.rich_markup_mode,
+                        ),
+                        name,
+                    )
+        return super().get_command(ctx, cmd_name)
+
+
 app = typer.Typer(
+    cls=LazyCommands,
     name="changekind",
     help="Find and classify events (AO, LS, TC, IO) in fleets of metric series.",
     no_args_is_help=True,

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import csv
+import functools
 import io
 import json
 import math
@@ -12,6 +13,7 @@ from typing import TYPE_CHECKING, Any, Literal
 
 import pandas as pd
 from rich import box
+from rich.cells import cell_len
 from rich.console import Console
 from rich.measure import Measurement
 from rich.table import Table
@@ -108,10 +110,25 @@ def _build(
 _MEASURE = Console(width=10_000)
 
 
+@functools.cache
+def _overhead(n_columns: int) -> int:
+    """Characters a table of ``n_columns`` adds to its cells (padding, rules), measured once."""
+    table = _build([Column("x")] * n_columns, [["x"] * n_columns], None)
+    return Measurement.get(_MEASURE, _MEASURE.options, table).maximum - n_columns
+
+
 def _width(columns: Sequence[Column], rows: Sequence[Sequence[str]], id_width: int | None) -> int:
     """Characters the table's columns need (titles and captions wrap, so they do not count)."""
-    table = _build(columns, rows, id_width)
-    return Measurement.get(_MEASURE, _MEASURE.options, table).maximum
+    total = _overhead(len(columns))
+    for i, column in enumerate(columns):
+        widest = cell_len(column.name)
+        for row in rows:
+            text = row[i]
+            if column.shorten and id_width is not None and len(text) > id_width:
+                text = shorten_middle(text, id_width)
+            widest = max(widest, cell_len(text))
+        total += widest
+    return total
 
 
 def fitted_table(
