@@ -63,3 +63,14 @@ SELECT series_id, event_time, event_ts, event_type, effect, effect_pct, t_stat,
        level, model, first_seen, last_seen, last_run_id
 FROM series_events
 WHERE status = 'confirmed' AND triage_state IS NULL;
+
+
+-- view: events_by_verdict (sqlite, postgresql)
+-- Events that are not retracted, by their current verdict ('none' where nobody
+-- has judged them yet); every verdict given is in the table triage_history.
+CREATE VIEW events_by_verdict AS
+SELECT COALESCE(triage_state, 'none') AS verdict,
+       series_id, event_time, event_ts, event_type, status, effect, effect_pct, t_stat,
+       triage_reason, triage_at, last_seen
+FROM series_events
+WHERE status <> 'retracted';

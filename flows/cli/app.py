@@ -41,6 +41,7 @@ COMMAND_MODULES: dict[str, str] = {
     "refit": "runs",
     "events": "events",
     "triage": "events",
+    "verdicts": "events",
     "report": "report",
     "drill": "drill",
     "demo": "demo",

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import getpass
 import json
 import sys
 from datetime import datetime
@@ -13,7 +14,13 @@ import typer
 from changekind.flows.cli.app import app, fail_usage, out_console, usage_errors
 from changekind.flows.cli.config import database_url, require_tables
 from changekind.flows.cli.options import DbOpt
-from changekind.flows.cli.output import TABLE_ROWS, event_csv, event_json_records, events_table
+from changekind.flows.cli.output import (
+    TABLE_ROWS,
+    event_csv,
+    event_json_records,
+    events_table,
+    verdicts_table,
+)
 from changekind.tasks import persist
 from changekind.tasks.errors import ConfigError
 from changekind.tasks.timeaxis import parse_instant
@@ -246,9 +253,22 @@ def triage(
             show_default=False,
         ),
     ] = None,
+    by: Annotated[
+        str | None,
+        typer.Option(
+            "--by",
+            metavar="NAME",
+            help="Who gives the verdict.  Default: the login name of this session.",
+            show_default=False,
+        ),
+    ] = None,
     db: DbOpt = None,
 ) -> None:
-    """Record a person's verdict on a stored event; later scans keep it."""
+    """Record a person's verdict on a stored event; later scans keep it.
+
+    Every verdict is kept (changekind verdicts SERIES_ID EVENT_TIME lists them):
+    a new one does not erase an earlier one's reason.
+    """
     with usage_errors():
         allowed = (*persist.TRIAGE_STATES, "clear")
         if state not in allowed:
@@ -258,8 +278,50 @@ def triage(
         url = database_url(db)
         require_tables(url)
         stored = _stored_time(url, series_id, event_time)
-        persist.set_triage(url, series_id, stored, None if state == "clear" else state, reason)
+        persist.set_triage(
+            url,
+            series_id,
+            stored,
+            None if state == "clear" else state,
+            reason,
+            by=by if by is not None else _login(),
+        )
     said = "verdict cleared" if state == "clear" else state
     if reason:
         said += f" ({reason})"
     out_console().print(f"{series_id} at {stored}: {said}", markup=False)
+
+
+def _login() -> str | None:
+    try:
+        return getpass.getuser()
+    except (KeyError, OSError):  # no login name in this environment (a container)
+        return None
+
+
+@app.command()
+def verdicts(
+    series_id: Annotated[
+        str, typer.Argument(metavar="SERIES_ID", help="The event's series.", show_default=False)
+    ],
+    event_time: Annotated[
+        str,
+        typer.Argument(
+            metavar="EVENT_TIME",
+            help="The event's time as 'changekind events' prints it.",
+            show_default=False,
+        ),
+    ],
+    db: DbOpt = None,
+) -> None:
+    """List every verdict given to a stored event, oldest first (who, when, state, why)."""
+    with usage_errors():
+        url = database_url(db)
+        require_tables(url)
+        stored = _stored_time(url, series_id, event_time)
+        history = persist.read_triage_history(url, series_id, stored)
+    console = out_console()
+    if history.empty:
+        console.print(f"{series_id} at {stored}: no verdict given yet", markup=False)
+        return
+    console.print(verdicts_table(history, title=f"{series_id} at {stored}", width=console.width))

@@ -467,3 +467,23 @@ def events_table(frame: pd.DataFrame, *, title: str, width: int | None = None) -
         for row in frame.itertuples(index=False)
     ]
     return fitted_table(columns, rows, width=width, title=title)
+
+
+def verdicts_table(history: pd.DataFrame, *, title: str, width: int | None = None) -> Table:
+    """An event's verdicts, oldest first: when (UTC), state, who and why."""
+    columns = (
+        Column("when (UTC)", "left"),
+        Column("state", "left"),
+        Column("by", "left", shorten=True),
+        Column("reason", "left", shorten=True),
+    )
+    rows = [
+        [
+            time_text(row.decided_at.isoformat(), row.decided_at),
+            row.state or "cleared",
+            row.decided_by or "-",
+            row.reason or "-",
+        ]
+        for row in history.itertuples(index=False)
+    ]
+    return fitted_table(columns, rows, width=width, title=title)

@@ -38,6 +38,7 @@ from changekind.tasks.persist.events import (
     count_events,
     load_known_events,
     read_events,
+    read_triage_history,
     set_triage,
     write_events,
 )
@@ -81,6 +82,7 @@ from changekind.tasks.persist.schema import (
     series_failures,
     series_models,
     source_problems,
+    triage_history,
 )
 from changekind.tasks.persist.snapshots import BOOKKEEPING_COLUMNS, content_snapshot, table_snapshot
 
@@ -118,6 +120,7 @@ __all__ = [
     "migrate",
     "migrations_dir",
     "read_events",
+    "read_triage_history",
     "record_failures",
     "record_source_problems",
     "run_locks",
@@ -131,6 +134,7 @@ __all__ = [
     "source_problems",
     "start_run",
     "table_snapshot",
+    "triage_history",
     "update_watermarks",
     "write_batch",
     "write_events",

@@ -40,6 +40,7 @@ from changekind.tasks.persist.schema import (
     TriageState,
     event_revisions,
     series_events,
+    triage_history,
 )
 from changekind.tasks.types import REPORTED_TYPES, Event
 
@@ -546,6 +547,7 @@ def set_triage(
     state: TriageState | None,
     reason: str | None = None,
     *,
+    by: str | None = None,
     at: datetime | None = None,
 ) -> None:
     """Record a person's verdict on an event; scans never overwrite it.
@@ -560,8 +562,16 @@ def set_triage(
         The verdict; None clears it (with its reason and time).
     reason : str, optional
         Free text, e.g. the change ticket that explains a level shift.
+    by : str, optional
+        Who gave the verdict (kept in ``triage_history``).
     at : datetime, optional
         Written to ``triage_at``; now (UTC) by default.
+
+    Notes
+    -----
+    The event's ``triage_*`` columns hold the current verdict; every call also
+    adds a row to ``triage_history`` (a cleared verdict as state NULL), in the
+    same transaction, so earlier verdicts and their reasons are kept.
 
     Raises
     ------
@@ -572,10 +582,13 @@ def set_triage(
         _one_of(state, TRIAGE_STATES, "triage state")
     if reason is not None and not isinstance(reason, str):
         raise ConfigError(f"triage reason must be a text, got {reason!r}")
+    if by is not None and not isinstance(by, str):
+        raise ConfigError(f"who gave the verdict must be a text, got {by!r}")
+    when = _now(at)
     values = (
         {"triage_state": None, "triage_reason": None, "triage_at": None}
         if state is None
-        else {"triage_state": state, "triage_reason": reason, "triage_at": _now(at)}
+        else {"triage_state": state, "triage_reason": reason, "triage_at": when}
     )
     with _engine(db) as engine, engine.begin() as conn:
         result = conn.execute(
@@ -588,3 +601,42 @@ def set_triage(
                 f"no stored event for series {series_id!r} at {event_time!r}; list the "
                 "stored events (with their event_time as stored) and pick one of them"
             )
+        conn.execute(
+            sa.insert(triage_history).values(
+                series_id=series_id,
+                event_time=event_time,
+                state=state,
+                reason=reason,
+                decided_by=by,
+                decided_at=when,
+            )
+        )
+
+
+def read_triage_history(db: Database, series_id: str, event_time: str) -> pd.DataFrame:
+    """Every verdict given to one event, oldest first.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Columns ``state`` (None: cleared), ``reason``, ``decided_by`` and
+        ``decided_at`` (``datetime64[ns, UTC]``).
+    """
+    c = triage_history.c
+    query = (
+        sa.select(c.state, c.reason, c.decided_by, c.decided_at)
+        .where(c.series_id == series_id, c.event_time == event_time)
+        .order_by(c.decided_at, c.verdict_id)
+    )
+    with _engine(db) as engine, engine.connect() as conn:
+        rows = [dict(r) for r in conn.execute(query).mappings()]
+    frame = pd.DataFrame(
+        {
+            name: pd.Series([r[name] for r in rows], dtype=object)
+            for name in ("state", "reason", "decided_by")
+        }
+    )
+    frame["decided_at"] = pd.to_datetime(
+        pd.Series([r["decided_at"] for r in rows], dtype=object), utc=True
+    ).astype("datetime64[ns, UTC]")
+    return frame

@@ -149,6 +149,28 @@ event_revisions = sa.Table(
 )
 """Every change of an event: one row per write that changed it."""
 
+triage_history = sa.Table(
+    "triage_history",
+    metadata,
+    sa.Column("verdict_id", sa.Integer, primary_key=True, autoincrement=True),
+    sa.Column("series_id", sa.Text, nullable=False),
+    sa.Column("event_time", sa.Text, nullable=False),
+    sa.Column("state", sa.Text, nullable=True),
+    sa.Column("reason", sa.Text, nullable=True),
+    sa.Column("decided_by", sa.Text, nullable=True),
+    sa.Column("decided_at", UtcDateTime, nullable=False),
+    sa.ForeignKeyConstraint(
+        ["series_id", "event_time"],
+        ["series_events.series_id", "series_events.event_time"],
+        ondelete="CASCADE",
+    ),
+    sa.CheckConstraint("state IS NULL OR " + _in("state", TRIAGE_STATES), name="state"),
+    sa.Index("ix_triage_history_event", "series_id", "event_time"),
+)
+"""Every verdict a person gave an event, oldest first: who, when, which state
+(NULL: the verdict was cleared) and why.  ``series_events.triage_*`` holds the
+current one; a new verdict adds a row here and never erases an earlier reason."""
+
 series_models = sa.Table(
     "series_models",
     metadata,

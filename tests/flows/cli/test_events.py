@@ -230,3 +230,30 @@ def test_read_only_commands_do_not_import_prefect(db, tmp_path, command):
     exit_code, imported, stderr = done.stdout.strip().split(" ", 2)
     assert exit_code == "0", stderr
     assert imported == "False"
+
+
+def test_triage_keeps_every_verdict_and_verdicts_lists_them(db):
+    key = ["disk-queue", _time(0)]
+    first = _invoke(
+        "triage", *key, "explained", "--reason", "change 4411", "--by", "ana", "--db", db
+    )
+    assert first.exit_code == 0, first.stderr
+    second = _invoke(
+        "triage", *key, "dismissed", "--reason", "sensor swap", "--by", "raj", "--db", db
+    )
+    assert second.exit_code == 0, second.stderr
+    history = persist.read_triage_history(db, *key)
+    assert history["reason"].tolist() == ["change 4411", "sensor swap"]
+    shown = _invoke("verdicts", *key, "--db", db, env={"COLUMNS": "80"})
+    assert shown.exit_code == 0, shown.stderr
+    lines = shown.stdout.splitlines()
+    explained = next(line for line in lines if "explained" in line)
+    dismissed = next(line for line in lines if "dismissed" in line)
+    assert "ana" in explained and "change 4411" in explained
+    assert "raj" in dismissed and "sensor swap" in dismissed
+    assert lines.index(explained) < lines.index(dismissed)  # oldest first
+    # The event's current verdict is the last one.
+    assert _keys(_json("--db", db, "--triage", "dismissed", "--series", "disk-queue")) == [
+        ("disk-queue", _time(5)),
+        ("disk-queue", _time(0)),
+    ]

@@ -26,11 +26,11 @@ from changekind.tasks.persist import (
     metadata,
     migrate,
     migrations_dir,
-    set_triage,
     table_snapshot,
     write_events,
 )
 from tests.tasks.persist.tables import (
+    INITIAL_VIEW_NAMES,
     T0,
     VIEW_NAMES,
     insert_legacy_event,
@@ -101,14 +101,20 @@ def test_migration_0002_keeps_rows_and_admits_variance_changes(url: str) -> None
         # Today's table definition does not apply at 0001: rows written column by column.
         with engine.begin() as conn:
             insert_legacy_event(conn)
-        set_triage(engine, "edge-latency", "2024-03-01T10:00:00Z", "explained", reason="rollout")
+            conn.execute(
+                sa.text(
+                    "UPDATE series_events SET triage_state = 'explained', "
+                    "triage_reason = 'rollout', triage_at = :t"
+                ),
+                {"t": T0},
+            )
         with pytest.raises(sa.exc.IntegrityError), engine.begin() as conn:  # 0001 refuses VC
             insert_legacy_event(conn, "2024-03-02T10:00:00Z", "VC")
         before = table_snapshot(engine)
         migrate(engine, revision="0002")
         assert table_snapshot(engine) == before
         with engine.connect() as conn:
-            assert set(sa.inspect(conn).get_view_names()) == VIEW_NAMES
+            assert set(sa.inspect(conn).get_view_names()) == INITIAL_VIEW_NAMES
             assert conn.execute(sa.text("SELECT COUNT(*) FROM open_level_shifts")).scalar() == 1
         with engine.begin() as conn:
             insert_legacy_event(conn, "2024-03-02T10:00:00Z", "VC")
@@ -183,9 +189,13 @@ def test_downgrade_removes_tables_and_views(url: str) -> None:
 @pytest.mark.parametrize("dialect", ["sqlite", "postgresql"])
 def test_views_sql_is_the_migration_text(dialect: str) -> None:
     migration = load_migration("0001_initial_schema.py")
+    statements = [
+        *migration.view_statements(dialect),
+        load_migration("0007_triage_history.py").VIEW,
+    ]
     expected = {
-        re.search(r"CREATE VIEW (\w+)", sql).group(1): normalized(sql)  # type: ignore[union-attr]
-        for sql in migration.view_statements(dialect)
+        re.search(r"CREATE VIEW (\w+)", sql).group(1): normalized(sql.rstrip(";"))  # type: ignore[union-attr]
+        for sql in statements
     }
     assert {name: normalized(sql) for name, sql in views_sql(dialect).items()} == expected
 
