@@ -96,3 +96,50 @@ def test_migration_0007_copies_existing_verdicts_and_downgrades(url: str) -> Non
         assert state == "dismissed"
     finally:
         engine.dispose()
+
+
+def test_level_shifts_in_force_nets_every_open_shift(engine: sa.Engine) -> None:
+    """Expected rows worked out by hand from the shifts written: a series that
+    shifted -1.4 and later +1.4 is back at its reference level (net 0)."""
+    events = [
+        make_event("flat", "2024-03-01T10:00:00Z", effect=-1.4, level=36.8),
+        make_event("flat", "2024-03-02T10:00:00Z", effect=1.4, level=35.4),
+        make_event("up", "2024-03-01T10:00:00Z", effect=5.0, level=50.0),
+        make_event("up", "2024-03-02T10:00:00Z", effect=2.5, level=55.0),
+        make_event("up", "2024-03-03T10:00:00Z", effect=9.0, level=57.5),  # dismissed below
+        make_event("up", "2024-03-04T10:00:00Z", effect=1.0, level=57.5, status="provisional"),
+        make_event("spike", "2024-03-01T10:00:00Z", "AO", effect=30.0),
+    ]
+    persist.write_events(engine, "run-1", events, at=T0)
+    set_triage(engine, "up", "2024-03-03T10:00:00Z", "dismissed", "sensor swap")
+    with engine.connect() as conn:
+        rows = conn.execute(
+            sa.text(
+                "SELECT series_id, n_shifts, net_effect, net_pct, reference_level, since_time, "
+                "latest_time, latest_effect FROM level_shifts_in_force ORDER BY series_id"
+            )
+        ).all()
+        latest = dict(
+            conn.execute(sa.text("SELECT series_id, effect FROM open_level_shifts")).all()
+        )
+    got = {r[0]: r[1:] for r in rows}
+    assert set(got) == {"flat", "up"}
+    n, net, pct, ref, since, last_time, last_effect = got["flat"]
+    assert (n, since, last_time, last_effect) == (
+        2,
+        "2024-03-01T10:00:00Z",
+        "2024-03-02T10:00:00Z",
+        1.4,
+    )
+    assert abs(net) < 1e-12 and abs(pct) < 1e-10 and ref == 36.8
+    n, net, pct, ref, since, last_time, last_effect = got["up"]
+    assert (n, net, ref, since, last_time, last_effect) == (
+        2,
+        7.5,
+        50.0,
+        "2024-03-01T10:00:00Z",
+        "2024-03-02T10:00:00Z",
+        2.5,
+    )
+    assert abs(pct - 15.0) < 1e-12  # 100 * 7.5 / 50
+    assert latest == {"flat": 1.4, "up": 2.5}  # the latest alone says +1.4 for "flat"
