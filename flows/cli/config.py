@@ -16,7 +16,6 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-import pandas as pd
 import sqlalchemy as sa
 from pydantic import ValidationError
 
@@ -25,6 +24,7 @@ from changekind.flows.settings import RunOptions, Settings, split_password
 from changekind.tasks import persist
 from changekind.tasks.errors import ConfigError
 from changekind.tasks.fetch import open_source
+from changekind.tasks.timeaxis import parse_instant
 from changekind.tasks.window import window_text
 
 RUNNERS: tuple[str, ...] = ("threads", "processes", "dask")
@@ -259,24 +259,15 @@ def check_time(value: str | None, what: str, time_kind: str) -> str | None:
             ) from None
         return value
 
-    bad = False
     try:
         float(value)
-        bad = True
     except ValueError:
-        pass
-    if not bad:
-        try:
-            stamp = pd.Timestamp(value)
-            bad = stamp is pd.NaT
-        except (ValueError, TypeError, OverflowError):
-            bad = True
-    if bad:
-        raise ConfigError(
-            f"{what} {value!r} is not a date-time; give an ISO 8601 time such as "
-            "2026-06-01 or 2026-06-01T12:00:00Z"
-        )
-    return value
+        parse_instant(value, what=what)  # ISO 8601 only: '05/03/2030' is refused
+        return value
+    raise ConfigError(
+        f"{what} {value!r} is not a date-time; give an ISO 8601 time such as "
+        "2026-06-01 or 2026-06-01T12:00:00Z"
+    )
 
 
 def flow_arguments(flow: Any, config: FleetConfig, **extra: Any) -> dict[str, Any]:

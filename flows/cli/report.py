@@ -24,6 +24,7 @@ from changekind.tasks.errors import ChangekindError
 from changekind.tasks.fetch import SourceSpec, open_source
 from changekind.tasks.report import data
 from changekind.tasks.report.data import WrittenReport
+from changekind.tasks.timeaxis import parse_instant
 
 
 def report(
@@ -148,6 +149,8 @@ def report(
             "(or set CHANGEKIND_SOURCE)"
         )
     try:
+        if since is not None:
+            parse_instant(since, what="--since")  # ISO 8601 only: '05/03/2030' is refused
         spec = open_source(
             location,
             columns={

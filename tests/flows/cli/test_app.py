@@ -10,6 +10,7 @@ import sqlalchemy as sa
 from typer.testing import CliRunner
 
 from changekind.flows.cli import app
+from changekind.tasks import persist
 from changekind.tasks.persist.engines import _parse_url, our_driver
 
 
@@ -50,3 +51,24 @@ def test_help_has_no_placeholder_types_and_dollar_environment_names(command):
     assert not re.search(r"<(bool|str|int|float|path)>", text, re.I), text
     assert not re.search(r"(?<![$\w])CHANGEKIND_[A-Z_]+", text), text
     assert "every series in the source" not in text or command != "events"
+
+
+@pytest.mark.parametrize(
+    "args",
+    [
+        ["events", "--since", "05/03/2030"],
+        ["events", "--until", "05/03/2030"],
+        ["report", "--since", "05/03/2030", "--source", "{source}", "--out", "{out}"],
+        ["backfill", "--source", "{source}", "--start", "05/03/2030", "--end", "2030-03-09"],
+    ],
+)
+def test_an_ambiguous_date_is_refused_with_a_clear_message(tmp_path, args):
+    """'05/03/2030' reads as 5 March or 3 May: every command refuses it (ISO 8601 only)."""
+    source = tmp_path / "s.csv"
+    source.write_text("series_id,timestamp,value\na,2030-03-01T00:00:00Z,1.0\n")
+    db = f"sqlite:///{tmp_path / 'x.db'}"
+    persist.init_db(db).dispose()
+    filled = [a.format(source=source, out=tmp_path / "out") for a in args]
+    result = CliRunner().invoke(app, [*filled, "--db", db])
+    assert result.exit_code == 2, result.stdout + result.stderr
+    assert "'05/03/2030'" in result.stderr and "ambiguous" in result.stderr, result.stderr
