@@ -322,7 +322,14 @@ def summary_record(summary: RunSummary) -> dict[str, Any]:
                 {"series_id": sid, "stage": stage, "message": message}
                 for sid, stage, message in summary.failures
             ],
-            "top_events": [e.to_record() for e in summary.top_events],
+            "top_events": [
+                {**e.to_record(), "change": change}
+                for e, change in zip(
+                    summary.top_events,
+                    summary.top_changes or (None,) * len(summary.top_events),
+                    strict=True,
+                )
+            ],
             "timings": dict(summary.timings),
             "source_problems": list(summary.problems),
             "notes": list(summary.notes),
@@ -354,11 +361,20 @@ def print_summary(console: Console, summary: RunSummary, *, wall: float | None =
         markup=False,
     )
     if summary.top_events:
-        table = Table(title="Strongest events of the run", title_justify="left")
-        for name in ("series", "time", "type", "effect", "effect %", "t", "status"):
-            table.add_column(name, justify="left" if name in ("series", "time") else "right")
-        for e in summary.top_events:
-            table.add_row(
+        changes = summary.top_changes or ("",) * len(summary.top_events)
+        columns = (
+            Column("", "left"),
+            Column("series", "left", shorten=True),
+            Column("time", "left"),
+            Column("type", "left"),
+            Column("effect"),
+            Column("effect %", priority=2),
+            Column("t"),
+            Column("status", "left", priority=1),
+        )
+        rows = [
+            [
+                change,
                 e.series_id,
                 e.event_time,
                 e.event_type,
@@ -366,8 +382,18 @@ def print_summary(console: Console, summary: RunSummary, *, wall: float | None =
                 number_text(e.effect_pct, "+.1f"),
                 number_text(e.t_stat, "+.2f"),
                 e.status,
+            ]
+            for e, change in zip(summary.top_events, changes, strict=True)
+        ]
+        console.print(
+            fitted_table(
+                columns,
+                rows,
+                width=console.width,
+                title="Strongest events of the run (new: found by this run; changed: "
+                "type or status changed; seen: stored before, unchanged)",
             )
-        console.print(table)
+        )
     if summary.failures:
         table = Table(title="Series that could not be analysed", title_justify="left")
         for name in ("series", "stage", "reason"):
