@@ -23,7 +23,7 @@ from prefect.artifacts import create_markdown_artifact, create_table_artifact
 
 from changekind.flows.pipeline import RunSummary
 from changekind.tasks import persist
-from changekind.tasks.types import EVENT_NAMES, REPORTED_TYPES, format_duration
+from changekind.tasks.types import EVENT_NAMES, REPORTED_TYPES, format_duration, number
 
 MAX_TABLE_ROWS = 1000
 """Most rows in the events table (strongest first); the description says how many were left out."""
@@ -45,16 +45,6 @@ def _md(text: object) -> str:
     """Text safe inside a markdown table cell: special characters escaped, one line."""
     flat = " ".join(str(text).split())
     return _MD_SPECIAL.sub(r"\\\1", flat)
-
-
-def _num(value: Any, fmt: str) -> str:
-    if value is None:
-        return "-"
-    try:
-        number = float(value)
-    except (TypeError, ValueError):
-        return "-"
-    return format(number, fmt) if math.isfinite(number) else "-"
 
 
 def run_markdown(summary: RunSummary, *, n_table_rows: int | None = None) -> str:
@@ -98,8 +88,8 @@ def run_markdown(summary: RunSummary, *, n_table_rows: int | None = None) -> str
         for e in s.top_events[:MAX_TOP_SHOWN]:
             lines.append(
                 f"| {_md(e.series_id)} | {_md(e.event_time)} | {e.event_type} | "
-                f"{_num(e.effect, '+.4g')} | {_num(e.effect_pct, '+.1f')} | "
-                f"{_num(e.t_stat, '+.2f')} | {e.status} |"
+                f"{number(e.effect, '+.4g')} | {number(e.effect_pct, '+.1f')} | "
+                f"{number(e.t_stat, '+.2f')} | {e.status} |"
             )
     else:
         lines.append("No event in this run.")
@@ -125,7 +115,7 @@ def run_markdown(summary: RunSummary, *, n_table_rows: int | None = None) -> str
 
 
 def _row(values: Mapping[str, Any]) -> dict[str, Any]:
-    def number(x: Any) -> float | None:
+    def as_float(x: Any) -> float | None:
         try:
             f = float(x)
         except (TypeError, ValueError):
@@ -136,9 +126,9 @@ def _row(values: Mapping[str, Any]) -> dict[str, Any]:
         "series": str(values["series_id"]),
         "time": str(values["event_time"]),
         "type": str(values["event_type"]),
-        "effect": number(values["effect"]),
-        "effect_pct": number(values.get("effect_pct")),
-        "t": number(values["t_stat"]),
+        "effect": as_float(values["effect"]),
+        "effect_pct": as_float(values.get("effect_pct")),
+        "t": as_float(values["t_stat"]),
         "status": str(values["status"]),
     }
 

@@ -20,6 +20,13 @@ clean controller           --    nothing
 Effect sizes are 4 to 8 innovation standard deviations of the series they hit.
 Nothing here names or models a real product or company.
 
+Attributes: every series carries ``rack`` (three arrays to a rack: ``rk1`` holds
+``array-01`` .. ``array-03``) and ``firmware``: ``7.2`` everywhere, except that a
+controller of the rollout runs ``7.3`` from its upgrade (its level shift) on.
+:func:`with_labels` adds them to the observations as columns, as a collector
+that tags its rows would; the rollout is then one incident whose members share
+firmware 7.3 (:func:`score_rollout_incident`).
+
 :func:`score_against_truth` compares any set of detected events with a truth
 table of this shape; the fleet flows reuse it.
 """
@@ -53,6 +60,10 @@ DEMO_START = pd.Timestamp("2031-03-03 00:00", tz="UTC")  # a Monday, invented
 
 TRUTH_COLUMNS = ("series_id", "event_time", "event_type", "effect", "note")
 
+LABEL_COLUMNS = ("rack", "firmware")
+"""The attribute columns of the demo's source (``--label-column`` of its runs)."""
+OLD_FIRMWARE, NEW_FIRMWARE = "7.2", "7.3"
+
 DAY_FILE_GLOB = "day-*.parquet"
 """The files :func:`write_day_files` writes (``day-2031-03-03.parquet`` ...)."""
 
@@ -70,11 +81,21 @@ class DemoFleet:
         injected event, ``effect`` being omega in the series' units.
     step : pandas.Timedelta
         The sampling interval.
+    labels : pandas.DataFrame
+        The series' attributes over time: ``series_id, since, rack, firmware``
+        (a row per series and value change; ``since`` the first time it holds).
     """
 
     data: pd.DataFrame
     truth: pd.DataFrame
     step: pd.Timedelta
+    labels: pd.DataFrame = None  # type: ignore[assignment]
+
+    @property
+    def rollout_series(self) -> set[str]:
+        """The series the injected firmware rollout shifted."""
+        notes = self.truth["note"].astype(str)
+        return set(self.truth.loc[notes.str.startswith("firmware"), "series_id"])
 
     @property
     def series_ids(self) -> list[str]:
@@ -92,6 +113,12 @@ class _Process:
 
 def _controller_ids(n: int) -> list[str]:
     return [f"array-{i // 2 + 1:02d}/ctl-{'ab'[i % 2]}" for i in range(n)]
+
+
+def _rack(controller: str) -> str:
+    """Three arrays to a rack: array-01 .. array-03 in rk1."""
+    array = int(controller.split("/")[0].split("-")[1])
+    return f"rk{(array - 1) // 3 + 1}"
 
 
 def _daily_shape(phase: np.ndarray) -> np.ndarray:
@@ -212,7 +239,9 @@ def make_demo_fleet(
 
     frames = []
     truth_rows = []
+    label_rows = []
     for controller, role in zip(controllers, roles, strict=True):
+        upgraded = None
         for metric in METRICS:
             series_id = f"{controller}/{metric}"
             # Step 2: the process and its innovations.
@@ -226,6 +255,7 @@ def make_demo_fleet(
                 night = first_night + (wave // 16) % nights
                 t0 = night * per_day + per_day // 12 + (wave % 16) * max(1, per_day // 48)
                 wave += 1
+                upgraded = stamps[t0]
                 events.append((t0, "LS", f"firmware 7.3 rollout, controller {wave} of the wave"))
             elif role == "cache" and metric == "write-latency-ms":
                 (t0,) = _pick_times(rng, 1, lo=lo, hi=hi, gap=gap)
@@ -260,15 +290,46 @@ def make_demo_fleet(
             frames.append(
                 pd.DataFrame({"series_id": series_id, "timestamp": stamps, "value": values})
             )
+        for metric in METRICS:  # the controller's firmware applies to both its series
+            series_id = f"{controller}/{metric}"
+            label_rows.append((series_id, stamps[0], _rack(controller), OLD_FIRMWARE))
+            if upgraded is not None:
+                label_rows.append((series_id, upgraded, _rack(controller), NEW_FIRMWARE))
 
     data = pd.concat(frames, ignore_index=True)
     truth = pd.DataFrame(truth_rows, columns=list(TRUTH_COLUMNS))
     truth["event_time"] = pd.to_datetime(truth["event_time"], utc=True)
-    return DemoFleet(data=data, truth=truth, step=step_td)
+    labels = pd.DataFrame(label_rows, columns=["series_id", "since", *LABEL_COLUMNS])
+    return DemoFleet(data=data, truth=truth, step=step_td, labels=labels)
+
+
+def with_labels(data: pd.DataFrame, labels: pd.DataFrame) -> pd.DataFrame:
+    """The observations with each row's attributes (the value in force at its time).
+
+    Parameters
+    ----------
+    data : pandas.DataFrame
+        Long form ``series_id, timestamp, value``.
+    labels : pandas.DataFrame
+        ``series_id, since`` and attribute columns (a :class:`DemoFleet`'s labels).
+    """
+    names = [c for c in labels.columns if c not in ("series_id", "since")]
+    left = data.assign(_order=np.arange(len(data))).sort_values("timestamp", kind="stable")
+    right = labels.sort_values("since", kind="stable")
+    merged = pd.merge_asof(
+        left, right, left_on="timestamp", right_on="since", by="series_id", direction="backward"
+    )
+    merged = merged.sort_values("_order", kind="stable").reset_index(drop=True)
+    return merged[[*data.columns, *names]]
 
 
 def write_day_files(
-    data: pd.DataFrame, folder: str | Path, *, first: int = 0, last: int | None = None
+    data: pd.DataFrame,
+    folder: str | Path,
+    *,
+    first: int = 0,
+    last: int | None = None,
+    labels: pd.DataFrame | None = None,
 ) -> list[Path]:
     """Write days ``first <= k < last`` of a fleet as one Parquet file per UTC day.
 
@@ -285,12 +346,17 @@ def write_day_files(
     first, last : int
         Day numbers counted from the first timestamp's day; ``last`` None
         means through the last day.
+    labels : pandas.DataFrame, optional
+        The fleet's attributes over time (:attr:`DemoFleet.labels`), written as
+        columns beside the values (:func:`with_labels`).
 
     Returns
     -------
     list of pathlib.Path
         The files written, in day order.
     """
+    if labels is not None:
+        data = with_labels(data, labels)
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
     stamps = pd.to_datetime(data["timestamp"], utc=True)
@@ -479,4 +545,63 @@ def score_against_truth(
         false_events=len(found) - n_matched,
         per_type=per_type,
         matches=matches,
+    )
+
+
+# --------------------------------------------------------------------------- the rollout incident
+
+
+@dataclass(frozen=True, slots=True)
+class RolloutScore:
+    """How the incidents found compare with the injected firmware rollout.
+
+    ``incident_id`` is the incident holding most of the rollout's series
+    (None when no incident holds any); ``n_rollout`` the series the rollout
+    shifted, ``n_found`` those among its members, ``n_other`` its members
+    outside the rollout; ``shared`` its shared attributes (label -> value);
+    ``other_incidents`` how many other incidents hold rollout series (a
+    rollout split in pieces).
+    """
+
+    incident_id: str | None
+    n_rollout: int
+    n_found: int
+    n_other: int
+    shared: tuple[tuple[str, str], ...]
+    other_incidents: int
+
+    @property
+    def firmware_shared(self) -> bool:
+        return dict(self.shared).get("firmware") == NEW_FIRMWARE
+
+    def words(self) -> str:
+        if self.incident_id is None:
+            return f"the rollout's {self.n_rollout} series form no incident"
+        shared = ", ".join(f"{k}={v}" for k, v in self.shared) or "none found"
+        text = (
+            f"{self.n_found} of the rollout's {self.n_rollout} series in incident "
+            f"{self.incident_id} ({self.n_other} other member(s)); shared attributes: {shared}"
+        )
+        if self.other_incidents:
+            text += f"; {self.other_incidents} other incident(s) hold rollout series"
+        return text
+
+
+def score_rollout_incident(incidents: Sequence, rollout: set[str]) -> RolloutScore:
+    """Compare incidents (``changekind.tasks.incidents.Incident`` values) with the rollout.
+
+    Reference: the injected truth (:attr:`DemoFleet.rollout_series`).
+    """
+    holding = [(len(set(i.series_ids) & rollout), i) for i in incidents]
+    holding = [(k, i) for k, i in holding if k > 0]
+    if not holding:
+        return RolloutScore(None, len(rollout), 0, 0, (), 0)
+    k, best = max(holding, key=lambda h: (h[0], -h[1].n_series, h[1].incident_id))
+    return RolloutScore(
+        incident_id=best.incident_id,
+        n_rollout=len(rollout),
+        n_found=k,
+        n_other=best.n_series - k,
+        shared=tuple(sorted(best.shared_labels.items())),
+        other_incidents=len(holding) - 1,
     )

@@ -70,6 +70,12 @@ class RunSummary:
     """Parts of the source that could not be read (files, rows, cells), in words."""
     notes: tuple[str, ...] = ()
     """What the run did beyond the usual (abandoned runs closed, a span extended)."""
+    incidents: tuple[tuple[str, int], ...] = ()
+    """Incidents the update after the run wrote, by change (new, grown, shrunk, changed, gone)."""
+    notified: int = 0
+    """Prefect events the run emitted (new and grown incidents, newly confirmed events)."""
+    labelled: int = 0
+    """Series whose labels the run read from the source."""
 
 
 def current_run_id() -> str:
@@ -327,7 +333,8 @@ def execute(
             run_id,
             BatchOutcomes(tuple(outs)),
             before_write=before_write,
-            reach=reach,
+            # This batch's entries only: Prefect walks a task's mappings for futures.
+            reach={o.series_id: reach[o.series_id] for o in outs if o.series_id in reach},
             time_kind=spec.time_kind,
             problems=found,
         )

@@ -24,6 +24,7 @@ import pandas as pd
 from prefect import flow, get_run_logger
 
 from changekind.flows.artifacts import publish_run_artifacts
+from changekind.flows.notify import emit_run_events
 from changekind.flows.pipeline import (
     RunSummary,
     current_run_id,
@@ -42,15 +43,19 @@ from changekind.flows.steps import (
     load_coverage_task,
     migrate_task,
     record_source_problems_task,
+    refresh_incidents_task,
     start_run_task,
     stored_state_task,
     take_lock_task,
+    write_labels_task,
     write_report_task,
 )
 from changekind.tasks import persist
 from changekind.tasks.errors import ChangekindError, ConfigError, RunBusyError
 from changekind.tasks.fetch import ColumnMap, SourceProblem, open_source, survey_source
+from changekind.tasks.labels import check_label_columns, read_labels
 from changekind.tasks.runlock import RunLock
+from changekind.tasks.timeaxis import parse_instant
 
 
 def _columns(columns: dict[str, str] | None) -> ColumnMap | None:
@@ -73,6 +78,7 @@ def _run(
     report_from: str | None = None,
     refit: bool = False,
     report_dir: str | None = None,
+    label_columns: Sequence[str] | None = None,
 ) -> RunSummary:
     logger = get_run_logger()
     t0 = time.perf_counter()
@@ -83,6 +89,7 @@ def _run(
 
     migrate_task(db)
     spec = open_source(source, columns=_columns(columns), table=table, query=query)
+    labels = check_label_columns(spec, label_columns)  # a wrong name: nothing is run
     span = (chunks[0][0], chunks[-1][1])
     try:
         lock = RunLock(db, run_id, kind, wait_seconds=options.wait_seconds)
@@ -109,6 +116,7 @@ def _run(
                 report_from=report_from,
                 refit=refit,
                 report_dir=report_dir,
+                labels=labels,
             )
     finally:
         lock.release()
@@ -131,6 +139,7 @@ def _locked_run(
     report_from: str | None,
     refit: bool,
     report_dir: str | None,
+    labels: Sequence[str] = (),
 ) -> RunSummary:
     """The run, once it holds the database (see :mod:`changekind.tasks.runlock`)."""
     starting = start_workers(options.workers)  # worker imports overlap the planning
@@ -157,6 +166,7 @@ def _locked_run(
         record_source_problems_task(db, run_id, problem_rows(problems))
         for problem in problems:
             logger.warning("source: %s", problem.describe())
+    labelled = _store_labels(spec, db, run_id, labels, ids, logger=logger)
     analysis = options.analysis(report_from=report_from)
     outcomes_all = []
     timings: dict[str, float] = {"open": time.perf_counter() - t0}
@@ -240,7 +250,16 @@ def _locked_run(
         problems=tuple(p.describe() for p in dict.fromkeys(problems)),
     )
     notes.extend(summary.notes)
-    summary = replace(summary, notes=tuple(notes))
+    t_incidents = time.perf_counter()
+    incident_changes, notified = _update_incidents(db, run_id, options, logger=logger, notes=notes)
+    summary = replace(
+        summary,
+        notes=tuple(notes),
+        incidents=incident_changes,
+        notified=notified,
+        labelled=labelled,
+        timings=(*summary.timings, ("incidents", time.perf_counter() - t_incidents)),
+    )
     if summary.problems:
         notes.append(
             f"{len(summary.problems)} part(s) of the source could not be read "
@@ -277,6 +296,55 @@ def _locked_run(
         summary.events_retracted,
     )
     return summary
+
+
+def _store_labels(spec, db: str, run_id: str, labels: Sequence[str], ids, *, logger) -> int:
+    """Read the source's label columns (latest value per series) and store them."""
+    if not labels:
+        return 0
+    found = read_labels(spec, labels)
+    wanted = set(ids)
+    frame = found.frame[found.frame["series_id"].isin(wanted)]
+    changed = write_labels_task(db, run_id, frame)
+    logger.info(
+        "labels %s of %d series read; %d value(s) changed",
+        ", ".join(labels),
+        len(frame),
+        changed,
+    )
+    return len(frame)
+
+
+def _update_incidents(
+    db: str, run_id: str, options: RunOptions, *, logger, notes: list[str]
+) -> tuple[tuple[tuple[str, int], ...], int]:
+    """Bring the incidents up to date and announce what is new (never fails the run).
+
+    The update works from the event revisions since the last update, so a
+    failure here leaves the work to the next run.
+    """
+    try:
+        refresh = refresh_incidents_task(db, run_id)
+    except Exception as exc:  # the run's events are written; the next update catches up
+        logger.warning("could not update the incidents (the next run will): %s", exc)
+        notes.append(f"incidents not updated ({exc}); the next run updates them")
+        return (), 0
+    counts = tuple((k, v) for k, v in refresh.counts().items() if v)
+    if counts:
+        notes.append("incidents: " + ", ".join(f"{v} {k}" for k, v in counts))
+    logger.info(
+        "incidents updated in %.2f s: %s",
+        refresh.seconds,
+        ", ".join(f"{v} {k}" for k, v in counts) or "no change",
+    )
+    try:
+        emitted = emit_run_events(
+            refresh, min_effect_pct=options.notify_min_effect_pct, run_id=run_id
+        )
+    except Exception as exc:  # an unreachable event stream must not fail a finished run
+        logger.warning("could not emit the run's Prefect events: %s", exc)
+        return counts, 0
+    return counts, len(emitted)
 
 
 def extend_chunks(
@@ -336,6 +404,7 @@ def scan_flow(
     table: str | None = None,
     query: str | None = None,
     report_dir: str | None = None,
+    label_columns: list[str] | None = None,
 ) -> RunSummary:
     """Hourly fleet scan: new points of every series against its cached model.
 
@@ -343,6 +412,8 @@ def scan_flow(
     ``table`` or ``query`` say what to read when ``source`` is a database URL.
     ``report_dir``: also write the HTML report of the run's new and changed
     events there (a picture each; see ``changekind report``).
+    ``label_columns``: source columns that describe a series (rack,
+    firmware...); their latest values are stored and used by the incidents.
     """
     return _run(
         "scan",
@@ -355,6 +426,7 @@ def scan_flow(
         query=query,
         chunks=((None, until),),
         report_dir=report_dir,
+        label_columns=label_columns,
     )
 
 
@@ -372,6 +444,7 @@ def backfill_flow(
     table: str | None = None,
     query: str | None = None,
     report_dir: str | None = None,
+    label_columns: list[str] | None = None,
 ) -> RunSummary:
     """Analyse the span ``start <= t < end`` in chunks of ``chunk``, resumably.
 
@@ -395,6 +468,7 @@ def backfill_flow(
         cold_start=cold_start,
         report_from=str(start),
         report_dir=report_dir,
+        label_columns=label_columns,
     )
 
 
@@ -407,6 +481,7 @@ def refit_flow(
     series: list[str] | None = None,
     table: str | None = None,
     query: str | None = None,
+    label_columns: list[str] | None = None,
 ) -> RunSummary:
     """Estimate the models of all (or the given) series again on all their history."""
     return _run(
@@ -419,18 +494,33 @@ def refit_flow(
         table=table,
         query=query,
         refit=True,
+        label_columns=label_columns,
     )
 
 
 def split_span(start: str, end: str, chunk: str, warmup: str):
-    """Chunks ``[(s0, e0), ...]`` covering ``start <= t < end``, and the warm-up start."""
-    try:
-        a, b = float(start), float(end)
-        size, back = float(chunk), float(warmup)
-        numeric = True
-    except ValueError:
-        numeric = False
-    if numeric:
+    """Chunks ``[(s0, e0), ...]`` covering ``start <= t < end``, and the warm-up start.
+
+    ``start`` and ``end`` are read by the time axis's rule
+    (:func:`~changekind.tasks.timeaxis.parse_instant`: ISO 8601, a naive time
+    is UTC, or numbers); the chunk edges are written naive when both bounds
+    were, else in the zone of the first aware bound.
+    """
+    a = parse_instant(start, what="backfill start")
+    b = parse_instant(end, what="backfill end")
+    if isinstance(a, float) != isinstance(b, float):
+        raise ConfigError(
+            f"backfill span {start!r}..{end!r} mixes a number and a date-time; give both "
+            "as numbers (numeric timestamps) or both as ISO 8601 times"
+        )
+    if isinstance(a, float) and isinstance(b, float):
+        try:
+            size, back = float(chunk), float(warmup)
+        except ValueError:
+            raise ConfigError(
+                f"chunk {chunk!r} and warm-up {warmup!r} must be numbers for a source with "
+                "numeric timestamps"
+            ) from None
         if not (b > a and size > 0 and back >= 0):
             raise ConfigError("backfill needs start < end, a positive chunk and warm-up >= 0")
         edges = [a]
@@ -439,21 +529,26 @@ def split_span(start: str, end: str, chunk: str, warmup: str):
         edges.append(b)
         return [(edges[i], edges[i + 1]) for i in range(len(edges) - 1)], a - back
     try:
-        ta, tb = pd.Timestamp(start), pd.Timestamp(end)
         size_td, back_td = pd.Timedelta(chunk), pd.Timedelta(warmup)
     except ValueError as exc:
         raise ConfigError(
-            f"backfill span {start!r}..{end!r} with chunk {chunk!r} and warm-up {warmup!r} "
-            f"is not understood ({exc}); use ISO times and durations such as 7D or 6h"
+            f"backfill chunk {chunk!r} and warm-up {warmup!r} are not understood ({exc}); "
+            "use durations such as 7D or 6h"
         ) from None
-    if not (tb > ta and size_td > pd.Timedelta(0) and back_td >= pd.Timedelta(0)):
+    if not (b > a and size_td > pd.Timedelta(0) and back_td >= pd.Timedelta(0)):
         raise ConfigError("backfill needs start < end, a positive chunk and warm-up >= 0")
-    edges = [ta]
-    while edges[-1] + size_td < tb:
+    zones = [t.tz for t in (pd.Timestamp(start), pd.Timestamp(end)) if t.tz is not None]
+
+    def text(instant: pd.Timestamp) -> str:
+        shown = instant.tz_convert(zones[0]) if zones else instant.tz_localize(None)
+        return shown.isoformat()
+
+    edges = [a]
+    while edges[-1] + size_td < b:
         edges.append(edges[-1] + size_td)
-    edges.append(tb)
-    chunks = [(edges[i].isoformat(), edges[i + 1].isoformat()) for i in range(len(edges) - 1)]
-    return chunks, (ta - back_td).isoformat()
+    edges.append(b)
+    chunks = [(text(edges[i]), text(edges[i + 1])) for i in range(len(edges) - 1)]
+    return chunks, text(a - back_td)
 
 
 def _write_report(logger, db: str, spec, report_dir: str, run_id: str) -> None:

@@ -64,6 +64,9 @@ class RunOptions(BaseModel):
     wait_seconds: float = Field(default=300.0, ge=0.0, le=86_400.0)
     workers: int = Field(default_factory=lambda: os.cpu_count() or 1, ge=1, le=512)
     window: str | None = None
+    # Newly confirmed events are announced as Prefect events when |effect_pct| is at
+    # least this (flows/notify.py); events without a percentage only when it is 0.
+    notify_min_effect_pct: float = Field(default=0.0, ge=0.0, le=1_000_000.0)
 
     @field_validator("window")
     @classmethod

@@ -113,3 +113,25 @@ SELECT f.series_id,
 FROM shifts f
 JOIN shifts l ON l.series_id = f.series_id AND l.newest = 1
 WHERE f.oldest = 1;
+
+
+-- view: open_incidents (sqlite, postgresql)
+-- Incidents that can still change on their own: a member is provisional, or
+-- the incident ended within the grouping margin of the newest scan (later
+-- scans may add members).  shared_labels is a JSON object label -> value.
+CREATE VIEW open_incidents AS
+SELECT incident_id, quantity, direction, start_ts, end_ts, n_series, fleet_size,
+       share_of_fleet, dominant_type, median_effect_pct, n_provisional, shared_labels,
+       first_seen, last_seen, last_run_id
+FROM incidents
+WHERE state = 'open';
+
+
+-- view: event_labels (sqlite, postgresql)
+-- Each event with the current labels of its series (one row per event and
+-- label; events of series without labels are not listed).
+CREATE VIEW event_labels AS
+SELECT e.series_id, e.event_time, e.event_ts, e.event_type, e.status, e.effect,
+       e.effect_pct, e.t_stat, l.label, l.value
+FROM series_events e
+JOIN series_labels l ON l.series_id = e.series_id;

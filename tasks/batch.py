@@ -49,7 +49,6 @@ from changekind.tasks.window import (
     summarize_windows,
     windowed_model,
 )
-from changekind.tasks.wrappers import TaskSpec, lazy_task
 
 Mode = Literal["cold", "warm", "unchanged", "deferred", "failed"]
 
@@ -587,16 +586,3 @@ def start_worker() -> int:
     instead of delaying the first batch.  Returns the worker's process id.
     """
     return os.getpid()
-
-
-_TASKS: dict[str, TaskSpec] = {
-    "start_worker_task": (start_worker, {"name": "start-worker"}),
-    "run_batch_task": (
-        run_batch,
-        {"name": "analyse-batch", "retries": 2, "retry_delay_seconds": [2, 5]},
-    ),
-}
-
-
-def __getattr__(name: str):
-    return lazy_task(__name__, name, _TASKS)

@@ -29,7 +29,6 @@ from changekind.tasks.errors import (
     TooShortError,
 )
 from changekind.tasks.types import Decomposition, RegularSeries, StampLabels
-from changekind.tasks.wrappers import TaskSpec, lazy_task
 
 MIN_POINTS = 24
 """Fewest observed points the engine analyses (an ARIMA with a few terms and a
@@ -535,13 +534,3 @@ def _parse_timestamps(series_id: str, timestamps) -> tuple[np.ndarray, list[str]
         parsed = parsed.dt.tz_convert("UTC").dt.tz_localize(None)
     stamps = parsed.to_numpy(dtype="datetime64[ns]")
     return stamps, labels, tz
-
-
-_TASKS: dict[str, TaskSpec] = {
-    "regularize_task": (regularize, {"name": "regularize"}),
-    "decompose_task": (decompose, {"name": "decompose"}),
-}
-
-
-def __getattr__(name: str):
-    return lazy_task(__name__, name, _TASKS)

@@ -51,7 +51,6 @@ from changekind.tasks.types import (
     FittedModel,
     Pattern,
 )
-from changekind.tasks.wrappers import TaskSpec, lazy_task
 
 MAX_OUTER = 4
 """Bound on the outer (re-estimation) passes."""
@@ -423,12 +422,3 @@ __all__ = [
     "screen_new_points",
     "series_shape",
 ]
-
-_TASKS: dict[str, TaskSpec] = {
-    "detect_task": (detect_events, {"name": "detect"}),
-    "screen_task": (screen_new_points, {"name": "screen-new-points"}),
-}
-
-
-def __getattr__(name: str):
-    return lazy_task(__name__, name, _TASKS)

@@ -103,3 +103,34 @@ def is_transient(exc: BaseException | None) -> bool:
             return True
         return isinstance(exc, sa.exc.OperationalError | sa.exc.InterfaceError)
     return isinstance(exc, OSError | TimeoutError)
+
+
+def mask_url(url: str | sa.URL) -> str:
+    """A database URL for a message: the password hidden (``***``).
+
+    A text that is no URL comes back as ``<unparseable URL>``: it may hold a
+    password in a form the parser does not know.
+    """
+    try:
+        parsed = url if isinstance(url, sa.URL) else sa.make_url(url)
+        return parsed.render_as_string(hide_password=True)
+    except (sa.exc.ArgumentError, ValueError):
+        return "<unparseable URL>"
+
+
+def series_failure(exc: Exception) -> tuple[str, str] | None:
+    """The one per-series error policy: ``(stage, problem)`` when ``exc`` is one series' own.
+
+    ``SeriesError``: the data of the series (stage ``prepare``, its problem in
+    words); another of our errors, or a numerical failure (``ValueError``,
+    ``ArithmeticError``, numpy's ``LinAlgError``), during its analysis (stage
+    ``detect``).  Anything else is None: not the series' fault, so the caller
+    must not pass it off as one (a bug, or the machinery failing).
+    """
+    if isinstance(exc, SeriesError):
+        return "prepare", exc.problem
+    if isinstance(exc, ChangekindError):
+        return "detect", str(exc)
+    if isinstance(exc, ValueError | ArithmeticError):
+        return "detect", f"{type(exc).__name__}: {exc}"
+    return None

@@ -10,16 +10,15 @@ from __future__ import annotations
 
 import hashlib
 import math
-import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass, replace
 
 import numpy as np
+from scipy.optimize import minimize
 from scipy.signal import lfilter
 
 from changekind.tasks.threads import single_blas_thread
 from changekind.tasks.types import Decomposition, FittedModel, round_sig
-from changekind.tasks.wrappers import TaskSpec, lazy_task
 
 MAX_SEASONAL_LAG = 12
 """Longest season given a seasonal AR term automatically (monthly data's 12,
@@ -316,22 +315,21 @@ def _exact_fit(
     )
     exog = np.ones((n, 1)) if trend == "c" else None
     try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            model = SARIMAX(y, exog=exog, **model_kw)
-            start = None
-            if start_params is not None:
-                arma = np.asarray(start_params, dtype=float)
-                start = model.start_params
-                k_exog = 0 if exog is None else 1
-                if arma.size == start.size - k_exog:
-                    start[k_exog:] = arma
-                else:
-                    start = None
-            res = model.fit(start_params=start, disp=False, cov_type="none", maxiter=MAX_ITER)
+        model = SARIMAX(y, exog=exog, **model_kw)
+        start = _exact_start(model, y, order, seasonal_order, trend, start_params)
+        # The likelihood maximized directly (scipy's L-BFGS-B over statsmodels'
+        # unconstrained parameters) rather than by ``model.fit``: fit warns on
+        # most calls, and silencing warnings is not safe in threads.
+        found = minimize(
+            lambda x: -model.loglike(x, transformed=False),
+            model.untransform_params(start),
+            method="L-BFGS-B",
+            options={"maxiter": MAX_ITER},
+        )
+        params = np.asarray(model.transform_params(found.x), dtype=float)
+        res = model.filter(params)
     except (ValueError, np.linalg.LinAlgError, IndexError, OverflowError) as exc:
         raise EstimationError(str(exc) or type(exc).__name__) from exc
-    params = np.asarray(res.params, dtype=float)
     if not np.all(np.isfinite(params)) or not np.isfinite(res.llf):
         raise EstimationError("non-finite estimate")
     sigma2 = float(res.scale)
@@ -347,14 +345,33 @@ def _exact_fit(
     named.append(("sigma2", sigma2))
     if max_ma_root(named) >= MAX_ROOT and order[2] + seasonal_order[2] > 0:
         raise EstimationError("MA root on the unit circle")
-    retvals = res.mle_retvals or {}
-    return (
-        named,
-        sigma2,
-        float(res.llf),
-        int(retvals.get("iterations", 0)),
-        bool(retvals.get("converged", True)),
-    )
+    return named, sigma2, float(res.llf), int(found.nit), bool(found.success)
+
+
+def _exact_start(
+    model,
+    y: np.ndarray,
+    order: Order,
+    seasonal_order: SeasonalOrder,
+    trend: str,
+    given: Sequence[float] | None,
+) -> np.ndarray:
+    """Starting values in ``model.param_names`` order: given ARMA values, else the
+    Hannan-Rissanen estimate, else zeros (a stationary, invertible start)."""
+    names = list(model.param_names)
+    arma_names = names[1:] if trend == "c" else names
+    arma = None
+    if given is not None and len(given) == len(arma_names):
+        arma = np.asarray(given, dtype=float)
+    else:
+        try:
+            named = dict(conditional_fit(y, order, seasonal_order, trend=trend)[0])
+            arma = np.array([named.get(k, 0.0) for k in arma_names])
+        except EstimationError:
+            arma = np.zeros(len(arma_names))
+    if trend == "c":
+        return np.r_[float(np.nanmean(y)), arma]
+    return arma
 
 
 def conditional_fit(
@@ -604,12 +621,10 @@ def _zivot_andrews_rejects(z: np.ndarray) -> bool:
     """statsmodels' Zivot-Andrews test (break in the intercept) rejects a unit root at 5 %."""
     from statsmodels.tsa.stattools import zivot_andrews
 
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        try:
-            _, pvalue, *_ = zivot_andrews(z, regression="c", autolag="AIC")
-        except (ValueError, np.linalg.LinAlgError, OverflowError):
-            return False
+    try:  # it raises no warning (checked with -W always), so no catch_warnings here
+        _, pvalue, *_ = zivot_andrews(z, regression="c", autolag="AIC")
+    except (ValueError, np.linalg.LinAlgError, OverflowError):
+        return False
     return bool(np.isfinite(pvalue) and pvalue < 0.05)
 
 
@@ -683,17 +698,56 @@ def _without_step(y: np.ndarray, lags: int = 2) -> np.ndarray:
     return out
 
 
+KPSS_5PCT = 0.463
+"""5 % critical value of the KPSS level-stationarity statistic (Kwiatkowski et
+al. 1992, Table 1; the value statsmodels' ``kpss`` tabulates)."""
+
+
 def _unit_root(z: np.ndarray) -> int:
     """1 when the KPSS test rejects level stationarity at 5 %, else 0."""
-    from statsmodels.tsa.stattools import kpss
+    return 1 if kpss_stat(z) > KPSS_5PCT else 0
 
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        try:
-            p_value = kpss(z, regression="c", nlags="auto")[1]
-        except (ValueError, np.linalg.LinAlgError, OverflowError):
-            return 0
-    return 1 if p_value < 0.05 else 0
+
+def kpss_stat(z: np.ndarray) -> float:
+    """The KPSS level-stationarity statistic with statsmodels' automatic lags.
+
+    The same statistic as ``statsmodels.tsa.stattools.kpss(z, "c", nlags="auto")``
+    (a test checks the two agree), computed here because that function warns
+    (InterpolationWarning, FutureWarning) on most calls, and silencing warnings
+    with ``warnings.catch_warnings`` is not safe in threads: the batch runs
+    series in threads, and an interleaved exit leaves the process's warning
+    filters changed.
+
+    References
+    ----------
+    Kwiatkowski, D., Phillips, P. C. B., Schmidt, P. and Shin, Y. (1992).
+    Testing the null hypothesis of stationarity against the alternative of a
+    unit root. Journal of Econometrics 54, 159-178.
+    Hobijn, B., Franses, P. H. and Ooms, M. (1998). Generalisations of the
+    KPSS-test for stationarity. Econometric Institute Report 9802/A (the
+    automatic lag).
+    """
+    resid = np.asarray(z, dtype=float) - np.mean(z)
+    n = resid.size
+    # Hobijn et al. (1998) lag, as statsmodels' _kpss_autolag.
+    covlags = int(n ** (2.0 / 9.0))
+    s0 = float(resid @ resid) / n
+    s1 = 0.0
+    for i in range(1, covlags + 1):
+        prod = float(resid[i:] @ resid[: n - i]) / (n / 2.0)
+        s0 += prod
+        s1 += i * prod
+    gamma = 1.1447 * ((s1 / s0) ** 2) ** (1.0 / 3.0) if s0 else 0.0
+    lags = min(int(gamma * n ** (1.0 / 3.0)), n - 1)
+    # Long-run variance with Bartlett weights.
+    var = float(resid @ resid)
+    for i in range(1, lags + 1):
+        var += 2.0 * (1.0 - i / (lags + 1.0)) * float(resid[i:] @ resid[: n - i])
+    var /= n
+    if not var > 0:
+        return 0.0
+    eta = float(np.sum(np.cumsum(resid) ** 2)) / n**2
+    return eta / var
 
 
 def select_orders(
@@ -854,28 +908,12 @@ def innovations(y: np.ndarray, model: FittedModel) -> np.ndarray:
     sigma2 = params["sigma2"]
     if not arma and model.order[1] == 0 and model.seasonal_order[1] == 0:
         return dev
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        mod = SARIMAX(
-            dev,
-            order=model.order,
-            seasonal_order=model.seasonal_order,
-            trend="n",
-            simple_differencing=True,
-        )
-        try:
-            res = mod.filter(np.r_[arma, sigma2])
-        except (ValueError, np.linalg.LinAlgError):  # parameters outside the stationary region
-            mod = SARIMAX(
-                dev,
-                order=model.order,
-                seasonal_order=model.seasonal_order,
-                trend="n",
-                simple_differencing=True,
-                enforce_stationarity=False,
-                enforce_invertibility=False,
-            )
-            res = mod.filter(np.r_[arma, sigma2])
+    kw = dict(order=model.order, seasonal_order=model.seasonal_order, trend="n")
+    try:  # filtering with given parameters warns about nothing: no catch_warnings
+        res = SARIMAX(dev, simple_differencing=True, **kw).filter(np.r_[arma, sigma2])
+    except (ValueError, np.linalg.LinAlgError):  # parameters outside the stationary region
+        free = dict(enforce_stationarity=False, enforce_invertibility=False)
+        res = SARIMAX(dev, simple_differencing=True, **kw, **free).filter(np.r_[arma, sigma2])
     err = np.asarray(res.forecasts_error[0], dtype=float)
     var = np.asarray(res.forecasts_error_cov[0, 0], dtype=float)
     out = np.full(dev.size, np.nan)
@@ -1018,10 +1056,3 @@ def _natural_lags(decomp: Decomposition) -> tuple[int, ...]:
     series = decomp.series
     natural = BUSINESS_PERIODS if series.business_days else natural_periods(series.step_seconds)
     return tuple(p for p in natural if series.nobs >= 4 * p)
-
-
-_TASKS: dict[str, TaskSpec] = {"fit_task": (fit_model, {"name": "fit"})}
-
-
-def __getattr__(name: str):
-    return lazy_task(__name__, name, _TASKS)

@@ -42,6 +42,18 @@ on memory alignment); rounding to 10 digits makes reruns store identical
 values, far below any precision the statistics have."""
 
 
+def number(value: object, fmt: str) -> str:
+    """``value`` formatted with ``fmt``, or ``-`` when it is missing, not a number
+    or not finite: the one number formatting of tables, pages and summaries."""
+    if value is None:
+        return "-"
+    try:
+        x = float(value)  # type: ignore[arg-type]
+    except (TypeError, ValueError):
+        return "-"
+    return format(x, fmt) if math.isfinite(x) else "-"
+
+
 def round_sig(value: float, digits: int = STORED_DIGITS) -> float:
     """``value`` rounded to ``digits`` significant digits (non-finite values unchanged)."""
     if not math.isfinite(value) or value == 0:

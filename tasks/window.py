@@ -462,11 +462,16 @@ def detect_windowed(
        level event and a variance change fall in the same window, the level
        event is kept and the variance change dropped.
 
+    3b. Spikes: a single-point spike barely moves a window median, so each
+       window's extreme (its max or min, whichever is farther from the
+       median) is tested against the window's own spread (a MAD, which one
+       spike does not move): see :func:`extreme_windows`.  A window whose
+       extreme clears the critical value for all raw points tested is an AO
+       named by the window, unless a level event already names it.
+
     A level shift part-way through a window moves that window's median part
     of the way: it may come out as two level shifts in consecutive windows
-    whose effects add up to the shift.  A single-point spike barely moves a
-    window median; look at the window's max and min, or detect on the raw
-    points, for those.
+    whose effects add up to the shift.
 
     Multiplicity: two series are tested, so false events per clean series are
     about twice the engine's target for one series of that length.
@@ -544,6 +549,16 @@ def detect_windowed(
     ]
     events += [_windowed(_as_variance_change(ev), width) for ev in changes]
 
+    # Step 3b: spikes inside windows (their extremes).
+    taken = {ev.position for ev in level.events}
+    spikes = extreme_windows(summary, critical=critical, skip=taken, model=level.model.spec())
+    events += [_windowed(ev, width) for ev in spikes]
+    if spikes:
+        notes.append(
+            f"{len(spikes)} window(s) hold an extreme that the window's median and spread "
+            "cannot explain: reported as AO at the window (drill shows the point)"
+        )
+
     # Step 4: in window order, one event per window.
     events = _one_per_window(events)
     return WindowedResult(
@@ -555,6 +570,93 @@ def detect_windowed(
         events=tuple(events),
         notes=tuple(notes),
     )
+
+
+def extreme_windows(
+    summary: WindowSummary,
+    *,
+    critical: float | None = None,
+    skip: set[int] | frozenset[int] = frozenset(),
+    model: str = "",
+) -> list[Event]:
+    """Windows whose extreme point the window's median and spread cannot explain.
+
+    Parameters
+    ----------
+    summary : WindowSummary
+    critical : float, optional
+        Critical |z|; default :func:`~changekind.tasks.critical.critical_value`
+        of the raw points in windows tested (one test a point: the extreme is
+        the largest of the window's deviations).
+    skip : set of int
+        Window positions already named by an event.
+    model : str
+        Text for the events' ``model`` field.
+
+    Returns
+    -------
+    list of Event
+        One AO per window (``event_time`` = the window start, as text),
+        ``effect`` = extreme - median, ``se`` = the spread around the window
+        (median of the window spreads within 12 windows either side),
+        ``t_stat`` their ratio; type weights all on AO (the test looks for
+        nothing else).
+
+    Notes
+    -----
+    Only windows with at least ``MIN_SPREAD_POINTS`` points and a positive
+    spread are tested; spreads are normalized MADs, so the spike itself does
+    not inflate them.  The points inside a window are treated as
+    independent given its median (autocorrelated points make the test
+    conservative for a spike and anticonservative for a slow swing).
+    """
+    from changekind.tasks.critical import check_critical, critical_value
+
+    ok = (summary.count >= MIN_SPREAD_POINTS) & (summary.spread > 0)
+    if not ok.any():
+        return []
+    crit = check_critical(critical)
+    if crit is None:
+        crit = critical_value(float(summary.count[ok].sum()))
+    up = summary.max - summary.median
+    down = summary.min - summary.median
+    dev = np.where(np.abs(up) >= np.abs(down), up, down)
+    # The spread around each window: the median over the usable windows
+    # within LEVEL_WINDOWS / 2 either side (one window's MAD of 60 points is
+    # about 12 % noisy, which alone made clean windows look extreme).
+    usable = pd.Series(np.where(ok, summary.spread, np.nan))
+    local = usable.rolling(LEVEL_WINDOWS + 1, center=True, min_periods=1).median().to_numpy()
+    ok &= np.isfinite(local) & (local > 0)
+    z = np.where(ok, dev / np.where(ok, local, 1.0), 0.0)
+    weights = tuple((k, 1.0 if k == "AO" else 0.0) for k in ("AO", "LS", "TC", "IO"))
+    out = []
+    for pos in np.flatnonzero(np.abs(z) >= crit):
+        pos = int(pos)
+        if pos in skip:
+            continue
+        level = float(summary.median[pos])
+        effect = float(dev[pos])
+        near_zero = not abs(level) > 1e-9 * (1 + abs(effect))
+        out.append(
+            Event(
+                series_id=summary.series_id,
+                position=pos,
+                event_time=summary.index[pos].isoformat(),
+                event_type="AO",
+                effect=effect,
+                effect_pct=None if near_zero else 100.0 * effect / level,
+                t_stat=float(z[pos]),
+                se=float(local[pos]),
+                type_weights=weights,
+                status="confirmed",
+                decay=None,
+                half_life=None,
+                level=level,
+                model=f"window extreme vs spread; {model}".rstrip("; "),
+                effect_sigma=abs(float(z[pos])),
+            )
+        )
+    return out
 
 
 def window_text(window: str | pd.Timedelta | timedelta) -> str:
@@ -646,8 +748,9 @@ def screen_windowed(
     Returns
     -------
     DetectionResult
-        Level events and variance changes among the tested windows, with
-        window bounds; the level model; the level screen's notes.
+        Level events, variance changes and window extremes (AO, see
+        :func:`extreme_windows`) among the tested windows, with window bounds;
+        the level model; the level screen's notes.
 
     Notes
     -----
@@ -703,6 +806,9 @@ def screen_windowed(
                 for ev in spread.events
                 if ev.event_type == "LS"
             ]
+    old = set(np.flatnonzero(~new).tolist())
+    spikes = extreme_windows(summary, critical=critical, skip=old, model=model.spec())
+    events += [_windowed(ev, width) for ev in spikes]  # after level events: they win a window
     return replace(level, events=_one_per_window(events))
 
 
@@ -745,7 +851,8 @@ def drill(
         ``series_id``, ``timestamp`` and ``value`` as the source gives them,
         ``window_start`` (the start of each row's window, as a Timestamp) and
         ``window_offset`` (windows from the one asked for: 0 for it, -1 before,
-        +1 after).
+        +1 after) and ``extreme`` (True at each window's point farthest from
+        its median: the point a windowed AO names).
 
     Raises
     ------
@@ -799,7 +906,19 @@ def drill(
     return rows.assign(
         window_start=focus + pd.to_timedelta(offset * int(width.value), unit="ns"),
         window_offset=offset,
+        extreme=_extreme_rows(rows["value"].to_numpy(dtype=float), offset),
     ).reset_index(drop=True)
+
+
+def _extreme_rows(values: np.ndarray, offset: np.ndarray) -> np.ndarray:
+    """True at each window's point farthest from the window's median (its extreme)."""
+    out = np.zeros(values.size, dtype=bool)
+    for key in np.unique(offset):
+        idx = np.flatnonzero((offset == key) & ~np.isnan(values))
+        if idx.size:
+            dev = np.abs(values[idx] - np.median(values[idx]))
+            out[idx[int(np.argmax(dev))]] = True
+    return out
 
 
 # ---------------------------------------------------------------------------

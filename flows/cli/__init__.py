@@ -3,7 +3,8 @@
 ``app`` (exit codes, consoles, error mapping), ``options`` (shared options),
 ``config`` (checking a fleet command's configuration), ``output`` (tables and
 records), and the commands: ``detect``, ``runs`` (scan, backfill, refit),
-``events`` (events, triage), ``report``, ``drill`` and ``demo``.  Importing a
+``events`` (events, triage, verdicts), ``incidents``, ``report``, ``drill`` and
+``demo``.  Importing a
 command module registers its commands on :data:`app`; the group imports a
 command's module when that command is used (``app.COMMAND_MODULES``), so a
 read-only command such as ``changekind events`` does not import the engine, the

@@ -42,6 +42,7 @@ COMMAND_MODULES: dict[str, str] = {
     "events": "events",
     "triage": "events",
     "verdicts": "events",
+    "incidents": "incidents",
     "report": "report",
     "drill": "drill",
     "demo": "demo",
@@ -160,6 +161,8 @@ EXIT_INTERRUPTED = 130
 
 OPTION_NAMES = {
     "critical": "--critical",
+    "periods": "--season",
+    "window": "--window",
     "min_points": "--min-points",
     "workers": "--workers",
     "wait_seconds": "--wait",

@@ -22,8 +22,9 @@ from pydantic import ValidationError
 from changekind.flows.cli.app import OPTION_NAMES, validation_text
 from changekind.flows.settings import RunOptions, Settings, split_password
 from changekind.tasks import persist
-from changekind.tasks.errors import ConfigError
+from changekind.tasks.errors import ConfigError, mask_url
 from changekind.tasks.fetch import open_source
+from changekind.tasks.labels import check_label_columns
 from changekind.tasks.timeaxis import parse_instant
 from changekind.tasks.window import window_text
 
@@ -115,7 +116,7 @@ def require_tables(url: str) -> None:
         engine.dispose()
     if not present:
         raise ConfigError(
-            f"database {engine.url.render_as_string(hide_password=True)!r} holds no changekind "
+            f"database {mask_url(engine.url)!r} holds no changekind "
             "tables yet; run 'changekind scan' or 'changekind backfill' against it first"
         )
 
@@ -133,6 +134,15 @@ class FleetConfig:
     columns: dict[str, str] | None
     time_kind: str
     sql: dict[str, str] = field(default_factory=dict)
+    labels: tuple[str, ...] = ()
+
+
+def column_map(
+    series_column: str | None, timestamp_column: str | None, value_column: str | None
+) -> dict[str, str]:
+    """The source's column names given on the command line (``--series-column`` ...)."""
+    given = (("series_id", series_column), ("timestamp", timestamp_column), ("value", value_column))
+    return {key: name for key, name in given if name is not None}
 
 
 def fleet_config(
@@ -151,6 +161,7 @@ def fleet_config(
     min_points: int | None,
     window: str | None = None,
     wait: float | None = None,
+    label_column: list[str] | None = None,
 ) -> FleetConfig:
     """Check a fleet command's configuration in the order a person would fix it.
 
@@ -204,17 +215,10 @@ def fleet_config(
         raise ConfigError(validation_text(exc, OPTION_NAMES)) from None
 
     # Step 4: the source.
-    columns = {
-        key: name
-        for key, name in (
-            ("series_id", series_column),
-            ("timestamp", timestamp_column),
-            ("value", value_column),
-        )
-        if name is not None
-    }
+    columns = column_map(series_column, timestamp_column, value_column)
     spec = open_source(source, columns=columns or None, table=table, query=query)
     sql = {k: v for k, v in (("table", table), ("query", query)) if v is not None}
+    labels = check_label_columns(spec, label_column)  # names the columns there are
 
     # Step 5: the database.
     check_db(db)
@@ -243,31 +247,35 @@ def fleet_config(
         columns=columns or None,
         time_kind=spec.time_kind,
         sql=sql,
+        labels=labels,
     )
 
 
 def check_time(value: str | None, what: str, time_kind: str) -> str | None:
-    """A time bound the source can compare with: a number or a date-time, as it holds."""
+    """A time bound the source can compare with: a number or a date-time, as it holds.
+
+    Read by the time axis's rule (:func:`~changekind.tasks.timeaxis.parse_instant`:
+    ISO 8601 only, a naive time is UTC).
+    """
     if value is None:
         return None
+    try:
+        got = parse_instant(value, what=what)
+    except ConfigError:
+        if time_kind != "numeric":
+            raise  # its message says what is wrong ('05/03/2030': day and month ambiguous)
+        got = None
     if time_kind == "numeric":
-        try:
-            float(value)
-        except ValueError:
+        if not isinstance(got, float):
             raise ConfigError(
                 f"{what} {value!r} is not a number, and the source's timestamps are numbers"
-            ) from None
-        return value
-
-    try:
-        float(value)
-    except ValueError:
-        parse_instant(value, what=what)  # ISO 8601 only: '05/03/2030' is refused
-        return value
-    raise ConfigError(
-        f"{what} {value!r} is not a date-time; give an ISO 8601 time such as "
-        "2026-06-01 or 2026-06-01T12:00:00Z"
-    )
+            )
+    elif got is None or isinstance(got, float):
+        raise ConfigError(
+            f"{what} {value!r} is not a date-time; give an ISO 8601 time such as "
+            "2026-06-01 or 2026-06-01T12:00:00Z"
+        )
+    return value
 
 
 def flow_arguments(flow: Any, config: FleetConfig, **extra: Any) -> dict[str, Any]:
@@ -281,6 +289,8 @@ def flow_arguments(flow: Any, config: FleetConfig, **extra: Any) -> dict[str, An
         "columns": config.columns,
         **{k: v for k, v in extra.items() if v is not None},
     }
+    if config.labels:
+        arguments["label_columns"] = list(config.labels)
     for name, value in config.sql.items():
         if name not in params:
             raise ConfigError(

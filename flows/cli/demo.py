@@ -28,17 +28,20 @@ from changekind.flows.cli.app import (
     usage_errors,
 )
 from changekind.flows.cli.config import FleetConfig, check_db, flow_arguments, prefect_defaults
+from changekind.flows.cli.incidents import incident_records, incidents_table
 from changekind.flows.cli.output import event_json_records, print_summary, seconds_text
 from changekind.flows.cli.report import write_stored_report
 from changekind.flows.cli.runs import run_fleet_flow
 from changekind.flows.demo import (
     DAY_FILE_GLOB,
+    LABEL_COLUMNS,
     make_demo_fleet,
     score_against_truth,
+    score_rollout_incident,
     write_day_files,
 )
 from changekind.flows.settings import RunOptions
-from changekind.tasks import persist
+from changekind.tasks import incident_store, persist
 from changekind.tasks.errors import ConfigError
 from changekind.tasks.fetch import open_source
 from changekind.tasks.types import EVENT_TYPES, REPORTED_TYPES, format_duration
@@ -82,6 +85,7 @@ def _demo_config(folder: Path, db: str, workers: int) -> FleetConfig:
         options=options,
         columns=None,
         time_kind="datetime",
+        labels=LABEL_COLUMNS,
     )
 
 
@@ -175,11 +179,12 @@ def demo(
         truth_out = fleet.truth.assign(event_time=fleet.truth["event_time"].map(_iso))
         truth_out.to_csv(out / "truth.csv", index=False)
         first = fleet.data["timestamp"].min()
-        write_day_files(fleet.data, folder, last=days - 1)
+        write_day_files(fleet.data, folder, last=days - 1, labels=fleet.labels)
         n_series = fleet.data["series_id"].nunique()
         console.print(
             f"Invented fleet: {controllers} storage controllers, {n_series} series, {days} days "
-            f"every {_step_text(fleet.step)}, {len(fleet.truth)} injected events; "
+            f"every {_step_text(fleet.step)}, {len(fleet.truth)} injected events; attributes "
+            f"{', '.join(LABEL_COLUMNS)} beside the values; "
             f"daily Parquet files in {folder}{os.sep}, database {url}",
             markup=False,
         )
@@ -210,7 +215,7 @@ def demo(
         print_summary(console, _without_tops(filled))
 
         # Step 3: the last day arrives; the hourly scan tests only the new points.
-        write_day_files(fleet.data, folder, first=days - 1)
+        write_day_files(fleet.data, folder, first=days - 1, labels=fleet.labels)
         t0 = time.perf_counter()
         arguments = flow_arguments(scan_flow, config)
         scanned = run_fleet_flow(scan_flow, arguments, config, label="scan")
@@ -224,6 +229,8 @@ def demo(
         # Step 4: what the table holds, against the truth.
 
         stored = persist.read_events(url)
+        incidents = incident_store.read_incidents(url)
+        states = incident_store.incident_states(url)
     (out / "events.json").write_text(
         json.dumps(event_json_records(stored), indent=2, allow_nan=False) + "\n"
     )
@@ -235,18 +242,38 @@ def demo(
     console.print(_score_table(score, clean=len(clean), on_clean=on_clean))
     example = _example_event(stored)
 
+    # Step 5: incidents, and the injected rollout among them.
+    records = incident_records(incidents, states)
+    (out / "incidents.json").write_text(json.dumps(records, indent=2, allow_nan=False) + "\n")
+    rollout = score_rollout_incident(incidents, fleet.rollout_series)
+    update = [dict(s.timings).get("incidents") for s in (filled, scanned)]
+    console.print(
+        f"\n{len(incidents)} incident(s): events of several series at about the same time "
+        f"(updated after each run: {_seconds(update[0])} after the backfill, "
+        f"{_seconds(update[1])} after the scan).",
+        markup=False,
+    )
+    if records:
+        console.print(incidents_table(records, title="Incidents, newest first"))
+    console.print(f"The injected firmware rollout: {rollout.words()}.", markup=False)
+
     # Step 5: a picture of every stored event, for a person to look at.
 
-    console.print("\n3. Pictures of the stored events (changekind report):", markup=False)
+    console.print(
+        "\n3. Pictures of the stored events and the incidents (changekind report):",
+        markup=False,
+    )
     with usage_errors():
         write_stored_report(url, open_source(folder), out / "report")
     console.print(
         f"\nWhole demo: {seconds_text(time.perf_counter() - started)} on {workers} core(s).\n"
         "Events are statistical evidence for a person to judge, not verdicts.\n"
-        f"All events as JSON: {out / 'events.json'}; injected truth: {out / 'truth.csv'}.\n"
+        f"All events as JSON: {out / 'events.json'}; incidents: {out / 'incidents.json'}; "
+        f"injected truth: {out / 'truth.csv'}.\n"
         "\nQuery the event table yourself:\n"
         f"  changekind events --db {url} --json\n"
         f"  changekind events --db {url} --since {end[:10]}\n"
+        f"  changekind incidents --db {url} --json\n"
         "or with SQL, for example through the views for BI tools:\n"
         "  SELECT series_id, event_time, effect, effect_pct FROM open_level_shifts;\n"
         "  SELECT day, event_type, n_events, n_confirmed FROM daily_event_counts "
@@ -262,6 +289,10 @@ def demo(
         err_console().print(f"changekind: series {sid!r} failed ({stage}): {message}", markup=False)
     if failed:
         raise typer.Exit(EXIT_SERIES_FAILED)
+
+
+def _seconds(value: float | None) -> str:
+    return "-" if value is None else f"{value:.2f} s"
 
 
 def _without_tops(summary: RunSummary) -> RunSummary:

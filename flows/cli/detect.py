@@ -20,25 +20,28 @@ from pathlib import Path
 from typing import Annotated
 
 import typer
+from pydantic import ValidationError
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 
 from changekind.flows.cli.app import (
     DEBUG_ENV,
     EXIT_SERIES_FAILED,
+    OPTION_NAMES,
     app,
     err_console,
     fail_usage,
     out_console,
+    validation_text,
 )
 from changekind.flows.cli.output import event_records, print_result
-from changekind.tasks.critical import check_critical
+from changekind.flows.settings import RunOptions
 from changekind.tasks.decompose import regularize
 from changekind.tasks.detect import analyse_series
-from changekind.tasks.errors import ChangekindError, SeriesError, SourceError
+from changekind.tasks.errors import SourceError, series_failure
 from changekind.tasks.fetch.inputs import SeriesInput, read_series_file
 from changekind.tasks.fetch.values import SourceProblem
 from changekind.tasks.types import DetectionResult, Event
-from changekind.tasks.window import detect_windowed, parse_window
+from changekind.tasks.window import detect_windowed
 
 # --------------------------------------------------------------------------- running the engine
 
@@ -104,14 +107,14 @@ def analyse_windowed_one(
 
 
 def _outcome(series_id: str, run: Callable[[], DetectionResult]) -> SeriesOutcome:
-    """``run()`` as an outcome: the input's problems in words; a bug does not stop the others."""
+    """``run()`` as an outcome: a series' own problem in words (:func:`series_failure`);
+    anything else, a bug, is said as one without stopping the other series."""
     try:
         return SeriesOutcome(series_id, run())
-    except SeriesError as exc:
-        return SeriesOutcome(series_id, None, exc.problem)
-    except ChangekindError as exc:
-        return SeriesOutcome(series_id, None, str(exc))
-    except Exception as exc:  # a bug: keep the other series going, but say so
+    except Exception as exc:
+        failure = series_failure(exc)
+        if failure is not None:
+            return SeriesOutcome(series_id, None, failure[1])
         problem = f"internal error ({type(exc).__name__}: {exc}); please report it"
         if os.environ.get(DEBUG_ENV):
             problem += "\n" + traceback.format_exc()
@@ -238,13 +241,6 @@ def report_problems(outcomes: Sequence[SeriesOutcome]) -> int:
 # --------------------------------------------------------------------------- detect
 
 
-def _check_critical(value: float | None) -> float | None:
-    try:
-        return check_critical(value)
-    except ValueError as exc:
-        raise typer.BadParameter(str(exc)) from exc
-
-
 @app.command()
 def detect(
     input: Annotated[
@@ -260,7 +256,6 @@ def detect(
         list[int] | None,
         typer.Option(
             "--season",
-            min=2,
             metavar="N",
             help="Seasonal period in samples (e.g. 288 for daily on 5-minute data); "
             "repeat for several.  Default: day/week/year cycles found in the data.",
@@ -272,7 +267,6 @@ def detect(
         typer.Option(
             "--critical",
             metavar="C",
-            callback=_check_critical,
             help="Critical |t| for an event.  Default grows with the series length to "
             "keep false events rare.",
             show_default=False,
@@ -295,13 +289,16 @@ def detect(
     ] = None,
 ) -> None:
     """Find events in every series of INPUT and say what kind they are."""
+    # One validation of each option: the same model as the fleet runs' options.
+    try:
+        options = RunOptions(
+            critical=critical, periods=tuple(season) if season else None, window=window
+        )
+    except ValidationError as exc:
+        raise fail_usage(validation_text(exc, OPTION_NAMES)) from None
     worker = None
-    if window is not None:
-        try:
-            parse_window(window)
-        except ChangekindError as exc:
-            raise fail_usage(str(exc)) from None
-        worker = functools.partial(_windowed_worker, window=window)
+    if options.window is not None:
+        worker = functools.partial(_windowed_worker, window=options.window)
     problems: list[SourceProblem] = []
     try:
         items = read_series_file(input, problems=problems)
@@ -310,9 +307,8 @@ def detect(
     err = err_console()
     for problem in problems:  # skipped files and rows of a folder, as scan records them
         err.print(f"changekind: {problem.describe()}", markup=False)
-    periods = tuple(season) if season else None
     outcomes = _run_with_progress(
-        items, periods=periods, critical=critical, label="analysing", worker=worker
+        items, periods=options.periods, critical=options.critical, label="analysing", worker=worker
     )
     if as_json:
         sys.stdout.write(json.dumps(event_records(outcomes), indent=2, allow_nan=False) + "\n")

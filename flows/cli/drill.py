@@ -18,17 +18,19 @@ import typer
 from rich.table import Table
 
 from changekind.flows.cli.app import app, err_console, fail_usage, out_console
+from changekind.flows.cli.config import column_map
 from changekind.flows.cli.options import (
     QueryOpt,
     SeriesColOpt,
     SourceOpt,
     TableOpt,
     TimeColOpt,
+    TimestampUnitOpt,
     ValueColOpt,
 )
 from changekind.tasks.errors import ChangekindError
 from changekind.tasks.fetch import open_source
-from changekind.tasks.types import format_duration
+from changekind.tasks.types import format_duration, number
 from changekind.tasks.window import MAD_SCALE, drill, parse_window
 
 # --------------------------------------------------------------------------- drill
@@ -37,8 +39,8 @@ DEFAULT_AROUND = 2
 """Windows shown either side of the drilled one."""
 
 
-def _value(x: float) -> str:
-    return "-" if not math.isfinite(x) else f"{x:.6g}"
+def _point(x: float) -> str:
+    return number(x, ".6g")
 
 
 def _windows_table(rows: pd.DataFrame, title: str) -> Table:
@@ -53,7 +55,7 @@ def _windows_table(rows: pd.DataFrame, title: str) -> Table:
         med = float(np.median(v)) if v.size else math.nan
         spread = MAD_SCALE * float(np.median(np.abs(v - med))) if v.size else math.nan
         cells = (
-            [_value(v[0]), _value(v.min()), _value(med), _value(v.max()), _value(v[-1])]
+            [_point(v[0]), _point(v.min()), _point(med), _point(v.max()), _point(v[-1])]
             if v.size
             else ["-"] * 5
         )
@@ -62,7 +64,7 @@ def _windows_table(rows: pd.DataFrame, title: str) -> Table:
             part["window_start"].iloc[0].isoformat(),
             str(v.size),
             *cells,
-            _value(spread),
+            _point(spread),
             style="bold" if offset == 0 else None,
         )
     return table
@@ -73,14 +75,17 @@ def _points_table(rows: pd.DataFrame) -> Table:
     table.add_column("time", justify="left", no_wrap=True)
     table.add_column("value", justify="right")
     table.add_column("window", justify="right")
-    for stamp, value, offset in zip(
-        rows["timestamp"], rows["value"], rows["window_offset"], strict=True
+    table.add_column("extreme", justify="center")
+    extreme = rows["extreme"] if "extreme" in rows else [False] * len(rows)
+    for stamp, value, offset, far in zip(
+        rows["timestamp"], rows["value"], rows["window_offset"], extreme, strict=True
     ):
         when = stamp.isoformat() if hasattr(stamp, "isoformat") else str(stamp)
         table.add_row(
             when,
-            _value(float(value)),
+            _point(float(value)),
             f"{int(offset):+d}" if offset else "0",
+            "yes" if far else "",
             style="bold" if offset == 0 else None,
         )
     return table
@@ -181,15 +186,7 @@ def drill_command(
     value_column: ValueColOpt = None,
     table: TableOpt = None,
     query: QueryOpt = None,
-    timestamp_unit: Annotated[
-        str | None,
-        typer.Option(
-            "--timestamp-unit",
-            metavar="UNIT",
-            help="Numeric timestamps are epoch times in this unit: s, ms, us or ns.",
-            show_default=False,
-        ),
-    ] = None,
+    timestamp_unit: TimestampUnitOpt = None,
     timezone: Annotated[
         str,
         typer.Option("--timezone", metavar="ZONE", help="IANA time zone of naive timestamps."),
@@ -200,15 +197,7 @@ def drill_command(
     source = source if source is not None else os.environ.get("CHANGEKIND_SOURCE")
     if not source:
         raise fail_usage("no source given; pass --source PATH (or set CHANGEKIND_SOURCE)")
-    columns = {
-        key: name
-        for key, name in (
-            ("series_id", series_column),
-            ("timestamp", timestamp_column),
-            ("value", value_column),
-        )
-        if name is not None
-    }
+    columns = column_map(series_column, timestamp_column, value_column)
     try:
         width = parse_window(window)
         spec = open_source(

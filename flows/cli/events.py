@@ -9,6 +9,7 @@ from datetime import datetime
 from typing import Annotated
 
 import pandas as pd
+import sqlalchemy as sa
 import typer
 
 from changekind.flows.cli.app import app, fail_usage, out_console, usage_errors
@@ -21,7 +22,7 @@ from changekind.flows.cli.output import (
     events_table,
     verdicts_table,
 )
-from changekind.tasks import persist
+from changekind.tasks import incident_store, persist
 from changekind.tasks.errors import ConfigError
 from changekind.tasks.timeaxis import parse_instant
 
@@ -168,10 +169,12 @@ def events(
         total = None
         if not machine and len(frame) == shown_limit:
             total = persist.count_events(url, **filters)
+        labels = _series_labels(url)
     if as_json:
-        sys.stdout.write(json.dumps(event_json_records(frame), indent=2, allow_nan=False) + "\n")
+        records = event_json_records(frame, labels)
+        sys.stdout.write(json.dumps(records, indent=2, allow_nan=False) + "\n")
     elif as_csv:
-        sys.stdout.write(event_csv(frame))
+        sys.stdout.write(event_csv(frame, labels))
     else:
         console = out_console()
         if frame.empty:
@@ -181,8 +184,16 @@ def events(
         title = f"{total if total is not None else len(frame)} events, {order} first"
         if total is not None and len(frame) < total:
             title += f" ({len(frame)} shown; --limit, --json or --csv for more)"
-        console.print(events_table(frame, title=title, width=console.width))
+        console.print(events_table(frame, title=title, width=console.width, labels=labels))
     sys.stdout.flush()
+
+
+def _series_labels(url: str) -> dict[str, dict[str, str | None]]:
+    """The series' attributes (none in a database from before them: its next run adds them)."""
+    try:
+        return incident_store.read_labels(url)
+    except sa.exc.DBAPIError:
+        return {}
 
 
 def _stored_time(url: str, series_id: str, event_time: str) -> str:

@@ -1,4 +1,4 @@
-"""The options the fleet commands share, each declared once."""
+"""The options the commands share, each declared once."""
 
 from __future__ import annotations
 
@@ -168,7 +168,36 @@ WaitOpt = Annotated[
         show_default=False,
     ),
 ]
+LabelOpt = Annotated[
+    list[str] | None,
+    typer.Option(
+        "--label-column",
+        metavar="NAME",
+        help="A source column that describes a series (rack, host, firmware...); repeat "
+        "for several.  Its latest value per series is stored and incidents say which "
+        "values their series share.",
+        show_default=False,
+    ),
+]
 JsonOpt = Annotated[
     bool,
     typer.Option("--json", help="Print only the run's summary as JSON on stdout."),
+]
+SinceOpt = Annotated[
+    str | None,
+    typer.Option(
+        "--since",
+        metavar="T",
+        help="Only events at or after this time (ISO 8601; naive times are UTC).",
+        show_default=False,
+    ),
+]
+TimestampUnitOpt = Annotated[
+    str | None,
+    typer.Option(
+        "--timestamp-unit",
+        metavar="UNIT",
+        help="Numeric timestamps are epoch times in this unit: s, ms, us or ns.",
+        show_default=False,
+    ),
 ]

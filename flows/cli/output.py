@@ -20,7 +20,7 @@ from rich.table import Table
 
 from changekind.flows.cli.app import err_console
 from changekind.tasks.persist import EVENT_COLUMNS, EVENT_EXTRA_COLUMNS
-from changekind.tasks.types import DetectionResult, Event, format_duration
+from changekind.tasks.types import DetectionResult, Event, format_duration, number
 
 if TYPE_CHECKING:
     from changekind.flows.cli.detect import SeriesOutcome
@@ -333,6 +333,9 @@ def summary_record(summary: RunSummary) -> dict[str, Any]:
             "timings": dict(summary.timings),
             "source_problems": list(summary.problems),
             "notes": list(summary.notes),
+            "incidents": dict(summary.incidents),
+            "notified": summary.notified,
+            "labelled": summary.labelled,
         }
     )
 
@@ -378,9 +381,9 @@ def print_summary(console: Console, summary: RunSummary, *, wall: float | None =
                 e.series_id,
                 e.event_time,
                 e.event_type,
-                number_text(e.effect, "+.4g"),
-                number_text(e.effect_pct, "+.1f"),
-                number_text(e.t_stat, "+.2f"),
+                number(e.effect, "+.4g"),
+                number(e.effect_pct, "+.1f"),
+                number(e.t_stat, "+.2f"),
                 e.status,
             ]
             for e, change in zip(summary.top_events, changes, strict=True)
@@ -430,8 +433,14 @@ def report_failures(summary: RunSummary) -> None:
 # --------------------------------------------------------------------------- events, triage
 
 
-def event_json_records(frame: pd.DataFrame) -> list[dict[str, Any]]:
-    """Stored events as records of the ``detect --json`` contract (NaN as null)."""
+def event_json_records(
+    frame: pd.DataFrame, labels: Mapping[str, Mapping[str, str | None]] | None = None
+) -> list[dict[str, Any]]:
+    """Stored events as records of the ``detect --json`` contract (NaN as null).
+
+    With ``labels`` (series id -> {attribute: value}), each record ends with
+    ``labels``: its series' attributes (an empty object when it has none).
+    """
 
     records = []
     for row in frame.loc[:, list(EVENT_COLUMNS)].itertuples(index=False):
@@ -442,14 +451,23 @@ def event_json_records(frame: pd.DataFrame) -> list[dict[str, Any]]:
             elif name == "type_weights":
                 value = {k: float(v) for k, v in value.items()}
             record[name] = value
+        if labels is not None:
+            record["labels"] = dict(labels.get(record["series_id"], {}))
         records.append(finite(record))
     return records
 
 
-def event_csv(frame: pd.DataFrame) -> str:
-    """Stored events as CSV: the contract's columns, then triage and bookkeeping."""
+def event_csv(
+    frame: pd.DataFrame, labels: Mapping[str, Mapping[str, str | None]] | None = None
+) -> str:
+    """Stored events as CSV: the contract's columns, then triage and bookkeeping,
+    then (with ``labels``) ``labels``: the series' attributes as a JSON object."""
 
     out = frame.loc[:, [*EVENT_COLUMNS, *EVENT_EXTRA_COLUMNS]].copy()
+    if labels is not None:
+        out["labels"] = [
+            json.dumps(dict(labels.get(s, {})), sort_keys=True) for s in out["series_id"]
+        ]
     out["type_weights"] = [json.dumps(w, sort_keys=False) for w in out["type_weights"]]
     for name in ("event_ts", "first_seen", "last_seen", "triage_at"):
         out[name] = [None if v is None or v != v else v.isoformat() for v in out[name]]
@@ -463,8 +481,15 @@ def _weights_text(weights: Mapping[str, float], *, k: int = 2, floor: float = 0.
     return " · ".join(f"{t} {w:.2f}" for t, w in ranked[:k] if w >= floor) or "-"
 
 
-def events_table(frame: pd.DataFrame, *, title: str, width: int | None = None) -> Table:
-    """Stored events in a readable table fitted to ``width`` characters (times in UTC)."""
+def events_table(
+    frame: pd.DataFrame,
+    *,
+    title: str,
+    width: int | None = None,
+    labels: Mapping[str, Mapping[str, str | None]] | None = None,
+) -> Table:
+    """Stored events in a readable table fitted to ``width`` characters (times in UTC),
+    with an ``attributes`` column when ``labels`` (left out first when narrow)."""
     columns = (
         Column("series", "left", shorten=True),
         Column("time (UTC)", "left"),
@@ -476,6 +501,7 @@ def events_table(frame: pd.DataFrame, *, title: str, width: int | None = None) -
         Column("triage", "left", priority=1),
         Column("half-life", priority=4),
         Column("weights", "left", priority=6),
+        *([Column("attributes", "left", priority=7, shorten=True)] if labels else []),
     )
     rows = [
         [
@@ -489,6 +515,11 @@ def events_table(frame: pd.DataFrame, *, title: str, width: int | None = None) -
             row.triage_state or "-",
             half_life_text(row.half_life, timed=not pd.isna(row.event_ts)),
             _weights_text(row.type_weights),
+            *(
+                [", ".join(f"{k}={v}" for k, v in sorted(labels.get(row.series_id, {}).items()))]
+                if labels
+                else []
+            ),
         ]
         for row in frame.itertuples(index=False)
     ]

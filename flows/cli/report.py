@@ -13,17 +13,30 @@ from __future__ import annotations
 import contextlib
 from collections.abc import Sequence
 from pathlib import Path
-from typing import Annotated, Any
+from typing import TYPE_CHECKING, Annotated, Any
 
 import typer
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
 
 from changekind.flows.cli.app import EXIT_SERIES_FAILED, app, err_console, fail_usage, out_console
-from changekind.flows.settings import Settings
+from changekind.flows.cli.config import column_map, env_settings
+from changekind.flows.cli.options import (
+    DbOpt,
+    QueryOpt,
+    SeriesColOpt,
+    SeriesOpt,
+    SinceOpt,
+    SourceOpt,
+    TableOpt,
+    TimeColOpt,
+    TimestampUnitOpt,
+    ValueColOpt,
+)
 from changekind.tasks.errors import ChangekindError
 from changekind.tasks.fetch import SourceSpec, open_source
-from changekind.tasks.report import data
-from changekind.tasks.report.data import WrittenReport
+
+if TYPE_CHECKING:
+    from changekind.tasks.report.data import WrittenReport
 from changekind.tasks.timeaxis import parse_instant
 
 
@@ -32,26 +45,8 @@ def report(
         Path,
         typer.Option("--out", metavar="DIR", help="Folder for index.html and the pictures."),
     ] = Path("changekind-report"),
-    db: Annotated[
-        str | None,
-        typer.Option(
-            "--db",
-            metavar="URL",
-            help="Database the scans wrote to.  Default: $CHANGEKIND_DB_URL, else "
-            "sqlite:///changekind.db.",
-            show_default=False,
-        ),
-    ] = None,
-    source: Annotated[
-        str | None,
-        typer.Option(
-            "--source",
-            metavar="PATH",
-            help="Where the series live (Parquet, CSV or a SQL URL), as given to the scan.  "
-            "Default: $CHANGEKIND_SOURCE.",
-            show_default=False,
-        ),
-    ] = None,
+    db: DbOpt = None,
+    source: SourceOpt = None,
     run: Annotated[
         str | None,
         typer.Option(
@@ -61,54 +56,14 @@ def report(
             show_default=False,
         ),
     ] = None,
-    since: Annotated[
-        str | None,
-        typer.Option(
-            "--since",
-            metavar="T",
-            help="Only events at or after this time (ISO 8601; naive times are UTC).",
-            show_default=False,
-        ),
-    ] = None,
-    series: Annotated[
-        list[str] | None,
-        typer.Option(
-            "--series",
-            metavar="ID",
-            help="Only this series; repeat for several.",
-            show_default=False,
-        ),
-    ] = None,
-    table: Annotated[
-        str | None,
-        typer.Option(
-            "--table", metavar="T", help="SQL sources: the table to read.", show_default=False
-        ),
-    ] = None,
-    query: Annotated[
-        str | None,
-        typer.Option(
-            "--query", metavar="Q", help="SQL sources: a SELECT to read.", show_default=False
-        ),
-    ] = None,
-    series_column: Annotated[
-        str, typer.Option("--series-column", metavar="C", help="Source column of the series id.")
-    ] = "series_id",
-    timestamp_column: Annotated[
-        str, typer.Option("--timestamp-column", metavar="C", help="Source column of the timestamp.")
-    ] = "timestamp",
-    value_column: Annotated[
-        str, typer.Option("--value-column", metavar="C", help="Source column of the value.")
-    ] = "value",
-    timestamp_unit: Annotated[
-        str | None,
-        typer.Option(
-            "--timestamp-unit",
-            metavar="UNIT",
-            help="Numeric timestamps are epoch times in this unit (s, ms, us, ns).",
-            show_default=False,
-        ),
-    ] = None,
+    since: SinceOpt = None,
+    series: SeriesOpt = None,
+    table: TableOpt = None,
+    query: QueryOpt = None,
+    series_column: SeriesColOpt = None,
+    timestamp_column: TimeColOpt = None,
+    value_column: ValueColOpt = None,
+    timestamp_unit: TimestampUnitOpt = None,
     sort: Annotated[
         str,
         typer.Option(
@@ -140,7 +95,10 @@ def report(
     """Write an HTML report of stored events, one picture per event."""
 
     units = parse_units(unit or [])
-    settings = Settings()
+    try:
+        settings = env_settings()
+    except ChangekindError as exc:
+        raise fail_usage(str(exc)) from None
     db_url = db or settings.db_url
     location = source or settings.source
     if not location:
@@ -153,11 +111,7 @@ def report(
             parse_instant(since, what="--since")  # ISO 8601 only: '05/03/2030' is refused
         spec = open_source(
             location,
-            columns={
-                "series_id": series_column,
-                "timestamp": timestamp_column,
-                "value": value_column,
-            },
+            columns=column_map(series_column, timestamp_column, value_column) or None,
             table=table,
             query=query,
             timestamp_unit=timestamp_unit,
@@ -215,6 +169,10 @@ def write_stored_report(
     Used by ``changekind report`` and by the demo.  Damaged stored models are
     said on stderr (their events are drawn without them).
     """
+
+    # Deliberately here: the report loads matplotlib (about a second), which the
+    # other commands registered on the same app do not need.
+    from changekind.tasks.report import data
 
     err = err_console()
     # A progress bar on a terminal only; the same call either way.

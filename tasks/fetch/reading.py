@@ -16,7 +16,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from changekind.tasks.errors import ConfigError, SourceError
+from changekind.tasks.errors import ConfigError, SourceError, mask_url
 from changekind.tasks.fetch.arrow import _ArrowReader
 from changekind.tasks.fetch.files import _infer_kind
 from changekind.tasks.fetch.sql import _SqlReader
@@ -32,7 +32,6 @@ from changekind.tasks.fetch.values import (
     SourceSurvey,
     Span,
     _is_number,
-    _safe_url,
     _to_timedelta,
     _to_timestamp,
 )
@@ -114,7 +113,7 @@ def open_source(
             raise ConfigError("give a SQL table or a query, not both")
         if table is None and query is None:
             raise SourceError(
-                f"SQL source {_safe_url(text)} needs a table or a query; pass --table NAME "
+                f"SQL source {mask_url(text)} needs a table or a query; pass --table NAME "
                 "or --query 'SELECT ...'"
             )
         if query is not None:

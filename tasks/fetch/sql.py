@@ -13,7 +13,7 @@ import numpy as np
 import pandas as pd
 import sqlalchemy as sa
 
-from changekind.tasks.errors import SourceError
+from changekind.tasks.errors import SourceError, mask_url
 from changekind.tasks.fetch.arrow import _stored_bound
 from changekind.tasks.fetch.times import _Axis, _Group, _time_kind_of_text
 from changekind.tasks.fetch.values import (
@@ -24,7 +24,6 @@ from changekind.tasks.fetch.values import (
     SourceSpec,
     TimeKind,
     _is_number,
-    _safe_url,
 )
 from changekind.tasks.persist.engines import our_driver
 
@@ -92,7 +91,7 @@ class _SqlReader:
         except sa.exc.DBAPIError as exc:
             self.engine.dispose()
             raise SourceError(
-                f"cannot connect to {_safe_url(spec.location)} ({_db_message(exc)}); check the "
+                f"cannot connect to {mask_url(spec.location)} ({_db_message(exc)}); check the "
                 "URL and that the database server is running"
             ) from exc
         try:

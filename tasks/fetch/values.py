@@ -14,9 +14,8 @@ from typing import Literal, TypeVar
 
 import numpy as np
 import pandas as pd
-import sqlalchemy as sa
 
-from changekind.tasks.errors import ConfigError
+from changekind.tasks.errors import ConfigError, mask_url
 
 SourceKind = Literal["parquet", "csv", "sql"]
 TimeKind = Literal["datetime", "numeric", "text"]
@@ -239,7 +238,7 @@ class SourceSpec:
     def describe(self) -> str:
         """The source in words, for messages (passwords hidden)."""
         if self.kind == "sql":
-            where = _safe_url(self.location)
+            where = mask_url(self.location)
             if self.table is not None:
                 return f"SQL table {self.table!r} at {where}"
             return f"SQL query at {where}"
@@ -250,7 +249,7 @@ class SourceSpec:
         return f"{noun} file {self.location!r}"
 
     def __repr__(self) -> str:
-        location = _safe_url(self.location) if self.kind == "sql" else self.location
+        location = mask_url(self.location) if self.kind == "sql" else self.location
         parts = [f"kind={self.kind!r}", f"location={location!r}", f"columns={self.columns!r}"]
         for name in ("table", "query", "timestamp_unit"):
             if getattr(self, name) is not None:
@@ -291,10 +290,3 @@ class SourceSurvey:
 
 MAX_ROWS_NAMED = 10
 """Most row numbers one problem lists (the count says how many there are)."""
-
-
-def _safe_url(url: str) -> str:
-    try:
-        return sa.make_url(url).render_as_string(hide_password=True)
-    except (sa.exc.ArgumentError, ValueError):
-        return "<unparseable URL>"

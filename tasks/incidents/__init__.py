@@ -35,7 +35,9 @@ quantity and direction over the ``BACKGROUND_BINS`` bins of the window of
 ``BACKGROUND_SAMPLES`` samples either side (a median, so that the burst itself,
 filling less than half of the window, does not count as background; bins
 outside the observed record, such as the future of the newest scan, are left
-out rather than counted as empty).  Core events that
+out rather than counted as empty, and so are the bins that overlap the event's
+own reach, where its neighbours are counted: the burst under test is not its
+own background).  Core events that
 are neighbours are in one group (a chain A-B-C of core events is one incident
 even when A and C are far apart: a rollout moves controller after controller);
 an event that is not core joins the group of its nearest core neighbour.  In a

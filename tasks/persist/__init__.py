@@ -139,3 +139,7 @@ __all__ = [
     "write_batch",
     "write_events",
 ]
+
+# The tables of series attributes and fleet incidents live on the same MetaData
+# (changekind.tasks.incident_store); importing it here registers them.
+from changekind.tasks import incident_store as _incident_store  # noqa: F401

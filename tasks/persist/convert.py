@@ -16,7 +16,7 @@ import pandas as pd
 import sqlalchemy as sa
 from sqlalchemy.dialects import postgresql as pg_dialect
 from sqlalchemy.dialects import sqlite as sqlite_dialect
-from sqlalchemy.engine import URL, Connection
+from sqlalchemy.engine import Connection
 
 from changekind.tasks.errors import (
     ConfigError,
@@ -110,10 +110,6 @@ def _one_of(value: object, allowed: Sequence[str], what: str) -> str:
 def _chunks(items: Sequence[Any], size: int = _CHUNK) -> Iterator[Sequence[Any]]:
     for start in range(0, len(items), size):
         yield items[start : start + size]
-
-
-def _masked(url: URL) -> str:
-    return url.render_as_string(hide_password=True)
 
 
 # --------------------------------------------------------------------------- upsert

@@ -18,8 +18,9 @@ from sqlalchemy.exc import ArgumentError, DBAPIError, NoSuchModuleError
 from changekind.tasks.errors import (
     ConfigError,
     DatabaseUnavailableError,
+    mask_url,
 )
-from changekind.tasks.persist.convert import _INSERTS, _masked
+from changekind.tasks.persist.convert import _INSERTS
 from changekind.tasks.persist.schema import (
     CONNECT_TIMEOUT_SECONDS,
     DEFAULT_URL,
@@ -60,7 +61,7 @@ def _parse_url(url: str | URL) -> URL:
     backend = parsed.get_backend_name()
     if backend not in _INSERTS:
         raise ConfigError(
-            f"database {_masked(parsed)!r} uses {backend!r}; changekind supports "
+            f"database {mask_url(parsed)!r} uses {backend!r}; changekind supports "
             "sqlite and postgresql URLs only"
         )
     return parsed
@@ -109,12 +110,12 @@ def connect(url: str | URL = DEFAULT_URL, *, timeout: float = CONNECT_TIMEOUT_SE
         engine = sa.create_engine(parsed, **_engine_options(parsed, timeout))
     except (NoSuchModuleError, ImportError) as exc:
         raise ConfigError(
-            f"database {_masked(parsed)!r} needs a driver that is not installed ({exc}); "
+            f"database {mask_url(parsed)!r} needs a driver that is not installed ({exc}); "
             "for PostgreSQL install psycopg 3 (pip install 'changekind[postgres]') and "
             "use a postgresql+psycopg:// URL"
         ) from None
     except (ArgumentError, TypeError) as exc:
-        raise ConfigError(f"database URL {_masked(parsed)!r} is not usable: {exc}") from None
+        raise ConfigError(f"database URL {mask_url(parsed)!r} is not usable: {exc}") from None
     try:
         with engine.connect():
             pass
@@ -128,7 +129,7 @@ def connect(url: str | URL = DEFAULT_URL, *, timeout: float = CONNECT_TIMEOUT_SE
                 "and user exist, or give another URL"
             )
         raise DatabaseUnavailableError(
-            f"cannot open database {_masked(parsed)!r}: {_first_line(exc)}; {hint}"
+            f"cannot open database {mask_url(parsed)!r}: {_first_line(exc)}; {hint}"
         ) from None
     return engine
 

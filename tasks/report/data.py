@@ -23,7 +23,7 @@ import sqlalchemy as sa
 from sqlalchemy.exc import DBAPIError
 
 from changekind.tasks import persist
-from changekind.tasks.errors import ConfigError, ModelError, SeriesError, SourceError
+from changekind.tasks.errors import ConfigError, ModelError, SeriesError, SourceError, mask_url
 from changekind.tasks.fetch import SourceSpec, read_series
 from changekind.tasks.report.files import PICTURE_PATTERN, write_report
 from changekind.tasks.report.order import DEFAULT_SORT, SORT_ORDERS
@@ -41,7 +41,6 @@ from changekind.tasks.window import summarize_windows
 __all__ = [
     "WrittenReport",
     "build_views",
-    "masked_url",
     "read_selected_events",
     "stored_models",
     "unit_of",
@@ -64,6 +63,8 @@ class WrittenReport:
     drawn: int
     problems: tuple[tuple[str, str], ...] = ()
     n_hidden: int = 0
+    n_incidents: int = 0
+    incidents_page: Path | None = None
 
 
 def write_stored_report(
@@ -140,13 +141,27 @@ def write_stored_report(
     else:
         hidden = "listed last"
     facts = [
-        ("database", masked_url(db)),
+        ("database", mask_url(db)),
         ("source", spec.describe),
         ("selection", "; ".join(s for s in selection if s) or "all stored events"),
         ("order", SORT_ORDERS[sort].words),
         ("dismissed events", hidden),
     ]
-    index = write_report(Path(out), views, facts=facts, sort=sort, on_progress=on_progress)
+    keys = {event_key(e) for e in events}
+    whole = run is None and not series
+    labels = _stored_labels(db)
+    incidents, page = _write_incidents(
+        db, spec, Path(out), since=since, keep=None if whole else keys, facts=facts, labels=labels
+    )
+    index = write_report(
+        Path(out),
+        views,
+        facts=facts,
+        sort=sort,
+        on_progress=on_progress,
+        incidents_page=None if page is None else page.name,
+        labels=labels,
+    )
     drawn = sum(1 for _ in index.parent.glob(PICTURE_PATTERN))
     return WrittenReport(
         index=index,
@@ -155,17 +170,54 @@ def write_stored_report(
         drawn=drawn,
         problems=tuple(sorted(problems.items())),
         n_hidden=n_hidden,
+        n_incidents=incidents,
+        incidents_page=page,
     )
 
 
-def masked_url(db: str) -> str:
-    """The database URL with its password hidden."""
+def _stored_labels(db: str) -> dict[str, dict[str, str | None]]:
+    """The series' attributes (none for a database from before them)."""
+    from changekind.tasks import incident_store
+
     try:
-        return sa.make_url(db).render_as_string(hide_password=True)
-    except Exception:  # an unreadable URL is reported by persist with its own message
-        return db
+        return incident_store.read_labels(db)
+    except DBAPIError:
+        return {}
 
 
+def _write_incidents(
+    db: str,
+    spec: SourceSpec,
+    out: Path,
+    *,
+    since: str | None,
+    keep: set[tuple[str, str]] | None,
+    facts: Sequence[tuple[str, str]],
+    labels: Mapping[str, Mapping[str, str | None]],
+) -> tuple[int, Path | None]:
+    """The incidents page beside the events' page (incidents with a selected member,
+    or all since ``since``); no page when there is no incident."""
+    from changekind.tasks import incident_store
+    from changekind.tasks.report.incidents import read_member_series, write_incident_report
+
+    try:
+        found = incident_store.read_incidents(db, since=since)
+        states = incident_store.incident_states(db)
+    except DBAPIError:  # a database from before the incidents (it is migrated by any scan)
+        return 0, None
+    if keep is not None:
+        found = [i for i in found if i.member_keys & keep]
+    if not found:
+        return 0, None
+    steps = {
+        sid: m.step_seconds or 0.0
+        for sid, m in stored_models(db, sorted({s for i in found for s in i.series_ids}))[0].items()
+    }
+    series = read_member_series(spec, found, steps)
+    page = write_incident_report(
+        out, found, series, labels=labels, states=states, facts=list(facts)
+    )
+    return len(found), page
 def _check_sqlite_file(db: str) -> None:
     """A report never creates a database: a SQLite file that is not there is an error."""
     try:
@@ -188,7 +240,7 @@ def _read_events(db: str, **selection) -> pd.DataFrame:
     except DBAPIError as exc:
         first = str(getattr(exc, "orig", exc)).splitlines()[0]
         raise SourceError(
-            f"cannot read events from {masked_url(db)} ({first}); is it the database of a "
+            f"cannot read events from {mask_url(db)} ({first}); is it the database of a "
             "changekind scan? run a scan first or give another --db"
         ) from None
 

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import re
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from datetime import UTC, datetime
 from pathlib import Path
 
@@ -37,6 +37,8 @@ def write_report(
     sort: str = DEFAULT_SORT,
     dpi: int = FIGURE_DPI,
     on_progress: Callable[[int, int], None] | None = None,
+    incidents_page: str | None = None,
+    labels: Mapping[str, Mapping[str, str | None]] | None = None,
 ) -> Path:
     """Draw every event's picture and write ``index.html`` beside them.
 
@@ -56,6 +58,10 @@ def write_report(
     dpi : int, default=100
     on_progress : callable, optional
         Called with (done, total) after each picture.
+    incidents_page : str, optional
+        The incidents page beside it (linked from the page).
+    labels : mapping of series_id to {label: value}, optional
+        The series' attributes, shown with their events.
 
     Returns
     -------
@@ -123,6 +129,8 @@ def write_report(
         facts=(*facts, ("made", made)),
         notes=notes,
         verdicts=verdicts,
+        incidents_page=incidents_page,
+        labels=labels,
     )
     index = out / INDEX_NAME
     try:

@@ -25,8 +25,8 @@ from changekind.tasks.report.style import (
     VERDICT_COLOURS,
 )
 from changekind.tasks.report.views import EventKey, Verdict, event_key
-from changekind.tasks.report.words import describe_event, number, type_name
-from changekind.tasks.types import REPORTED_TYPES, Event
+from changekind.tasks.report.words import describe_event, type_name
+from changekind.tasks.types import REPORTED_TYPES, Event, number
 
 __all__ = ["PAGE_TEMPLATE", "render_report"]
 
@@ -45,6 +45,7 @@ class _Row:
     verdict: Verdict | None
     alt: str
     words: tuple[str, ...]
+    labels: tuple[tuple[str, str | None], ...] = ()
 
 
 def _environment() -> Environment:
@@ -70,6 +71,8 @@ def render_report(
     facts: Sequence[tuple[str, str]] = (),
     notes: Mapping[EventKey, str] | None = None,
     verdicts: Mapping[EventKey, Verdict] | None = None,
+    incidents_page: str | None = None,
+    labels: Mapping[str, Mapping[str, str | None]] | None = None,
 ) -> str:
     """The report page as one self-contained HTML document.
 
@@ -89,6 +92,10 @@ def render_report(
         Why an event has no picture.
     verdicts : mapping of (series_id, event_time) to Verdict, optional
         People's verdicts on the events, shown in a column and with each event.
+    incidents_page : str, optional
+        Relative path of the incidents page, linked from the page when given.
+    labels : mapping of series_id to {label: value}, optional
+        The series' attributes, shown with each of its events.
 
     Returns
     -------
@@ -121,6 +128,7 @@ def render_report(
                     "facts and type weights"
                 ),
                 words=tuple(describe_event(e)),
+                labels=tuple(sorted((labels or {}).get(e.series_id, {}).items())),
             )
         )
     page = _environment().get_template(PAGE_TEMPLATE)
@@ -135,5 +143,6 @@ def render_report(
         fallback=FALLBACK_STYLE,
         colours=PAGE_COLOURS,
         verdict_colours=VERDICT_COLOURS,
+        incidents_page=incidents_page,
         picture_size=(int(FIGURE_SIZE[0] * FIGURE_DPI), int(FIGURE_SIZE[1] * FIGURE_DPI)),
     )

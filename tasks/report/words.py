@@ -5,24 +5,16 @@ from __future__ import annotations
 import math
 
 from changekind.tasks.report.views import Verdict
-from changekind.tasks.types import EVENT_NAMES, Event, FittedModel, format_duration
+from changekind.tasks.types import EVENT_NAMES, Event, FittedModel, format_duration, number
 
 __all__ = [
     "axis_label",
     "describe_event",
     "half_life_text",
-    "number",
     "shorten_middle",
     "type_name",
     "verdict_line",
 ]
-
-
-def number(value: float | None, fmt: str) -> str:
-    """``value`` formatted, or ``-`` when it is missing or not finite."""
-    if value is None or not math.isfinite(value):
-        return "-"
-    return format(value, fmt)
 
 
 def type_name(kind: str) -> str:

@@ -63,6 +63,7 @@ Options: ``--replications``, ``--clean``, ``--jobs``, ``--models``, ``--types``,
 from __future__ import annotations
 
 import argparse
+import itertools
 import math
 import multiprocessing
 import sys
@@ -82,6 +83,7 @@ from tests.benchmarks.baselines import band_events, esd_events, oracle_fit, orac
 from tests.benchmarks.simulate import (
     BASE_SEED,
     EVENT_TYPES,
+    INNOVATIONS,
     MODEL_NAMES,
     MODELS,
     N_POINTS,
@@ -724,6 +726,56 @@ def format_errors(
     return "\n".join(lines[:limit]) + more
 
 
+CALIBRATION_BINS = (0.25, 0.4, 0.5, 0.6, 0.7, 0.8, 0.9, 0.95, 1.0001)
+"""Bins of the reported type's weight (the largest of four, so at least 0.25)."""
+
+
+def calibration(outcomes: Sequence[SeriesOutcome]) -> tuple[list[tuple], float, int]:
+    """Reliability of the engine's type weights and their expected calibration error.
+
+    Over injected series with a matched event: confidence = the reported
+    type's weight, correct = the reported type is the true type.  Returns rows
+    (low, high, count, mean confidence, accuracy), the ECE (sum over bins of
+    count / N * |accuracy - mean confidence|) and N.
+    """
+    conf, hit = [], []
+    for o in outcomes:
+        if o.key.event_type is None:
+            continue
+        d = match(o, ENGINE)
+        if d is None or d.type_weights is None:
+            continue
+        weights = dict(d.type_weights)
+        conf.append(weights.get(str(d.event_type), max(weights.values())))
+        hit.append(d.event_type == o.key.event_type)
+    c, h = np.asarray(conf), np.asarray(hit, dtype=float)
+    rows, ece = [], 0.0
+    for lo, hi in itertools.pairwise(CALIBRATION_BINS):
+        sel = (c >= lo) & (c < hi)
+        if sel.any():
+            mc, acc = float(c[sel].mean()), float(h[sel].mean())
+            rows.append((lo, min(hi, 1.0), int(sel.sum()), mc, acc))
+            ece += sel.sum() / c.size * abs(acc - mc)
+    return rows, (ece if c.size else math.nan), int(c.size)
+
+
+def _laws(outcomes: Sequence[SeriesOutcome]) -> str:
+    return "+".join(sorted({o.key.law for o in outcomes})) or "no"
+
+
+def format_calibration(outcomes: Sequence[SeriesOutcome]) -> str:
+    rows, ece, total = calibration(outcomes)
+    lines = [
+        "| reported type's weight | events | mean weight | share right |",
+        "|---|---|---|---|",
+    ]
+    for lo, hi, count, mc, acc in rows:
+        lines.append(f"| [{lo:.2f}, {hi:.2f}) | {count} | {mc:.3f} | {acc:.3f} |")
+    lines.append("")
+    lines.append(f"Expected calibration error over {total} matched events: {_f(ece, 3)} (≤ 0.05)")
+    return "\n".join(lines)
+
+
 def report(
     outcomes: Sequence[SeriesOutcome],
     methods: Sequence[str],
@@ -734,7 +786,8 @@ def report(
 ) -> str:
     """Every table of the study as one markdown text."""
     parts = [
-        f"## Monte Carlo study: {len(outcomes)} series, wall {wall:.1f} s on {jobs} job(s)",
+        f"## Monte Carlo study: {len(outcomes)} series ({_laws(outcomes)} innovations), "
+        f"wall {wall:.1f} s on {jobs} job(s)",
         "",
         "Recall: an event within ±2 positions of the true time. RMSE of effect − ω over "
         "correctly typed recalled events; oracle RMSE over the same series (statsmodels "
@@ -758,6 +811,10 @@ def report(
             "### Engine type confusion (all models and sizes)",
             "",
             format_confusion(outcomes),
+            "",
+            "### Calibration of the type weights (all models and sizes)",
+            "",
+            format_calibration(outcomes),
         ]
     typed = [o for o in outcomes if o.oracle_type_known is not None]
     if typed:
@@ -817,6 +874,12 @@ def _parse(argv: Sequence[str] | None) -> argparse.Namespace:
     p.add_argument("--n", type=int, default=N_POINTS, help="points per series (default 480)")
     p.add_argument("--seed", type=int, default=BASE_SEED, help="study seed")
     p.add_argument(
+        "--innovations",
+        choices=INNOVATIONS,
+        default="gauss",
+        help="innovation law: gauss, or t3 (Student t(3) scaled to unit variance)",
+    )
+    p.add_argument(
         "--critical",
         type=float,
         default=None,
@@ -854,6 +917,7 @@ def main(argv: Sequence[str] | None = None) -> int:
             sizes=args.sizes,
             replications=args.replications,
             clean_replications=args.clean,
+            law=args.innovations,
         )
     )
     start = time.perf_counter()

@@ -171,14 +171,30 @@ def unit_regressor(event_type: str, n: int, position: int, *, model: ModelSpec) 
     return out
 
 
-def simulate_process(model: ModelSpec, n: int, rng: np.random.Generator) -> np.ndarray:
+INNOVATIONS: tuple[str, ...] = ("gauss", "t3")
+"""Innovation laws: Gaussian, and Student t with 3 degrees of freedom scaled
+to unit variance (t_3 / sqrt(3)), the heavy tails of latency-like metrics."""
+
+
+def innovations(law: str, size: int, rng: np.random.Generator) -> np.ndarray:
+    """Unit-variance innovations of ``law`` (one of ``INNOVATIONS``)."""
+    if law == "gauss":
+        return rng.standard_normal(size)
+    if law == "t3":
+        return rng.standard_t(3, size) / np.sqrt(3.0)
+    raise ValueError(f"unknown innovations {law!r}; use one of {', '.join(INNOVATIONS)}")
+
+
+def simulate_process(
+    model: ModelSpec, n: int, rng: np.random.Generator, *, law: str = "gauss"
+) -> np.ndarray:
     """One path of the model's ARIMA process (no profile, no event), sd-1 innovations.
 
     Stationary models start from a burn-in of ``BURN_IN`` points and sit around
     ``LEVEL``; the integrated model's differences get the same burn-in and its
-    level starts at ``LEVEL``.
+    level starts at ``LEVEL``.  ``law`` picks the innovations (``INNOVATIONS``).
     """
-    e = rng.standard_normal(n + BURN_IN)
+    e = innovations(law, n + BURN_IN, rng)
     if model.d == 0:
         x = lfilter(model.ma_poly, np.r_[1.0, -np.asarray(model.ar, dtype=float)], e)
         return LEVEL + x[BURN_IN:]
@@ -235,6 +251,7 @@ def make_series(
     *,
     n: int = N_POINTS,
     base_seed: int = BASE_SEED,
+    law: str = "gauss",
 ) -> SimulatedSeries:
     """Simulate one series with one event (or none).
 
@@ -252,6 +269,8 @@ def make_series(
         Length; hourly timestamps from ``START``.
     base_seed : int, default=BASE_SEED
         Study seed.
+    law : str, default="gauss"
+        Innovations: ``"gauss"`` or ``"t3"`` (unit-variance Student t(3)).
 
     Notes
     -----
@@ -267,7 +286,7 @@ def make_series(
     )
     rng = np.random.default_rng(list(seed))
     # Step 2
-    x = simulate_process(spec, n, rng)
+    x = simulate_process(spec, n, rng, law=law)
     # Step 3 (drawn for clean series too, so the stream is the same shape)
     position = int(rng.integers(int(0.2 * n), int(0.8 * n) + 1))
     sign = 1.0 if rng.random() < 0.5 else -1.0
@@ -283,6 +302,8 @@ def make_series(
     else:
         profile = np.zeros(n)
     tag = "clean" if event_type is None else f"{event_type}{size:g}"
+    if law != "gauss":
+        tag += f"-{law}"
     return SimulatedSeries(
         series_id=f"{model}-{tag}-r{replicate:03d}",
         model=model,
@@ -306,10 +327,17 @@ class SeriesKey:
     event_type: str | None
     size: float
     replicate: int
+    law: str = "gauss"
 
     def build(self, *, n: int = N_POINTS, base_seed: int = BASE_SEED) -> SimulatedSeries:
         return make_series(
-            self.model, self.event_type, self.size, self.replicate, n=n, base_seed=base_seed
+            self.model,
+            self.event_type,
+            self.size,
+            self.replicate,
+            n=n,
+            base_seed=base_seed,
+            law=self.law,
         )
 
 
@@ -320,6 +348,7 @@ def study_keys(
     sizes: Sequence[float] = SIZES,
     replications: int = 25,
     clean_replications: int | None = None,
+    law: str = "gauss",
 ) -> Iterator[SeriesKey]:
     """Every series of a study: each (model, type, size) cell, then the clean series per model."""
     clean = replications if clean_replications is None else clean_replications
@@ -327,6 +356,6 @@ def study_keys(
         for event_type in types:
             for size in sizes:
                 for r in range(replications):
-                    yield SeriesKey(model, event_type, float(size), r)
+                    yield SeriesKey(model, event_type, float(size), r, law)
         for r in range(clean):
-            yield SeriesKey(model, None, 0.0, r)
+            yield SeriesKey(model, None, 0.0, r, law)

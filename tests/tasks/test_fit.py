@@ -149,3 +149,19 @@ def test_pi_weights_and_the_filter_equal_scipy_lfilter(params, order):
     assert_allclose(pi_weights(model, 2), lfilter(ar, ma, impulse[:2]), rtol=0, atol=1e-15)
     x = np.random.default_rng(5).normal(size=60)
     assert_allclose(linear_filter(ar, ma, x), lfilter(ar, ma, x), rtol=0, atol=1e-12)
+
+
+@pytest.mark.filterwarnings("ignore")  # statsmodels' kpss warns when p leaves its table
+def test_kpss_statistic_equals_statsmodels():
+    # Oracle: statsmodels.tsa.stattools.kpss(regression="c", nlags="auto").
+    from statsmodels.tsa.stattools import kpss
+
+    from changekind.tasks.fit import kpss_stat
+
+    rng = np.random.default_rng(17)
+    for z in (
+        rng.normal(size=300),
+        np.cumsum(rng.normal(size=300)),
+        np.r_[rng.normal(size=150), rng.normal(size=150) + 5],
+    ):
+        assert_allclose(kpss_stat(z), kpss(z, regression="c", nlags="auto")[0], rtol=1e-10)

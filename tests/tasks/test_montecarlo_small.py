@@ -360,3 +360,35 @@ def test_engine_effect_rmse_against_oracle(small_study) -> None:
     rmse = float(np.sqrt(np.mean(np.square(err_engine))))
     oracle = float(np.sqrt(np.mean(np.square(err_oracle))))
     assert rmse <= 1.6 * oracle, (rmse, oracle)
+
+
+def test_student_t_innovations_have_unit_variance_and_heavy_tails():
+    # Reference: scipy.stats.t(3) scaled by 1/sqrt(3) has variance 1 and
+    # P(|x| > 4) = 2 * t3.sf(4 sqrt(3)), about 0.0046 (Gaussian: 6e-5).
+    from scipy import stats
+
+    from tests.benchmarks.simulate import innovations
+
+    x = innovations("t3", 400_000, np.random.default_rng(3))
+    assert_allclose(np.var(x), 1.0, atol=0.05)
+    assert_allclose(np.mean(np.abs(x) > 4), 2 * stats.t.sf(4 * np.sqrt(3), 3), rtol=0.1)
+    with pytest.raises(ValueError, match="innovations"):
+        innovations("cauchy", 3, np.random.default_rng(0))
+
+
+def test_calibration_table_and_its_error():
+    from tests.benchmarks.montecarlo import Detection, MethodRun, SeriesOutcome, calibration
+    from tests.benchmarks.simulate import SeriesKey
+
+    def outcome(true: str, called: str, weight: float) -> SeriesOutcome:
+        weights = tuple((k, weight if k == called else (1 - weight) / 3) for k in EVENT_TYPES)
+        run = MethodRun((Detection(100, called, 1.0, 5.0, weights),), 0.0)
+        return SeriesOutcome(SeriesKey("ar1", true, 5.0, 0), "s", 480, 100, 5.0, {"engine": run})
+
+    # Ten events at weight 0.95, nine right; ten at 0.55, five right.
+    outcomes = [outcome("AO", "AO", 0.95)] * 9 + [outcome("LS", "AO", 0.95)]
+    outcomes += [outcome("TC", "TC", 0.55)] * 5 + [outcome("IO", "TC", 0.55)] * 5
+    rows, ece, total = calibration(outcomes)
+    assert total == 20
+    assert [(r[2], round(r[4], 3)) for r in rows] == [(10, 0.5), (10, 0.9)]
+    assert_allclose(ece, 0.5 * abs(0.5 - 0.55) + 0.5 * abs(0.9 - 0.95))

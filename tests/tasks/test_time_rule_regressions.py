@@ -237,11 +237,6 @@ def test_times_beyond_the_nanosecond_range_are_refused():
         regularize("s", text, np.random.default_rng(0).normal(size=30))
 
 
-@fails_today(
-    TypeError,
-    "flows.scan.split_span compares an aware start with a naive end: pandas' "
-    "TypeError instead of the naive end read as UTC",
-)
 def test_a_backfill_span_may_mix_a_zoned_start_and_a_naive_end():
     from changekind.flows.scan import split_span
 
@@ -252,10 +247,6 @@ def test_a_backfill_span_may_mix_a_zoned_start_and_a_naive_end():
     ]
 
 
-@fails_today(
-    pytest.fail.Exception,
-    "flows.scan.split_span reads '05/03/2030' with pd.Timestamp (as 3 May)",
-)
 def test_a_backfill_span_in_an_ambiguous_form_is_refused():
     from changekind.flows.scan import split_span
 

@@ -557,3 +557,45 @@ def test_detect_helpers_for_the_command_line(raw):
     bad = SeriesInput("numbered", pd.Index(np.arange(600.0)), np.ones(600))
     failed = cli_window.analyse_windowed_one(bad, "1min", None, None)
     assert not failed.ok and failed.problem.startswith("timestamps are plain numbers")
+
+
+def test_a_spike_inside_a_window_is_an_ao_naming_the_window():
+    # A 13-sigma single-point spike in a day of 1 s AR(1) points barely moves
+    # its 1-minute window's median; the window's extreme against the spread
+    # around it (normalized MADs, which one spike does not move) finds it.
+    from scipy.signal import lfilter
+
+    from changekind.tasks.window import detect_windowed, extreme_windows, summarize_windows
+
+    rng = np.random.default_rng(1)
+    n = 86_400
+    stamps = pd.date_range("2026-03-01", periods=n, freq="s")
+    y = 50 + lfilter([1.0], [1.0, -0.5], rng.normal(size=n))
+    sd = 1 / np.sqrt(1 - 0.25)  # the AR(1)'s standard deviation
+    y[40_000] += 13 * sd
+    result = detect_windowed("s", stamps, y, "1min")
+    spikes = [e for e in result.events if e.window_start == "2026-03-01T11:06:00"]
+    assert len(spikes) == 1 and spikes[0].event_type == "AO"
+    assert spikes[0].window_end == "2026-03-01T11:07:00"
+    assert abs(spikes[0].effect - (y[40_000] - np.median(y[39_960:40_020]))) < 1e-9
+    assert 10 < spikes[0].t_stat < 16 and spikes[0].weights["AO"] == 1.0
+    # On the same series without the spike no window extreme clears the line.
+    y[40_000] -= 13 * sd
+    assert extreme_windows(summarize_windows("s", stamps, y, "1min")) == []
+
+
+def test_drill_marks_the_extreme_point_of_each_window():
+    from changekind.tasks.window import _extreme_rows
+
+    values = np.array([1.0, 1.2, 9.0, 0.9, 5.0, 5.1, 4.0, np.nan])
+    offset = np.array([0, 0, 0, 0, 1, 1, 1, 1])
+    assert _extreme_rows(values, offset).tolist() == [
+        False,
+        False,
+        True,
+        False,
+        False,
+        False,
+        True,
+        False,
+    ]

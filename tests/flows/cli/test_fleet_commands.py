@@ -229,7 +229,8 @@ def test_events_json_and_csv_hold_what_is_stored(scanned):
     assert as_json.exit_code == 0, as_json.stderr
     records = json.loads(as_json.stdout)
     assert len(records) == len(stored)
-    assert all(list(r) == RECORD_FIELDS for r in records)
+    # The contract's fields, then the series' attributes (none in this fleet).
+    assert all(list(r) == [*RECORD_FIELDS, "labels"] and r["labels"] == {} for r in records)
     for rec, (_, row) in zip(records, stored.iterrows(), strict=True):
         assert (rec["series_id"], rec["event_time"]) == (row["series_id"], row["event_time"])
         np.testing.assert_allclose(rec["t_stat"], row["t_stat"], rtol=0)
@@ -477,6 +478,12 @@ def test_demo_runs_the_pipeline_and_scores_the_stored_events(prefect_server, tmp
     assert [r["event_time"] for r in records] == stored["event_time"].tolist()
     assert f"changekind events --db {db} --json" in result.stdout
     assert "open_level_shifts" in result.stdout and "daily_event_counts" in result.stdout
+    # Incidents: incidents.json is what `changekind incidents --json` prints; one
+    # controller of five is on the rollout here (one series: no incident of its own).
+    listed = _invoke("incidents", "--db", db, "--json")
+    assert listed.exit_code == 0, listed.stderr
+    assert json.loads((out / "incidents.json").read_text()) == json.loads(listed.stdout)
+    assert "The injected firmware rollout: " in result.stdout
 
     # The report of the demo run: every stored event has its picture, so every
     # injected event the pipeline found is drawn (score.matches pairs them).

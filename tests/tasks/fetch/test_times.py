@@ -1,10 +1,6 @@
 """Timestamp types and zones as the readers hand them on (tasks/fetch/times.py).
 
-Checked row for row against pandas filtering the same in-memory frame the
-sources were written from (pandas is the oracle: boolean masks on
-``series_id`` and on UTC timestamps, then a sort).  The data is an invented
-fleet of pumps on a water network, hourly, starting 2031-05-01
-(``tests/tasks/fetch/sources.py``).
+Reference: pandas as the oracle (see this package's ``__init__``).
 """
 
 from __future__ import annotations

@@ -20,9 +20,11 @@ from changekind.tasks.persist import (
 from changekind.tasks.types import Event, FittedModel
 
 T0 = datetime(2024, 3, 1, 12, 0, tzinfo=UTC)
-INITIAL_VIEW_NAMES = {"open_level_shifts", "daily_event_counts", "events_needing_triage"}
-"""The views of revisions 0001 to 0006."""
-VIEW_NAMES = INITIAL_VIEW_NAMES | {"events_by_verdict", "level_shifts_in_force"}
+VIEWS_0001 = {"open_level_shifts", "daily_event_counts", "events_needing_triage"}
+INITIAL_VIEW_NAMES = VIEWS_0001
+"""The views of revisions 0001 to 0004."""
+VIEWS_0005 = VIEWS_0001 | {"open_incidents", "event_labels"}
+VIEW_NAMES = VIEWS_0005 | {"events_by_verdict", "level_shifts_in_force"}
 """The views of the newest revision."""
 
 

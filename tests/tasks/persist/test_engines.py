@@ -1,9 +1,6 @@
 """URLs and connection errors (tasks/persist/engines.py).
 
-The reference is the input itself: what goes in must come back (bit for bit
-for floats); expected rows of the views are worked out by hand or by pandas
-from the same input, independently of the SQL.  Every test taking the
-``url``/``engine`` fixture runs on SQLite and on the real PostgreSQL server.
+Reference: the input itself (see this package's ``__init__``).
 """
 
 from __future__ import annotations

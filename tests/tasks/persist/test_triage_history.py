@@ -1,5 +1,5 @@
 """Triage history (tasks/persist/events.py set_triage, read_triage_history), migration
-0007 and the view ``events_by_verdict``.  The reference is the verdicts given, in
+0008 and the view ``events_by_verdict``.  The reference is the verdicts given, in
 order; runs on SQLite and on the real PostgreSQL server."""
 
 from __future__ import annotations
@@ -59,10 +59,10 @@ def test_events_by_verdict_lists_the_current_verdicts(engine: sa.Engine) -> None
     assert [tuple(r) for r in rows] == [("acknowledged", "a"), ("none", "b")]  # c retracted
 
 
-def test_migration_0007_copies_existing_verdicts_and_downgrades(url: str) -> None:
+def test_migration_0008_copies_existing_verdicts_and_downgrades(url: str) -> None:
     engine = persist.connect(url)
     try:
-        migrate(engine, revision="0006")
+        migrate(engine, revision="0007")
         with engine.begin() as conn:
             insert_legacy_event(conn)
             insert_legacy_event(conn, "2024-03-02T10:00:00Z")
@@ -84,7 +84,7 @@ def test_migration_0007_copies_existing_verdicts_and_downgrades(url: str) -> Non
         config.set_main_option("script_location", str(migrations_dir()))
         with engine.begin() as conn:
             config.attributes["connection"] = conn
-            command.downgrade(config, "0006")
+            command.downgrade(config, "0007")
         with engine.connect() as conn:
             inspector = sa.inspect(conn)
             assert "triage_history" not in inspector.get_table_names()

@@ -45,9 +45,9 @@ def test_importing_every_report_module_does_not_load_prefect():
 def test_the_flows_run_the_report_as_a_prefect_task():
     from prefect import Task
 
-    from changekind.flows.steps import write_stored_report_task
+    from changekind.flows.steps import write_report_task
     from changekind.tasks.report import data
 
-    assert isinstance(write_stored_report_task, Task)
-    assert write_stored_report_task.fn is data.write_stored_report
-    assert write_stored_report_task.name == "write-report"
+    assert isinstance(write_report_task, Task)
+    assert write_report_task.fn is data.write_stored_report
+    assert write_report_task.name == "write-report"

@@ -1,4 +1,4 @@
-"""Migration 0006: ``series_events.half_life`` from readable text to a number.
+"""Migration 0007: ``series_events.half_life`` from readable text to a number.
 
 The reference is unit arithmetic done by hand: 1.94 h = 1.94 * 3600 s =
 6984 s, 17.5 min = 1050 s, 250 ms = 0.25 s, 3.2 d = 276480 s; an index-unit
@@ -132,6 +132,6 @@ def test_half_life_texts_become_seconds_and_come_back(url: str) -> None:
     [("1.11 h", 3996.0), ("42 s", 42.0), ("2 h", 7200.0), ("inf", None), ("1.5e+03 s", 1500.0)],
 )
 def test_half_life_text_reader(text: str, seconds: float | None) -> None:
-    module = load_migration("0006_half_life_seconds.py")
+    module = load_migration("0007_half_life_seconds.py")
     got = module.half_life_seconds(text)
     assert got == (None if seconds is None else pytest.approx(seconds))

@@ -1,7 +1,7 @@
 """``series_events.half_life`` as a number: seconds (index units on numeric grids).
 
-Revision ID: 0006
-Revises: 0004
+Revision ID: 0007
+Revises: 0005
 Create Date: 2026-12-05 00:00:00
 
 Until now the half-life of a temporary change was stored as readable text
@@ -12,7 +12,7 @@ a text that is none of these becomes NULL.  The views select from
 ``series_events`` (PostgreSQL ties them to the column's type, SQLite checks
 them when the table is copied), so they are dropped first and created again
 from their source text, unchanged (SQLite keeps that text; on PostgreSQL it
-is the initial revision's).  The downgrade writes the numbers back
+is the revisions' that created them).  The downgrade writes the numbers back
 as the texts the engine used to write (3 significant digits).
 """
 
@@ -28,8 +28,8 @@ from types import ModuleType
 import sqlalchemy as sa
 from alembic import op
 
-revision: str = "0006"
-down_revision: str | Sequence[str] | None = "0004"
+revision: str = "0007"
+down_revision: str | Sequence[str] | None = "0005"
 branch_labels: str | Sequence[str] | None = None
 depends_on: str | Sequence[str] | None = None
 
@@ -76,20 +76,21 @@ def _views() -> list[tuple[str, str]]:
         ).all()
         return [(name, sql) for name, sql in rows]
     # PostgreSQL keeps a view with its '*' expanded: build it again from its source
-    # text, so it reads the table as it is now (the initial revision holds that text).
+    # text, so it reads the table as it is now (the revisions that made them hold it).
     names = bind.execute(
         sa.text("SELECT viewname FROM pg_views WHERE schemaname = current_schema()")
     ).scalars()
     source = {
         re.search(r"CREATE VIEW (\w+)", sql).group(1): sql  # type: ignore[union-attr]
-        for sql in _initial().view_statements("postgresql")
+        for name in ("0001_initial_schema.py", "0005_series_labels_and_incidents.py")
+        for sql in _revision(name).view_statements("postgresql")
     }
     return [(name, source[name]) for name in sorted(names)]
 
 
-def _initial() -> ModuleType:
-    path = Path(__file__).with_name("0001_initial_schema.py")
-    spec = importlib.util.spec_from_file_location("changekind_migration_0001", path)
+def _revision(name: str) -> ModuleType:
+    path = Path(__file__).with_name(name)
+    spec = importlib.util.spec_from_file_location(f"changekind_migration_{path.stem}", path)
     assert spec is not None and spec.loader is not None
     module = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(module)
