@@ -43,7 +43,7 @@ def to_event(
         type_weights=tuple((k, round(weights[k], 4)) for k in SEARCHED),
         status="provisional" if after < settle else "confirmed",
         decay=round(delta, 4) if decays and delta is not None else None,
-        half_life=_half_life(series, half_steps),
+        half_life=_half_life(series, round(delta, 4) if decays and delta else None),
         level=round_sig(level),
         model=model.spec(),
         effect_sigma=round_sig(abs(c.omega) / model.sigma) if model.sigma2 > 0 else None,
@@ -59,8 +59,12 @@ def _local_level(values: np.ndarray, T: int, window: int = 24) -> float:
     return float(np.median(before)) if before.size else float("nan")
 
 
-def _half_life(series: RegularSeries, steps: float | None) -> float | None:
-    """Seconds (date-time grid) or index units (numeric grid)."""
-    if steps is None:
+def _half_life(series: RegularSeries, decay: float | None) -> float | None:
+    """Seconds (date-time grid) or index units (numeric grid) from the stored decay.
+
+    Computed from ``decay`` as stored (4 decimals) and kept to 4 significant
+    digits, so the same stored decay always gives the same stored half-life.
+    """
+    if decay is None or not 0.0 < decay < 1.0:
         return None
-    return round_sig(steps * series.step_seconds)
+    return round_sig(math.log(0.5) / math.log(decay) * series.step_seconds, 4)
