@@ -62,6 +62,9 @@ class RunSummary:
     seconds: float
     failures: tuple[tuple[str, str, str], ...] = ()
     top_events: tuple[Event, ...] = ()
+    top_changes: tuple[str, ...] = ()
+    """For each of ``top_events``: ``new`` (first found by this run), ``changed``
+    (its type or status changed in this run) or ``seen`` (stored before, as is)."""
     timings: tuple[tuple[str, float], ...] = field(default=())
     problems: tuple[str, ...] = ()
     """Parts of the source that could not be read (files, rows, cells), in words."""
@@ -392,18 +395,22 @@ def summarize(
     """
     new = changed = retracted = 0
     by_type = dict.fromkeys(REPORTED_TYPES, 0)
-    tops: list[Event] = []
+    tops: list[tuple[Event, str]] = []
     for o in outcomes:
         for e in o.events:
             old = before.get((o.series_id, e.event_time))
             if old is None:
                 new += 1
                 by_type[e.event_type] += 1
+                change = "new"
             elif old != (e.event_type, e.status):
                 changed += 1
-            tops.append(e)
+                change = "changed"
+            else:
+                change = "seen"
+            tops.append((e, change))
         retracted += sum(1 for t in o.retract if (o.series_id, t) in before)
-    tops.sort(key=lambda e: -abs(e.t_stat))
+    tops.sort(key=lambda pair: -abs(pair[0].t_stat))
     merged = [(o.series_id, o.n_duplicates) for o in outcomes if o.n_duplicates]
     notes = ()
     if merged:
@@ -431,7 +438,8 @@ def summarize(
         batches=batches,
         seconds=seconds,
         failures=failures,
-        top_events=tuple(tops[:10]),
+        top_events=tuple(e for e, _ in tops[:10]),
+        top_changes=tuple(change for _, change in tops[:10]),
         timings=tuple(timings.items()),
         notes=notes,
         refits=refits,

@@ -6,7 +6,7 @@ Only flows (and the CLI) read configuration; tasks receive plain values.
 from __future__ import annotations
 
 import os
-from typing import Literal
+from typing import TYPE_CHECKING, Literal
 
 import sqlalchemy as sa
 from pydantic import BaseModel, ConfigDict, Field, SecretStr, field_validator
@@ -17,6 +17,9 @@ from changekind.tasks.critical import BUDGET_RANGE, CRITICAL_RANGE, FALSE_BUDGET
 from changekind.tasks.errors import ConfigError
 from changekind.tasks.magnitude import parse_min_effect
 from changekind.tasks.window import window_text
+
+if TYPE_CHECKING:  # the engine (scipy) is imported by the commands that analyse
+    from changekind.tasks.batch import AnalysisOptions
 
 DEFAULT_DB_URL = "sqlite:///changekind.db"
 Runner = Literal["threads", "processes", "dask"]
@@ -112,6 +115,8 @@ class RunOptions(BaseModel):
         return value
 
     def analysis(self, *, report_from: str | None = None) -> AnalysisOptions:
+        from changekind.tasks.batch import AnalysisOptions  # the engine, for runs only
+
         return AnalysisOptions(
             critical=self.critical,
             false_budget=self.false_budget,

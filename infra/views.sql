@@ -65,6 +65,56 @@ FROM series_events
 WHERE status = 'confirmed' AND triage_state IS NULL;
 
 
+-- view: events_by_verdict (sqlite, postgresql)
+-- Events that are not retracted, by their current verdict ('none' where nobody
+-- has judged them yet); every verdict given is in the table triage_history.
+CREATE VIEW events_by_verdict AS
+SELECT COALESCE(triage_state, 'none') AS verdict,
+       series_id, event_time, event_ts, event_type, status, effect, effect_pct, t_stat,
+       triage_reason, triage_at, last_seen
+FROM series_events
+WHERE status <> 'retracted';
+
+
+-- view: level_shifts_in_force (sqlite, postgresql)
+-- Every confirmed level shift nobody dismissed, netted per series: the net
+-- level change since the level before the first of them (reference_level,
+-- since_time), in the series' units and in percent, with the latest shift
+-- beside it (open_level_shifts shows the latest one alone).
+CREATE VIEW level_shifts_in_force AS
+WITH shifts AS (
+    SELECT series_id, event_time, event_ts, effect, level,
+           ROW_NUMBER() OVER (
+               PARTITION BY series_id
+               ORDER BY CASE WHEN event_ts IS NULL THEN 1 ELSE 0 END, event_ts, event_time
+           ) AS oldest,
+           ROW_NUMBER() OVER (
+               PARTITION BY series_id
+               ORDER BY CASE WHEN event_ts IS NULL THEN 1 ELSE 0 END,
+                        event_ts DESC, event_time DESC
+           ) AS newest,
+           COUNT(*) OVER (PARTITION BY series_id) AS n_shifts,
+           SUM(effect) OVER (PARTITION BY series_id) AS net_effect
+    FROM series_events
+    WHERE event_type = 'LS'
+      AND status = 'confirmed'
+      AND (triage_state IS NULL OR triage_state <> 'dismissed')
+)
+SELECT f.series_id,
+       f.n_shifts,
+       f.net_effect,
+       CASE WHEN f.level <> 0 THEN 100.0 * f.net_effect / f.level END AS net_pct,
+       f.level AS reference_level,
+       f.event_time AS since_time,
+       f.event_ts AS since_ts,
+       l.event_time AS latest_time,
+       l.event_ts AS latest_ts,
+       l.effect AS latest_effect
+FROM shifts f
+JOIN shifts l ON l.series_id = f.series_id AND l.newest = 1
+WHERE f.oldest = 1;
+
+
 -- view: open_incidents (sqlite, postgresql)
 -- Incidents that can still change on their own: a member is provisional, or
 -- the incident ended within the grouping margin of the newest scan (later

@@ -8,7 +8,7 @@ import numpy as np
 
 from changekind.tasks.effects import EFFECTS, SEARCHED
 from changekind.tasks.search import Candidate
-from changekind.tasks.types import Event, FittedModel, RegularSeries, format_duration, round_sig
+from changekind.tasks.types import Event, FittedModel, RegularSeries, round_sig
 
 SETTLE = 8
 """An event with fewer observations after it than this (or than two decay
@@ -43,7 +43,7 @@ def to_event(
         type_weights=tuple((k, round(weights[k], 4)) for k in SEARCHED),
         status="provisional" if after < settle else "confirmed",
         decay=round(delta, 4) if decays and delta is not None else None,
-        half_life=_half_life(series, half_steps),
+        half_life=_half_life(series, round(delta, 4) if decays and delta else None),
         level=round_sig(level),
         model=model.spec(),
         effect_sigma=round_sig(abs(c.omega) / model.sigma) if model.sigma2 > 0 else None,
@@ -55,7 +55,7 @@ TC_GONE = 0.05
 """A temporary change has ended when this share of its jump remains."""
 
 
-def _duration(series: RegularSeries, kind: str, after: int, delta: float | None) -> str | None:
+def _duration(series: RegularSeries, kind: str, after: int, delta: float | None) -> float | None:
     """How long an LS has lasted (to the last analysed point) or a TC lasts (to 5 %)."""
     if kind == "LS":
         steps = float(after + 1)
@@ -63,7 +63,7 @@ def _duration(series: RegularSeries, kind: str, after: int, delta: float | None)
         steps = math.log(TC_GONE) / math.log(delta)
     else:
         return None
-    return _half_life(series, steps)
+    return round_sig(steps * series.step_seconds, 4)
 
 
 def _local_level(values: np.ndarray, T: int, window: int = 24) -> float:
@@ -75,9 +75,12 @@ def _local_level(values: np.ndarray, T: int, window: int = 24) -> float:
     return float(np.median(before)) if before.size else float("nan")
 
 
-def _half_life(series: RegularSeries, steps: float | None) -> str | None:
-    if steps is None:
+def _half_life(series: RegularSeries, decay: float | None) -> float | None:
+    """Seconds (date-time grid) or index units (numeric grid) from the stored decay.
+
+    Computed from ``decay`` as stored (4 decimals) and kept to 4 significant
+    digits, so the same stored decay always gives the same stored half-life.
+    """
+    if decay is None or not 0.0 < decay < 1.0:
         return None
-    if series.is_datetime:
-        return format_duration(steps * series.step_seconds)
-    return f"{steps * series.step_seconds:.3g} index units"
+    return round_sig(math.log(0.5) / math.log(decay) * series.step_seconds, 4)

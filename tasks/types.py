@@ -342,14 +342,16 @@ class Event:
     type_weights: tuple[tuple[str, float], ...]
     status: Status
     decay: float | None
-    half_life: str | None
+    half_life: float | None
+    """Half-life of a decaying effect: seconds on a date-time grid, index units on
+    a numeric one (a number, so tables can sort and sum it); None for other types."""
     level: float
     model: str
     window_start: str | None = None
     window_end: str | None = None
     effect_sigma: float | None = None
     """The effect in noise sigma (|omega| / sigma of the model)."""
-    duration: str | None = None
+    duration: float | None = None
     """How long the effect lasts: a level shift, from its time to the last point
     analysed (so far: it has not ended); a temporary change, until 5 % of its
     jump remains; None for AO, IO and VC."""

@@ -11,11 +11,14 @@ interrupted.
 
 from __future__ import annotations
 
+import importlib.metadata
 import logging
 import os
 from collections.abc import Iterator, Mapping
 from contextlib import contextmanager
+from typing import Annotated
 
+import click
 import typer
 from pydantic import ValidationError
 from rich.console import Console
@@ -31,7 +34,53 @@ EXIT_USAGE = 2
 DEBUG_ENV = "CHANGEKIND_DEBUG"
 """Set to 1 to get the traceback of an unexpected error in a series."""
 
+COMMAND_MODULES: dict[str, str] = {
+    "detect": "detect",
+    "scan": "runs",
+    "backfill": "runs",
+    "refit": "runs",
+    "events": "events",
+    "triage": "events",
+    "verdicts": "events",
+    "incidents": "incidents",
+    "report": "report",
+    "drill": "drill",
+    "demo": "demo",
+}
+"""Each command and the module of ``changekind.flows.cli`` that defines it."""
+
+
+class LazyCommands(typer.core.TyperGroup):
+    """The command group: a command's module is imported when the command is used.
+
+    ``changekind events`` thus never imports the engine (scipy, statsmodels),
+    the report's drawing (matplotlib) or the flows (Prefect): start-up is what
+    the command itself needs.  ``--help`` lists every command (imports all).
+    """
+
+    def list_commands(self, ctx: click.Context) -> list[str]:
+        return list(dict.fromkeys([*COMMAND_MODULES, *super().list_commands(ctx)]))
+
+    def get_command(self, ctx: click.Context, cmd_name: str) -> click.Command | None:
+        if cmd_name not in self.commands and cmd_name in COMMAND_MODULES:
+            importlib.import_module(f"changekind.flows.cli.{COMMAND_MODULES[cmd_name]}")
+            for info in app.registered_commands:
+                assert info.callback is not None
+                name = info.name or typer.main.get_command_name(info.callback.__name__)
+                if name == cmd_name:
+                    self.add_command(
+                        typer.main.get_command_from_info(
+                            info,
+                            pretty_exceptions_short=app.pretty_exceptions_short,
+                            rich_markup_mode=app.rich_markup_mode,
+                        ),
+                        name,
+                    )
+        return super().get_command(ctx, cmd_name)
+
+
 app = typer.Typer(
+    cls=LazyCommands,
     name="changekind",
     help="Find and classify events (AO, LS, TC, IO) in fleets of metric series.",
     no_args_is_help=True,
@@ -40,10 +89,53 @@ app = typer.Typer(
 )
 
 
+_typer_display_type = typer.core.TyperOption.display_type_rich
+
+
+def _display_type(self: typer.core.TyperOption, ctx: typer.Context) -> str | None:
+    """The placeholder after an option in help: none for a flag (``--json``)."""
+    if self.is_flag:
+        return None
+    return _typer_display_type(self, ctx)
+
+
+# Typer's help prints a type placeholder after every parameter, ``<bool>`` after
+# flags that take no value and ``<str>`` after arguments already named by their
+# metavar; changekind's help names each value (URL, PATH, N) and leaves flags bare.
+typer.core.TyperOption.display_type_rich = _display_type  # type: ignore[method-assign]
+typer.core.TyperArgument.display_type_rich = lambda self, ctx: None  # type: ignore[method-assign]
+
+
+def _show_version(value: bool) -> None:
+    if value:
+        try:
+            version = importlib.metadata.version("changekind")
+        except importlib.metadata.PackageNotFoundError:  # run from a source tree
+            version = "unknown (not installed)"
+        typer.echo(f"changekind {version}")
+        raise typer.Exit()
+
+
+@app.callback()
+def _main(
+    version: Annotated[
+        bool,
+        typer.Option(
+            "--version",
+            help="Print changekind's version and stop.",
+            callback=_show_version,
+            is_eager=True,
+        ),
+    ] = False,
+) -> None:
+    """Find and classify events (AO, LS, TC, IO) in fleets of metric series."""
+
+
 def out_console() -> Console:
     """Console for results: plain lines are never hard-wrapped (commands stay copyable)."""
     console = Console(highlight=False, soft_wrap=True)
-    if not console.is_terminal:
+    if not console.is_terminal and not os.environ.get("COLUMNS"):
+        # Piped output has no width: wide enough for every column, unless COLUMNS says.
         console = Console(highlight=False, soft_wrap=True, width=120)
     return console
 

@@ -270,6 +270,8 @@ def check_time(value: str | None, what: str, time_kind: str) -> str | None:
     try:
         got = parse_instant(value, what=what)
     except ConfigError:
+        if time_kind != "numeric":
+            raise  # its message says what is wrong ('05/03/2030': day and month ambiguous)
         got = None
     if time_kind == "numeric":
         if not isinstance(got, float):

@@ -37,6 +37,7 @@ from changekind.tasks.fetch import SourceSpec, open_source
 
 if TYPE_CHECKING:
     from changekind.tasks.report.data import WrittenReport
+from changekind.tasks.timeaxis import parse_instant
 
 
 def report(
@@ -106,6 +107,8 @@ def report(
             "(or set CHANGEKIND_SOURCE)"
         )
     try:
+        if since is not None:
+            parse_instant(since, what="--since")  # ISO 8601 only: '05/03/2030' is refused
         spec = open_source(
             location,
             columns=column_map(series_column, timestamp_column, value_column) or None,

@@ -25,6 +25,7 @@ from changekind.tasks.fetch.values import (
     TimeKind,
     _is_number,
 )
+from changekind.tasks.persist.engines import our_driver
 
 # ---------------------------------------------------------------------------
 # SQL through SQLAlchemy Core
@@ -32,6 +33,7 @@ from changekind.tasks.fetch.values import (
 
 
 def _make_engine(url: sa.URL) -> sa.Engine:
+    url = our_driver(url)
     connect_args: dict[str, Any] = {}
     if url.get_backend_name() == "postgresql":
         connect_args["connect_timeout"] = CONNECT_TIMEOUT_S

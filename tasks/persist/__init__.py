@@ -33,9 +33,12 @@ from __future__ import annotations
 
 from changekind.tasks.persist.engines import connect, init_db, migrate, migrations_dir
 from changekind.tasks.persist.events import (
+    TRIAGE_NONE,
     WriteSummary,
+    count_events,
     load_known_events,
     read_events,
+    read_triage_history,
     set_triage,
     write_events,
 )
@@ -79,6 +82,7 @@ from changekind.tasks.persist.schema import (
     series_failures,
     series_models,
     source_problems,
+    triage_history,
 )
 from changekind.tasks.persist.snapshots import BOOKKEEPING_COLUMNS, content_snapshot, table_snapshot
 
@@ -93,6 +97,7 @@ __all__ = [
     "RUN_KINDS",
     "RUN_STATUSES",
     "SQLITE_BUSY_TIMEOUT_SECONDS",
+    "TRIAGE_NONE",
     "TRIAGE_STATES",
     "VERSION_TABLE",
     "Coverage",
@@ -103,6 +108,7 @@ __all__ = [
     "close_stale_runs",
     "connect",
     "content_snapshot",
+    "count_events",
     "event_revisions",
     "finish_run",
     "init_db",
@@ -114,6 +120,7 @@ __all__ = [
     "migrate",
     "migrations_dir",
     "read_events",
+    "read_triage_history",
     "record_failures",
     "record_source_problems",
     "run_locks",
@@ -127,6 +134,7 @@ __all__ = [
     "source_problems",
     "start_run",
     "table_snapshot",
+    "triage_history",
     "update_watermarks",
     "write_batch",
     "write_events",

@@ -31,6 +31,16 @@ from changekind.tasks.persist.schema import (
 # --------------------------------------------------------------------------- engines
 
 
+def our_driver(url: URL) -> URL:
+    """``url`` with changekind's PostgreSQL driver: ``postgres://`` and ``postgresql://``
+    (the forms hosting services hand out) mean ``postgresql+psycopg://``."""
+    if url.drivername in ("postgres", "postgresql"):
+        return url.set(drivername="postgresql+psycopg")
+    if url.drivername.startswith("postgres+"):
+        return url.set(drivername="postgresql+" + url.drivername.split("+", 1)[1])
+    return url
+
+
 def _parse_url(url: str | URL) -> URL:
     if isinstance(url, URL):
         parsed = url
@@ -47,14 +57,13 @@ def _parse_url(url: str | URL) -> URL:
                 f"database URL {url!r} cannot be read ({exc}); give one such as "
                 f"{DEFAULT_URL!r} or 'postgresql+psycopg://user@host:5432/dbname'"
             ) from None
+    parsed = our_driver(parsed)
     backend = parsed.get_backend_name()
     if backend not in _INSERTS:
         raise ConfigError(
             f"database {mask_url(parsed)!r} uses {backend!r}; changekind supports "
             "sqlite and postgresql URLs only"
         )
-    if parsed.drivername == "postgresql":  # SQLAlchemy's default driver is not ours
-        parsed = parsed.set(drivername="postgresql+psycopg")
     return parsed
 
 

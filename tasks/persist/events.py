@@ -40,6 +40,7 @@ from changekind.tasks.persist.schema import (
     TriageState,
     event_revisions,
     series_events,
+    triage_history,
 )
 from changekind.tasks.types import REPORTED_TYPES, Event
 
@@ -95,8 +96,6 @@ def _event_values(event: Event) -> dict[str, Any]:
             {str(k): float(v) for k, v in event.type_weights}, separators=(",", ":")
         ),
         "status": event.status,
-        "half_life": event.half_life,
-        "duration": event.duration,
         "model": str(event.model),
         "window_start": event.window_start,
         "window_end": event.window_end,
@@ -313,22 +312,44 @@ def read_events(
     db: Database,
     *,
     since: datetime | str | None = None,
+    until: datetime | str | None = None,
     series_ids: Sequence[str] | None = None,
     include_retracted: bool = False,
+    event_types: Sequence[str] | None = None,
+    statuses: Sequence[str] | None = None,
+    triage: Sequence[str] | None = None,
+    min_effect_pct: float | None = None,
+    newest_first: bool = False,
+    limit: int | None = None,
 ) -> pd.DataFrame:
-    """Stored events as a table, oldest first.
+    """Stored events as a table, oldest first (or newest first).
 
     Parameters
     ----------
     db : Engine or str
         The database (see the module notes).
-    since : datetime or str, optional
-        Only events at or after this time (by ``event_ts``; events whose time is
-        not a date-time are then left out).  Naive times are UTC.
+    since, until : datetime or str, optional
+        Only events at or after ``since`` and at or before ``until`` (by
+        ``event_ts``; events whose time is not a date-time are then left out).
+        Naive times are UTC.
     series_ids : sequence of str, optional
         Only these series.
     include_retracted : bool, default=False
-        Also return events the scans have retracted.
+        Also return events the scans have retracted (implied when ``statuses``
+        names ``retracted``).
+    event_types : sequence of str, optional
+        Only these types (``AO``, ``LS``, ``TC``, ``IO``, ``VC``).
+    statuses : sequence of str, optional
+        Only these statuses (``provisional``, ``confirmed``, ``retracted``).
+    triage : sequence of str, optional
+        Only events with one of these verdicts; ``none`` stands for no verdict.
+    min_effect_pct : float, optional
+        Only events whose ``|effect_pct|`` is at least this (events without a
+        percentage are then left out).
+    newest_first : bool, default=False
+        Sort the newest first.
+    limit : int, optional
+        At most this many rows (the first ones in the chosen order).
 
     Returns
     -------
@@ -336,26 +357,139 @@ def read_events(
         Columns :data:`EVENT_COLUMNS` (the ``detect --json`` contract; numbers
         float64 with NaN for missing, texts object with None, ``type_weights`` a
         dict) then :data:`EVENT_EXTRA_COLUMNS` (times as ``datetime64[ns, UTC]``).
-        Sorted by ``event_ts`` (rows without one last), ``series_id``, ``event_time``.
+        Sorted by ``event_ts`` (rows without one last), ``series_id``,
+        ``event_time``, each descending when ``newest_first``.
+
+    Raises
+    ------
+    ConfigError
+        An unknown type, status or triage state, or a bad bound or limit.
     """
-    since_ts = _as_datetime(since, "since")
-    conditions = []
-    if since_ts is not None:
-        conditions.append(series_events.c.event_ts >= since_ts)
-    if not include_retracted:
-        conditions.append(series_events.c.status != "retracted")
+    conditions = _event_filters(
+        since=since,
+        until=until,
+        include_retracted=include_retracted,
+        event_types=event_types,
+        statuses=statuses,
+        triage=triage,
+        min_effect_pct=min_effect_pct,
+    )
+    if limit is not None and (isinstance(limit, bool) or not isinstance(limit, int) or limit < 1):
+        raise ConfigError(f"limit must be a whole number of at least 1, got {limit!r}")
     columns = [series_events.c[name] for name in (*EVENT_COLUMNS, *EVENT_EXTRA_COLUMNS)]
-    base = sa.select(*columns).where(*conditions)
+    c = series_events.c
+    direction = sa.desc if newest_first else sa.asc
+    order = [
+        sa.case((c.event_ts.is_(None), 1), else_=0),
+        direction(c.event_ts),
+        direction(c.series_id),
+        direction(c.event_time),
+    ]
+    base = sa.select(*columns).where(*conditions).order_by(*order)
     with _engine(db) as engine, engine.connect() as conn:
         if series_ids is None:
-            records = [dict(r) for r in conn.execute(base).mappings()]
+            records = [dict(r) for r in conn.execute(base.limit(limit)).mappings()]
         else:
             ids = sorted({_text(s, "series_id") for s in series_ids})
             records = []
             for chunk in _chunks(ids):
-                query = base.where(series_events.c.series_id.in_(chunk))
+                query = base.where(series_events.c.series_id.in_(chunk)).limit(limit)
                 records.extend(dict(r) for r in conn.execute(query).mappings())
-    return _events_frame(records)
+    frame = _events_frame(records, newest_first=newest_first)
+    return frame if limit is None else frame.head(limit)
+
+
+def count_events(
+    db: Database,
+    *,
+    since: datetime | str | None = None,
+    until: datetime | str | None = None,
+    series_ids: Sequence[str] | None = None,
+    include_retracted: bool = False,
+    event_types: Sequence[str] | None = None,
+    statuses: Sequence[str] | None = None,
+    triage: Sequence[str] | None = None,
+    min_effect_pct: float | None = None,
+) -> int:
+    """How many stored events :func:`read_events` would return without a limit."""
+    conditions = _event_filters(
+        since=since,
+        until=until,
+        include_retracted=include_retracted,
+        event_types=event_types,
+        statuses=statuses,
+        triage=triage,
+        min_effect_pct=min_effect_pct,
+    )
+    base = sa.select(sa.func.count()).select_from(series_events).where(*conditions)
+    with _engine(db) as engine, engine.connect() as conn:
+        if series_ids is None:
+            return int(conn.execute(base).scalar_one())
+        ids = sorted({_text(s, "series_id") for s in series_ids})
+        return sum(
+            int(conn.execute(base.where(series_events.c.series_id.in_(chunk))).scalar_one())
+            for chunk in _chunks(ids)
+        )
+
+
+TRIAGE_NONE = "none"
+"""The ``triage`` filter's word for events without a verdict."""
+
+
+def _event_filters(
+    *,
+    since: datetime | str | None,
+    until: datetime | str | None,
+    include_retracted: bool,
+    event_types: Sequence[str] | None,
+    statuses: Sequence[str] | None,
+    triage: Sequence[str] | None,
+    min_effect_pct: float | None,
+) -> list[Any]:
+    """The WHERE conditions of :func:`read_events` and :func:`count_events`."""
+    c = series_events.c
+    conditions: list[Any] = []
+    since_ts = _as_datetime(since, "since")
+    until_ts = _as_datetime(until, "until")
+    if since_ts is not None and until_ts is not None and until_ts < since_ts:
+        raise ConfigError(
+            f"until ({until_ts.isoformat()}) is before since ({since_ts.isoformat()}); "
+            "give until at or after since"
+        )
+    if since_ts is not None:
+        conditions.append(c.event_ts >= since_ts)
+    if until_ts is not None:
+        conditions.append(c.event_ts <= until_ts)
+    if event_types:
+        for kind in event_types:
+            _one_of(kind, REPORTED_TYPES, "event type")
+        conditions.append(c.event_type.in_(sorted(set(event_types))))
+    if statuses:
+        for status in statuses:
+            _one_of(status, EVENT_STATUSES, "event status")
+        conditions.append(c.status.in_(sorted(set(statuses))))
+    elif not include_retracted:
+        conditions.append(c.status != "retracted")
+    if triage:
+        for state in triage:
+            _one_of(state, (*TRIAGE_STATES, TRIAGE_NONE), "triage state")
+        states = sorted(set(triage) - {TRIAGE_NONE})
+        either = [c.triage_state.in_(states)] if states else []
+        if TRIAGE_NONE in triage:
+            either.append(c.triage_state.is_(None))
+        conditions.append(sa.or_(*either))
+    if min_effect_pct is not None:
+        if (
+            isinstance(min_effect_pct, bool)
+            or not isinstance(min_effect_pct, int | float)
+            or (not math.isfinite(min_effect_pct) or min_effect_pct < 0)
+        ):
+            raise ConfigError(
+                f"min_effect_pct must be a number of at least 0 (a percentage), got "
+                f"{min_effect_pct!r}"
+            )
+        conditions.append(sa.func.abs(c.effect_pct) >= float(min_effect_pct))
+    return conditions
 
 
 def load_known_events(
@@ -386,8 +520,8 @@ def load_known_events(
                 type_weights=tuple((k, float(v)) for k, v in rec["type_weights"].items()),
                 status=rec["status"],
                 decay=_nan_to_none(rec["decay"]),
-                half_life=rec["half_life"],
-                duration=rec["duration"],
+                half_life=_nan_to_none(rec["half_life"]),
+                duration=_nan_to_none(rec["duration"]),
                 level=float(rec["level"]),
                 model=rec["model"],
                 window_start=rec["window_start"],
@@ -403,7 +537,7 @@ def _nan_to_none(value: Any) -> float | None:
     )
 
 
-def _events_frame(records: list[dict[str, Any]]) -> pd.DataFrame:
+def _events_frame(records: list[dict[str, Any]], *, newest_first: bool = False) -> pd.DataFrame:
     data: dict[str, Any] = {}
     for name in (*EVENT_COLUMNS, *EVENT_EXTRA_COLUMNS):
         values = [r[name] for r in records]
@@ -419,7 +553,10 @@ def _events_frame(records: list[dict[str, Any]]) -> pd.DataFrame:
             data[name] = pd.Series(values, dtype=object)
     frame = pd.DataFrame(data)
     frame = frame.sort_values(
-        ["event_ts", "series_id", "event_time"], na_position="last", kind="stable"
+        ["event_ts", "series_id", "event_time"],
+        ascending=not newest_first,
+        na_position="last",
+        kind="stable",
     )
     return frame.reset_index(drop=True)
 
@@ -431,6 +568,7 @@ def set_triage(
     state: TriageState | None,
     reason: str | None = None,
     *,
+    by: str | None = None,
     at: datetime | None = None,
 ) -> None:
     """Record a person's verdict on an event; scans never overwrite it.
@@ -445,8 +583,16 @@ def set_triage(
         The verdict; None clears it (with its reason and time).
     reason : str, optional
         Free text, e.g. the change ticket that explains a level shift.
+    by : str, optional
+        Who gave the verdict (kept in ``triage_history``).
     at : datetime, optional
         Written to ``triage_at``; now (UTC) by default.
+
+    Notes
+    -----
+    The event's ``triage_*`` columns hold the current verdict; every call also
+    adds a row to ``triage_history`` (a cleared verdict as state NULL), in the
+    same transaction, so earlier verdicts and their reasons are kept.
 
     Raises
     ------
@@ -457,10 +603,13 @@ def set_triage(
         _one_of(state, TRIAGE_STATES, "triage state")
     if reason is not None and not isinstance(reason, str):
         raise ConfigError(f"triage reason must be a text, got {reason!r}")
+    if by is not None and not isinstance(by, str):
+        raise ConfigError(f"who gave the verdict must be a text, got {by!r}")
+    when = _now(at)
     values = (
         {"triage_state": None, "triage_reason": None, "triage_at": None}
         if state is None
-        else {"triage_state": state, "triage_reason": reason, "triage_at": _now(at)}
+        else {"triage_state": state, "triage_reason": reason, "triage_at": when}
     )
     with _engine(db) as engine, engine.begin() as conn:
         result = conn.execute(
@@ -473,3 +622,42 @@ def set_triage(
                 f"no stored event for series {series_id!r} at {event_time!r}; list the "
                 "stored events (with their event_time as stored) and pick one of them"
             )
+        conn.execute(
+            sa.insert(triage_history).values(
+                series_id=series_id,
+                event_time=event_time,
+                state=state,
+                reason=reason,
+                decided_by=by,
+                decided_at=when,
+            )
+        )
+
+
+def read_triage_history(db: Database, series_id: str, event_time: str) -> pd.DataFrame:
+    """Every verdict given to one event, oldest first.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Columns ``state`` (None: cleared), ``reason``, ``decided_by`` and
+        ``decided_at`` (``datetime64[ns, UTC]``).
+    """
+    c = triage_history.c
+    query = (
+        sa.select(c.state, c.reason, c.decided_by, c.decided_at)
+        .where(c.series_id == series_id, c.event_time == event_time)
+        .order_by(c.decided_at, c.verdict_id)
+    )
+    with _engine(db) as engine, engine.connect() as conn:
+        rows = [dict(r) for r in conn.execute(query).mappings()]
+    frame = pd.DataFrame(
+        {
+            name: pd.Series([r[name] for r in rows], dtype=object)
+            for name in ("state", "reason", "decided_by")
+        }
+    )
+    frame["decided_at"] = pd.to_datetime(
+        pd.Series([r["decided_at"] for r in rows], dtype=object), utc=True
+    ).astype("datetime64[ns, UTC]")
+    return frame

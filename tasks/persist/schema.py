@@ -98,8 +98,8 @@ series_events = sa.Table(
     sa.Column("type_weights", sa.Text, nullable=False),
     sa.Column("status", sa.Text, nullable=False),
     sa.Column("decay", sa.Float, nullable=True),
-    sa.Column("half_life", sa.Text, nullable=True),
-    sa.Column("duration", sa.Text, nullable=True),
+    sa.Column("half_life", sa.Float, nullable=True),  # seconds, or index units
+    sa.Column("duration", sa.Float, nullable=True),  # seconds, or index units
     sa.Column("level", sa.Float, nullable=False),
     sa.Column("model", sa.Text, nullable=False),
     # Bookkeeping: which run first wrote the row and which last changed it.
@@ -151,6 +151,28 @@ event_revisions = sa.Table(
     sa.Index("ix_event_revisions_run_id", "run_id"),
 )
 """Every change of an event: one row per write that changed it."""
+
+triage_history = sa.Table(
+    "triage_history",
+    metadata,
+    sa.Column("verdict_id", sa.Integer, primary_key=True, autoincrement=True),
+    sa.Column("series_id", sa.Text, nullable=False),
+    sa.Column("event_time", sa.Text, nullable=False),
+    sa.Column("state", sa.Text, nullable=True),
+    sa.Column("reason", sa.Text, nullable=True),
+    sa.Column("decided_by", sa.Text, nullable=True),
+    sa.Column("decided_at", UtcDateTime, nullable=False),
+    sa.ForeignKeyConstraint(
+        ["series_id", "event_time"],
+        ["series_events.series_id", "series_events.event_time"],
+        ondelete="CASCADE",
+    ),
+    sa.CheckConstraint("state IS NULL OR " + _in("state", TRIAGE_STATES), name="state"),
+    sa.Index("ix_triage_history_event", "series_id", "event_time"),
+)
+"""Every verdict a person gave an event, oldest first: who, when, which state
+(NULL: the verdict was cleared) and why.  ``series_events.triage_*`` holds the
+current one; a new verdict adds a row here and never erases an earlier reason."""
 
 series_models = sa.Table(
     "series_models",
@@ -305,4 +327,14 @@ _UPDATED_ON_CHANGE = (
     "last_run_id",
     "last_seen",
 )
-_FLOAT_EVENT_COLUMNS = ("effect", "effect_pct", "effect_sigma", "t_stat", "se", "decay", "level")
+_FLOAT_EVENT_COLUMNS = (
+    "effect",
+    "effect_pct",
+    "effect_sigma",
+    "t_stat",
+    "se",
+    "decay",
+    "half_life",
+    "duration",
+    "level",
+)

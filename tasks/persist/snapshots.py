@@ -29,10 +29,19 @@ def table_snapshot(db: Database) -> dict[str, list[tuple[Any, ...]]]:
         for table in metadata.sorted_tables:
             if table.name not in present:
                 continue
-            names = {c["name"] for c in inspector.get_columns(table.name)}
-            query = sa.select(*(c for c in table.columns if c.name in names))
+            stored = {c["name"]: c["type"] for c in inspector.get_columns(table.name)}
+            query = sa.select(
+                *(_as_stored(c, stored[c.name]) for c in table.columns if c.name in stored)
+            )
             out[table.name] = sorted((tuple(r) for r in conn.execute(query)), key=order)
         return out
+
+
+def _as_stored(column: sa.Column[Any], stored: Any) -> Any:
+    """A column read as an older revision stores it (a number that was text then: as is)."""
+    if isinstance(column.type, sa.Float) and not isinstance(stored, sa.Numeric | sa.Float):
+        return sa.column(column.name)
+    return column
 
 
 _RUN_LOGS = ("scan_runs", "series_failures", "source_problems", "run_locks")

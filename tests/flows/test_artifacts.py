@@ -209,7 +209,7 @@ def test_report_says_what_is_wrong_with_its_options(tmp_path, scanned):
         (["--db", scanned["db"], "--source", str(tmp_path / "nope")], "does not exist"),
         (
             ["--db", scanned["db"], "--source", str(scanned["source"]), "--since", "soon"],
-            "is not a date-time",
+            "--since 'soon' is not ISO 8601",
         ),
     ]
     for args, message in cases:

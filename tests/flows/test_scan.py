@@ -136,7 +136,7 @@ def test_plan_works_warm_after_watermark_and_skip_when_done():
         type_weights=(("TC", 1.0),),
         status="provisional",
         decay=0.5,
-        half_life="1 h",
+        half_life=3600.0,
         level=30.0,
         model="",
     )

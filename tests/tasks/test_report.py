@@ -164,7 +164,7 @@ def make_event(kind: str, *, when: str | None = None, effect: float = OMEGA, **e
         "type_weights": tuple(weights.items()),
         "status": "confirmed",
         "decay": DELTA if kind == "TC" else None,
-        "half_life": "1.94 h" if kind == "TC" else None,
+        "half_life": 6984.0 if kind == "TC" else None,
         "level": 20.0,
         "model": "ARIMA(1,0,1) mean=20 ar.L1=0.6 ma.L1=0.3 sigma=1",
     }

@@ -81,7 +81,7 @@ def view_statements(dialect: str) -> list[str]:
 
 def upgrade() -> None:
     op.add_column("series_events", sa.Column("effect_sigma", sa.Float, nullable=True))
-    op.add_column("series_events", sa.Column("duration", sa.Text, nullable=True))
+    op.add_column("series_events", sa.Column("duration", sa.Float, nullable=True))
     op.create_index("ix_series_events_effect_sigma", "series_events", ["effect_sigma"])
     # PostgreSQL expands "e.*" when a view is made: made again, it sees the new columns.
     op.execute("DROP VIEW open_level_shifts")

@@ -462,3 +462,22 @@ def test_detect_and_scan_accept_the_same_gzip_csv_files_and_folders(tmp_path):
     assert json.loads(by_file.stdout) == json.loads(by_folder.stdout)
     (shift,) = [e for e in json.loads(by_file.stdout) if e["event_type"] == "LS"]
     assert shift["event_time"] == stamps[len(y) // 2]
+
+
+def test_human_output_fits_80_columns_and_cuts_no_cell(tmp_path):
+    """At 80 columns every line fits; times, effects and t statistics show whole
+    (the --json records of the same run are the reference for the cells)."""
+    sid = "eu-central-1/storage-array-2/controller-a/write-latency-ms"
+    path = tmp_path / "one.csv"
+    long_frame({sid: ar1_with_shift(7)}).to_csv(path, index=False)
+    result = runner.invoke(app, ["detect", str(path)], env={"COLUMNS": "80"})
+    assert result.exit_code == 0, result.stderr
+    lines = result.stdout.splitlines()
+    assert max(len(line) for line in lines) <= 80, result.stdout
+    _, records = run_json(path)
+    assert records
+    for rec in records:
+        row = next(line for line in lines if rec["event_time"] in line)  # the time whole
+        assert f"{rec['effect']:+.4g}" in row
+        assert f"{rec['t_stat']:+.2f}" in row
+    assert "…" not in result.stdout.replace(sid, "")  # nothing but the long id shortened

@@ -225,7 +225,7 @@ def test_a_series_that_cannot_be_analysed_is_named_and_exits_1(prefect_server, t
 
 def test_events_json_and_csv_hold_what_is_stored(scanned):
     db = f"sqlite:///{scanned['db_file']}"
-    stored = persist.read_events(db)
+    stored = persist.read_events(db, newest_first=True)  # the command's default order
     assert len(stored) >= 3
     as_json = _invoke("events", "--db", db, "--json")
     assert as_json.exit_code == 0, as_json.stderr
@@ -260,6 +260,7 @@ def test_events_json_and_csv_hold_what_is_stored(scanned):
     )
     expected = stored[(stored.series_id == one) & (stored.event_ts >= since)]
     assert [r["event_time"] for r in filtered] == expected["event_time"].tolist()
+    assert filtered == sorted(filtered, key=lambda r: r["event_time"], reverse=True)
 
     table = _invoke("events", "--db", db)
     assert table.exit_code == 0 and f"{len(stored)} events" in table.stdout

@@ -21,7 +21,11 @@ from changekind.tasks.types import Event, FittedModel
 
 T0 = datetime(2024, 3, 1, 12, 0, tzinfo=UTC)
 VIEWS_0001 = {"open_level_shifts", "daily_event_counts", "events_needing_triage"}
-VIEW_NAMES = VIEWS_0001 | {"open_incidents", "event_labels"}  # 0005
+INITIAL_VIEW_NAMES = VIEWS_0001
+"""The views of revisions 0001 to 0004."""
+VIEWS_0005 = VIEWS_0001 | {"open_incidents", "event_labels"}
+VIEW_NAMES = VIEWS_0005 | {"events_by_verdict", "level_shifts_in_force"}
+"""The views of the newest revision."""
 
 
 # --------------------------------------------------------------------------- fixtures
@@ -61,7 +65,7 @@ def make_event(
         "status": status,
         "decay": None,
         "half_life": None,
-        "duration": "3.5 d",
+        "duration": 302_400.0,  # 3.5 days in seconds
         "level": 125.0,
         "model": "ARIMA(1,0,0) mean=125 ar.L1=0.6 sigma=1.7",
         "window_start": "2024-02-01T00:00:00Z",
@@ -148,3 +152,55 @@ def view_definitions(conn: sa.Connection) -> dict[str, str]:
             "WHERE schemaname = current_schema()"
         )
     return {name: normalized(sql) for name, sql in rows}
+
+
+LEGACY_EVENTS = sa.table(
+    "series_events",
+    *(
+        sa.column(name, sa.Text)
+        for name in (
+            "series_id",
+            "event_time",
+            "event_type",
+            "type_weights",
+            "status",
+            "model",
+            "first_run_id",
+            "last_run_id",
+        )
+    ),
+    *(sa.column(name, sa.Float) for name in ("effect", "t_stat", "se", "level")),
+    sa.column("event_ts", sa.DateTime(timezone=True)),
+    sa.column("first_seen", sa.DateTime(timezone=True)),
+    sa.column("last_seen", sa.DateTime(timezone=True)),
+)
+"""The columns of ``series_events`` every revision has (to write rows at an old
+revision, where today's table definition does not apply)."""
+
+
+def insert_legacy_event(
+    conn: sa.Connection, event_time: str = "2024-03-01T10:00:00Z", event_type: str = "LS"
+) -> None:
+    """One event of series ``edge-latency`` written with the columns of every revision."""
+    conn.execute(
+        sa.insert(LEGACY_EVENTS),
+        [
+            {
+                "series_id": "edge-latency",
+                "event_time": event_time,
+                "event_ts": datetime.fromisoformat(event_time),
+                "event_type": event_type,
+                "effect": 12.5,
+                "t_stat": 7.25,
+                "se": 1 / 3,
+                "type_weights": '{"LS":1.0}',
+                "status": "confirmed",
+                "level": 125.0,
+                "model": "ARIMA(1,0,0)",
+                "first_run_id": "run-1",
+                "last_run_id": "run-1",
+                "first_seen": T0,
+                "last_seen": T0,
+            }
+        ],
+    )

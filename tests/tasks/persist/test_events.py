@@ -36,7 +36,7 @@ def test_same_events_twice_leave_identical_tables(engine: sa.Engine) -> None:
     batch = [
         make_event("a", "2024-03-01T10:00:00Z"),
         make_event("a", "2024-03-01T11:00:00Z", "AO", "provisional", -3.0),
-        make_event("b", "2024-03-01T09:00:00+01:00", "TC", decay=0.7, half_life="1.9 h"),
+        make_event("b", "2024-03-01T09:00:00+01:00", "TC", decay=0.7, half_life=6840.0),
         make_event("c", "17.0", "IO", effect_pct=float("nan")),  # numeric grid label
     ]
     first = write_events(engine, "run-1", batch, at=T0)
@@ -52,7 +52,7 @@ def test_same_events_twice_leave_identical_tables(engine: sa.Engine) -> None:
 
 
 def test_values_come_back_exactly(engine: sa.Engine) -> None:
-    event = make_event("a", "2024-03-01T09:30:00+01:00", "TC", decay=0.7, half_life="1.9 h")
+    event = make_event("a", "2024-03-01T09:30:00+01:00", "TC", decay=0.7, half_life=6840.0)
     write_events(engine, "run-1", [event], at=T0)
     frame = read_events(engine)
     # The contract is Event.to_record(): same keys, same order, same values.

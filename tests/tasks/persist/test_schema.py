@@ -23,7 +23,6 @@ from changekind.tasks.persist import (
     metadata,
     migrate,
     migrations_dir,
-    set_triage,
     table_snapshot,
     write_events,
 )
@@ -31,11 +30,10 @@ from tests.tasks.persist.tables import (
     T0,
     VIEW_NAMES,
     VIEWS_0001,
-    event_row,
+    insert_legacy_event,
     load_migration,
     make_event,
     normalized,
-    revisions,
     view_definitions,
     views_sql,
 )
@@ -97,32 +95,32 @@ def test_migration_0002_keeps_rows_and_admits_variance_changes(url: str) -> None
     engine = persist.connect(url)
     try:
         migrate(engine, revision="0001")
-        write_events(engine, "run-1", [make_event()], at=T0)
-        set_triage(engine, "edge-latency", "2024-03-01T10:00:00Z", "explained", reason="rollout")
-        vc = make_event(event_time="2024-03-02T10:00:00Z", event_type="VC")
-        with pytest.raises(sa.exc.IntegrityError), engine.begin() as conn:  # 0001 refuses VC
+        # Today's table definition does not apply at 0001: rows written column by column.
+        with engine.begin() as conn:
+            insert_legacy_event(conn)
             conn.execute(
-                sa.insert(persist.series_events),
-                [
-                    {
-                        **event_row(engine, "edge-latency", "2024-03-01T10:00:00Z"),
-                        "event_time": "x",
-                        "event_type": "VC",
-                    }
-                ],
+                sa.text(
+                    "UPDATE series_events SET triage_state = 'explained', "
+                    "triage_reason = 'rollout', triage_at = :t"
+                ),
+                {"t": T0},
             )
+        with pytest.raises(sa.exc.IntegrityError), engine.begin() as conn:  # 0001 refuses VC
+            insert_legacy_event(conn, "2024-03-02T10:00:00Z", "VC")
         before = table_snapshot(engine)
         migrate(engine, revision="0002")
         assert table_snapshot(engine) == before
         with engine.connect() as conn:
             assert set(sa.inspect(conn).get_view_names()) == VIEWS_0001
             assert conn.execute(sa.text("SELECT COUNT(*) FROM open_level_shifts")).scalar() == 1
-        write_events(engine, "run-2", [vc], at=T0)
-        assert event_row(engine, "edge-latency", "2024-03-02T10:00:00Z")["event_type"] == "VC"
-        assert [r["change"] for r in revisions(engine)] == ["new", "new"]
+        with engine.begin() as conn:
+            insert_legacy_event(conn, "2024-03-02T10:00:00Z", "VC")
+        with engine.connect() as conn:
+            kinds = conn.execute(sa.text("SELECT event_type FROM series_events")).scalars().all()
+        assert sorted(kinds) == ["LS", "VC"]
         _alembic(engine, "downgrade", "0001")
         with engine.connect() as conn:
-            kinds = conn.execute(sa.select(persist.series_events.c.event_type)).scalars().all()
+            kinds = conn.execute(sa.text("SELECT event_type FROM series_events")).scalars().all()
         assert kinds == ["LS"]
     finally:
         engine.dispose()
@@ -133,8 +131,8 @@ def test_migration_0003_keeps_rows_and_admits_abandoned_runs(url: str) -> None:
     engine = persist.connect(url)
     try:
         migrate(engine, revision="0002")
-        write_events(engine, "run-1", [make_event()], at=T0)
         with engine.begin() as conn:
+            insert_legacy_event(conn)
             conn.execute(
                 sa.text(
                     "INSERT INTO scan_runs (run_id, kind, status, series_total, series_ok, "
@@ -187,20 +185,24 @@ def test_downgrade_removes_tables_and_views(url: str) -> None:
 
 @pytest.mark.parametrize("dialect", ["sqlite", "postgresql"])
 def test_views_sql_is_the_migration_text(dialect: str) -> None:
-    # 0001 creates the views; later revisions with view_statements replace some.
-    expected = {}
-    for name in (
-        "0001_initial_schema.py",
-        "0005_series_labels_and_incidents.py",
-        "0006_effect_size_columns.py",
-    ):
-        migration = load_migration(name)
-        expected.update(
-            {
-                re.search(r"CREATE VIEW (\w+)", sql).group(1): normalized(sql)  # type: ignore[union-attr]
-                for sql in migration.view_statements(dialect)
-            }
+    statements = [
+        sql
+        for name in (
+            "0001_initial_schema.py",
+            "0005_series_labels_and_incidents.py",
+            "0006_effect_size_columns.py",
         )
+        for sql in load_migration(name).view_statements(dialect)
+    ]
+    statements += [
+        load_migration("0008_triage_history.py").VIEW,
+        load_migration("0009_level_shifts_in_force.py").VIEW,
+    ]
+    # later revisions' statements replace earlier ones of the same view
+    expected = {
+        re.search(r"CREATE VIEW (\w+)", sql).group(1): normalized(sql.rstrip(";"))  # type: ignore[union-attr]
+        for sql in statements
+    }
     assert {name: normalized(sql) for name, sql in views_sql(dialect).items()} == expected
 
 

@@ -1,0 +1,82 @@
+"""Wall time of ``changekind scan`` as a person runs it: 30 series, warm, nothing new.
+
+Run by hand (it is not collected by pytest)::
+
+    .venv/bin/python -m tests.benchmarks.bench_cli_scan [--series 30] [--repeat 3]
+
+An invented hourly fleet (tests/flows/fleet.py) is written as Parquet; a first
+``changekind scan`` fits every model (cold); then the same warm scan, with no
+new points, is timed end to end as a fresh process (interpreter, imports,
+Prefect, the flow) ``--repeat`` times in two settings:
+
+* ephemeral: no ``PREFECT_API_URL`` -- each command starts its own temporary
+  Prefect server;
+* local server: ``prefect server start`` on 127.0.0.1 (started here, stopped
+  at the end) and ``PREFECT_API_URL`` pointing at it, as README advises for
+  people who scan by hand all day.
+
+Prints the best and the median wall time of each.  Figures only; nothing is
+asserted.  Timings under other load on the machine are pessimistic.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+from tests.benchmarks.bench_fleet import start_server, stop_server
+from tests.flows.fleet import make_fleet, write_source
+
+
+def scan(command: list[str], env: dict[str, str]) -> float:
+    start = time.perf_counter()
+    done = subprocess.run(command, env=env, capture_output=True, text=True, check=False)
+    seconds = time.perf_counter() - start
+    if done.returncode != 0:
+        raise SystemExit(f"scan exited {done.returncode}: {done.stderr[-2000:]}")
+    return seconds
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--series", type=int, default=30)
+    parser.add_argument("--repeat", type=int, default=3)
+    options = parser.parse_args()
+    changekind = str(Path(sys.executable).with_name("changekind"))
+    with tempfile.TemporaryDirectory() as tmp:
+        root = Path(tmp)
+        data, _ = make_fleet(options.series, hours=24 * 14, seed=5)
+        # The fleet holds a stuck (constant) series on purpose; scans name it and
+        # exit 1.  Left out here: the figures are about start-up, not failures.
+        data = data[data.groupby("series_id")["value"].transform("std") > 0]
+        print(f"{data['series_id'].nunique()} series, {len(data):,} points")
+        source = write_source(data, root / "source")
+        db = f"sqlite:///{root / 'events.db'}"
+        command = [changekind, "scan", "--source", str(source), "--db", db]
+        env = {k: v for k, v in os.environ.items() if not k.startswith("PREFECT_")}
+        env["PREFECT_HOME"] = str(root / "prefect-home")
+        cold = scan(command, env)
+        print(f"cold scan of {options.series} series (ephemeral Prefect): {cold:.1f} s")
+        results: dict[str, list[float]] = {"ephemeral": []}
+        for _ in range(options.repeat):
+            results["ephemeral"].append(scan(command, env))
+        proc, url = start_server(root / "server-home", root / "server.log", None)
+        try:
+            with_server = {**env, "PREFECT_API_URL": url}
+            scan(command, with_server)  # first contact: the server creates the flow
+            results["local server"] = [scan(command, with_server) for _ in range(options.repeat)]
+        finally:
+            stop_server(proc)
+        print(f"{'warm scan, nothing new':28s} {'best s':>8s} {'median s':>9s}")
+        for name, times in results.items():
+            print(f"{name:28s} {min(times):8.1f} {statistics.median(times):9.1f}")
+
+
+if __name__ == "__main__":
+    main()
