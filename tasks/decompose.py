@@ -30,6 +30,12 @@ from changekind.tasks.errors import (
 )
 from changekind.tasks.types import Decomposition, RegularSeries, StampLabels
 
+MAX_MAGNITUDE = 1e150
+"""Largest |value| analysed: sums of squares of larger values overflow float64
+(about 1.8e308), so a value beyond it is refused by name instead of turning
+the fit into NaN.  A wrapped 64-bit counter (about 1.8e19) is far below it and
+is analysed (it shows as an AO)."""
+
 MIN_POINTS = 24
 """Fewest observed points the engine analyses (an ARIMA with a few terms and a
 test statistic per point needs a couple of dozen; common practice, not a law)."""
@@ -118,6 +124,15 @@ def regularize(series_id: str, timestamps, values) -> RegularSeries:
             series_id,
             f"{int(np.isinf(vals).sum())} value(s) are infinite (first at {timestamps[where]!r}); "
             "leave a missing sample empty instead of writing inf",
+        )
+    huge = np.abs(vals) > MAX_MAGNITUDE
+    if huge.any():
+        where = int(np.flatnonzero(huge)[0])
+        raise NonFiniteError(
+            series_id,
+            f"{int(huge.sum())} value(s) are beyond {MAX_MAGNITUDE:g} in size (first: "
+            f"{vals[where]:g} at {timestamps[where]!r}), too large to analyse; check the "
+            "source for a unit or encoding error, or leave such samples empty",
         )
 
     # Step 2: timestamps (labels None: each stamp's own ISO text, made on demand).

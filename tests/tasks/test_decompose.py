@@ -72,6 +72,8 @@ def test_natural_periods_follow_the_spacing():
     [
         (range(30), ["1.0"] * 29 + ["fast"], NonNumericError, "not numbers.*'fast'"),
         (range(30), [1.0] * 29 + [np.inf], NonFiniteError, "infinite"),
+        # float64 overflows when such values are squared (the fit turned them into NaN)
+        (range(30), [1.0] * 29 + [1e300], NonFiniteError, "1e\\+300 at 29.*too large"),
         (range(30), [np.nan] * 30, AllMissingError, "every value is missing"),
         (range(10), np.arange(10.0), TooShortError, f"at least {MIN_POINTS}"),
         (range(30), [4.2] * 30, ConstantSeriesError, "every observed value equals 4.2"),
@@ -85,6 +87,14 @@ def test_bad_input_names_the_series_and_the_problem(timestamps, values, error, m
         regularize("ctl-7/latency", list(timestamps), values)
     assert "ctl-7/latency" in str(info.value)
     assert isinstance(info.value, SeriesError) and isinstance(info.value, ValueError)
+
+
+def test_a_wrapped_64_bit_counter_is_analysed_not_refused():
+    # 2**64 (about 1.8e19) is what a wrapped unsigned counter shows: far below the limit.
+    values = np.ones(30)
+    values[7] = 2.0**64
+    series = regularize("ctl-7/ops", list(range(30)), values)
+    assert series.values[7] == 2.0**64
 
 
 def test_missing_timestamps_are_rejected():
