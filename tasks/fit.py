@@ -422,7 +422,9 @@ def conditional_fit(
     if P:
         named.append((f"ar.S.L{s}", float(coef[p])))
     ar_poly = np.r_[1.0, -coef[:p]]
-    if p and np.max(np.abs(np.roots(ar_poly[::-1]) ** -1)) >= 1.0:
+    # np.roots drops leading zeros: an AR part estimated as exactly zero has no root.
+    roots = np.roots(ar_poly[::-1]) if p else np.empty(0)
+    if roots.size and np.max(np.abs(roots) ** -1) >= 1.0:
         raise EstimationError("non-stationary AR part")
     if P and abs(coef[p]) >= 1.0:
         raise EstimationError("non-stationary seasonal AR part")
