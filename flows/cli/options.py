@@ -126,7 +126,7 @@ FalseBudgetOpt = Annotated[
         help="Expected false events per clean series per 30 days of data; every cold "
         "analysis and warm scan takes its critical value from it and the spacing, so "
         "scanning more often does not raise the false-event rate.  Default 0.5 "
-        "(CHANGEKIND_FALSE_BUDGET).  --critical overrides it.",
+        "($CHANGEKIND_FALSE_BUDGET).  --critical overrides it.",
         show_default=False,
     ),
 ]
@@ -137,7 +137,7 @@ MinEffectOpt = Annotated[
         metavar="E",
         help="Smallest effect an event needs to be written: '5%' of the local level, "
         "'2sigma' (noise sigma) or '3.5' (series units).  Smaller events are not stored "
-        "and not logged.  Default: none (CHANGEKIND_MIN_EFFECT).",
+        "and not logged.  Default: none ($CHANGEKIND_MIN_EFFECT).",
         show_default=False,
     ),
 ]

@@ -20,6 +20,7 @@ import sys
 from datetime import UTC, datetime
 from pathlib import Path
 
+import numpy as np
 import pytest
 import yaml
 
@@ -205,6 +206,9 @@ def test_prefect_deploy_all_then_a_worker_runs_the_scan(prefect_server, tmp_path
     from prefect.settings import PREFECT_API_URL
 
     data, _ = make_fleet(5)
+    # infra/prefect.yaml names rack and firmware as the series' label columns.
+    data["rack"] = data["series_id"].str.split("/").str[0]
+    data["firmware"] = np.where(data["series_id"].str.endswith("disk-0"), "7.3", "7.2")
     source = write_source(data, tmp_path / "source")
     db = f"sqlite:///{tmp_path / 'deployed.db'}"
     env = {
@@ -238,7 +242,7 @@ def test_prefect_deploy_all_then_a_worker_runs_the_scan(prefect_server, tmp_path
     _cli("worker", "start", "--pool", POOL, "--run-once", env=env, timeout=300)
     with get_client(sync_client=True) as client:
         state = client.read_flow_run(run.id).state
-    assert state is not None and state.is_completed(), state
+    assert state is not None and state.is_completed(), state.message
     # Two worker processes were started before the planning, then the batches ran.
     from prefect.client.schemas.filters import FlowRunFilter, FlowRunFilterId
 
@@ -253,3 +257,7 @@ def test_prefect_deploy_all_then_a_worker_runs_the_scan(prefect_server, tmp_path
     snap = persist.content_snapshot(db)
     assert len(snap["series_models"]) == 5  # every disk fitted (the constant one fails)
     assert snap["series_events"]
+    # The deployment's label columns reached the worker and were stored per series.
+    labels = {(r[0], r[1]): r[2] for r in snap["series_labels"]}
+    assert labels[("shelf-0/disk-0", "firmware")] == "7.3"
+    assert labels[("shelf-1/disk-0", "rack")] == "shelf-1"
