@@ -19,11 +19,13 @@ import numpy as np
 from changekind.tasks.budget import DEFAULT_BUDGET, Spend, WorkBudget
 from changekind.tasks.critical import ALLOWANCE as ALPHA
 from changekind.tasks.critical import (
+    Thresholds,
     check_budget,
     check_critical,
     default_critical,
     fit_tail,
-    series_critical,
+    heavy_note,
+    series_thresholds,
 )
 from changekind.tasks.decompose import decompose, regularize
 from changekind.tasks.effects import EFFECTS
@@ -189,8 +191,8 @@ def detect_events(
     false_budget = check_budget(false_budget)
     step = series.step_seconds if series.is_datetime else None
 
-    def default(tail: ResidualTail | None) -> float:
-        return series_critical(
+    def default(tail: ResidualTail | None) -> Thresholds:
+        return series_thresholds(
             n,
             step_seconds=step,
             business_days=series.business_days,
@@ -198,7 +200,7 @@ def detect_events(
             tail=tail,
         )
 
-    crit = default(None) if given is None else given
+    crit = default(None) if given is None else Thresholds(given)
     tail = None
     spend = Spend(budget or DEFAULT_BUDGET)
     notes: list[str] = []
@@ -206,7 +208,7 @@ def detect_events(
     n_fits = 0
 
     # Step 1: recurring patterns before anything is fitted.
-    period = find_period(decomp.adjusted, crit)
+    period = find_period(decomp.adjusted, crit.gaussian)
     if period is not None and period not in decomp.periods:
         decomp, pattern = absorb_pattern(decomp, period)
         patterns.append(pattern)
@@ -300,12 +302,15 @@ def detect_events(
     )
     if final_model.fallback:
         notes.append(final_model.fallback)
+    if crit.heavy:
+        notes.append(heavy_note(crit))
     notes.extend(spend.notes())
     return DetectionResult(
         series_id=series.series_id,
         events=events,
         model=final_model,
-        critical=crit,
+        critical=crit.gaussian,
+        pulse_critical=crit.single if crit.heavy else None,
         nobs=n,
         n_missing=series.n_missing,
         converged=converged,
@@ -347,7 +352,7 @@ def total_effect(n: int, cands: Sequence[Candidate], psi: np.ndarray) -> np.ndar
 
 
 def _final_stage(
-    y: np.ndarray, model: FittedModel, cands: list[Candidate], crit: float, spend: Spend
+    y: np.ndarray, model: FittedModel, cands: list[Candidate], crit: Thresholds, spend: Spend
 ) -> tuple[FittedModel, list[Candidate], Support, list[str], int]:
     """Exact fit, joint regression with pruning, and reclassification (steps 3-4).
 

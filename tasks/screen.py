@@ -14,7 +14,7 @@ from dataclasses import replace
 import numpy as np
 import pandas as pd
 
-from changekind.tasks.critical import check_budget, check_critical, series_critical
+from changekind.tasks.critical import Thresholds, check_budget, check_critical, series_thresholds
 from changekind.tasks.decompose import profile_at
 from changekind.tasks.effects import EFFECTS
 from changekind.tasks.fit import (
@@ -86,7 +86,7 @@ def screen_new_points(
         raise ValueError(f"n_new must be in 1..{n}")
     given = check_critical(critical)
     if given is None:
-        crit = series_critical(
+        crit = series_thresholds(
             model.nobs,
             step_seconds=model.step_seconds if series.is_datetime else None,
             business_days=model.business_days,
@@ -94,7 +94,7 @@ def screen_new_points(
             tail=model.tail,
         )
     else:
-        crit = given
+        crit = Thresholds(given)
     y = series.values - _seasonal_for(model, series) - known_effects(model, series, known)
     params = model.param_dict
     dev = y - params.get("const", 0.0)
@@ -124,7 +124,8 @@ def screen_new_points(
         series_id=series.series_id,
         events=events,
         model=model,
-        critical=crit,
+        critical=crit.gaussian,
+        pulse_critical=crit.single if crit.heavy else None,
         nobs=n,
         n_missing=series.n_missing,
         converged=True,

@@ -25,6 +25,7 @@ import numpy as np
 from scipy.fft import irfft, next_fast_len, rfft
 from scipy.special import ndtr
 
+from changekind.tasks.critical import Thresholds
 from changekind.tasks.effects import EFFECTS, SEARCHED
 
 DELTA_GRID = (0.2, 0.35, 0.5, 0.6, 0.7, 0.8, 0.9)
@@ -208,7 +209,7 @@ def inner_loop(
     w: np.ndarray,
     pi: np.ndarray,
     sigma: float,
-    crit: float,
+    crit: float | Thresholds,
     start: int,
     *,
     ls_from: int | None = None,
@@ -221,7 +222,10 @@ def inner_loop(
 
     ``ls_from`` is the first time a level shift may be placed (default two
     points after ``start``): a step at the very start of the data is the mean
-    itself, and one a point later is an AO at the start.
+    itself, and one a point later is an AO at the start.  ``crit`` is one
+    critical |t| or, for heavy-tailed residuals, :class:`Thresholds` that give
+    each type and time its own (an event is taken where |tau| is furthest
+    above its own critical value).
     """
     n = e.size
     # A short tested tail needs the patterns only as far as the tail reaches.
@@ -232,19 +236,21 @@ def inner_loop(
     ls_from = start + LS_MARGIN if ls_from is None else ls_from
     found: list[Candidate] = []
     cache: dict = {}
+    bound = _bounds(_as_thresholds(crit), pats, n)
     for _ in range(max_inner):  # bounded: at least one event a pass
         taus = tau_all(e, w, pats, sigma, start, cache=cache)
         taus["LS"][1][:ls_from] = np.nan
-        stacked = np.vstack([np.abs(_zero_nan(taus[k][1])) for k in EVENT_TYPES])
-        best_abs = np.where(allowed, stacked.max(axis=0), 0.0)
+        # |tau| over each type's own critical value: an event where it reaches 1.
+        stacked = np.vstack([np.abs(_zero_nan(taus[k][1])) / bound(k, taus) for k in EVENT_TYPES])
+        best = np.where(allowed, stacked.max(axis=0), 0.0)
         per_pass = 1 if len(found) < BATCH_FROM else BATCH
-        picked = _far_apart(best_abs, crit, per_pass, SEPARATION)
+        picked = _far_apart(best, 1.0, per_pass, SEPARATION)
         if not picked:
             break
         for T in picked:
             scores = _scores(taus, T)
             kind = max(EVENT_TYPES, key=lambda k: scores[k])
-            if abs(float(taus[kind][1][T])) < crit:  # penalized TC won on score only
+            if stacked[EVENT_TYPES.index(kind), T] < 1.0:  # won on score, not above its value
                 kind = EVENT_TYPES[int(np.argmax(stacked[:, T]))]
             omega = float(taus[kind][0][T])
             delta = float(taus["TC"][2][T]) if kind == "TC" else None
@@ -294,7 +300,7 @@ def joint(
     w: np.ndarray,
     pi: np.ndarray,
     sigma: float,
-    crit: float,
+    crit: float | Thresholds,
     cands: list[Candidate],
     *,
     base: np.ndarray | None = None,
@@ -304,12 +310,16 @@ def joint(
     Least squares of the residuals on the candidates' residual patterns
     (O(n k) to build, O(n k^2) to solve).  ``base`` holds columns estimated
     with them but never dropped (the mean's pattern, so a level shift's
-    standard error carries the uncertainty of the level).
+    standard error carries the uncertainty of the level).  With
+    :class:`Thresholds` each candidate is held to its own pattern's critical
+    value, and the weakest is the one least far above its own.
     """
     cands = list(cands)
     if not cands:
         return []
     full = design(cands, pi, e.size)
+    limits = _as_thresholds(crit)
+    own = np.array([limits.for_pattern(full[c.position :, j]) for j, c in enumerate(cands)])
     if base is not None:
         full = np.column_stack([full, base])
     Xw = full * w[:, None]
@@ -327,12 +337,35 @@ def joint(
         coef = (inv @ cross[idx])[: len(keep)]
         se = sigma * np.sqrt(np.clip(np.diag(inv)[: len(keep)], 1e-300, None))
         t = coef / se
-        weakest = int(np.argmin(np.abs(t)))
-        if abs(t[weakest]) >= crit:
+        need = own[keep]
+        weakest = int(np.argmin(np.abs(t) / need if need.min() > 0 else np.abs(t)))
+        if abs(t[weakest]) >= need[weakest]:
             pairs = zip((cands[i] for i in keep), coef, t, strict=True)
             return [replace(c, omega=float(o), t=float(tt)) for c, o, tt in pairs]
         del keep[weakest]
     return []
+
+
+def _as_thresholds(crit: float | Thresholds) -> Thresholds:
+    return crit if isinstance(crit, Thresholds) else Thresholds(float(crit))
+
+
+def _bounds(limits: Thresholds, pats: dict, n: int):
+    """``bound(kind, taus)``: each time's critical |t| for the type (a float when Gaussian)."""
+    if not limits.heavy:
+        return lambda kind, taus: limits.gaussian
+    fixed = {kind: limits.along(pats[kind], n) for kind in ("AO", "LS", "IO")}
+    grid = np.fromiter(pats["TC"], dtype=float)
+    tc = np.column_stack([limits.along(pats["TC"][d], n) for d in grid])
+    rows = np.arange(n)
+
+    def bound(kind: str, taus: dict) -> np.ndarray:
+        if kind != "TC":
+            return fixed[kind]
+        delta = np.nan_to_num(taus["TC"][2], nan=float(grid[0]))
+        return tc[rows, np.clip(np.searchsorted(grid, delta), 0, grid.size - 1)]
+
+    return bound
 
 
 def design(cands: Sequence[Candidate], pi: np.ndarray, n: int) -> np.ndarray:

@@ -413,3 +413,7 @@ class DetectionResult:
     """Warm screen: robust scale of the new points' residuals over the model's sigma."""
     budget_spent: bool = False
     """The work budget ran out: the engine kept what it had (the notes say where)."""
+    pulse_critical: float | None = None
+    """Heavy-tailed residuals: the critical |t| of a single-point event (IO),
+    above ``critical``, which holds for effects spread over many points
+    (changekind.tasks.critical.Thresholds); None when the tails are Gaussian."""
