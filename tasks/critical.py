@@ -237,6 +237,16 @@ def series_thresholds(
     return Thresholds(gaussian, series_critical(n, **kw, tail=tail), float(tail.df))
 
 
+CLIP = 3.0
+"""Under heavy tails, level shifts and temporary changes are tested on
+residuals clipped at this many sigma (Huber's clipping of residuals, common
+practice in robust regression): one huge residual then cannot pass for a shift,
+while a real shift, which moves many residuals by a few sigma, loses little."""
+
+SPREAD_TYPES = ("LS", "TC")
+"""The effect types tested on clipped residuals when the tails are heavy."""
+
+
 def heavy_note(limits: Thresholds) -> str:
     """The result note that says how heavy tails raised the critical values."""
     return (
@@ -257,8 +267,10 @@ class Thresholds:
     P(|tau| > c) ~ C (c ||h||_2 / ||h||_alpha)^-alpha, so the pattern's
     critical value is ``single * ||h||_alpha / ||h||_2``, never below the
     Gaussian one: ``single`` for the IO (one residual), a little less for an
-    AO, and the Gaussian value for a level shift summed over many points
-    (||h||_alpha / ||h||_2 = m^(1/alpha - 1/2) for m equal weights).
+    AO.  Level shifts and temporary changes are instead tested on residuals
+    clipped at ``CLIP`` sigma (:meth:`for_spread`): summed over many points
+    they keep the Gaussian value, while one residual too small to be an IO
+    but large enough to move a sum cannot make a shift.
 
     Attributes
     ----------
@@ -295,6 +307,39 @@ class Thresholds:
             return self.gaussian
         la = float(np.sum((a / l2) ** self.alpha)) ** (1.0 / self.alpha)
         return max(self.gaussian, self.single * la)
+
+    def for_spread(self, h: np.ndarray) -> float:
+        """Critical |t| of a spread effect (LS, TC) tested on clipped residuals.
+
+        Under heavy tails the spread types are tested on residuals clipped at
+        ``CLIP`` sigma (:data:`CLIP`), so one residual adds at most CLIP
+        |h_j| / ||h||_2 to the statistic: the value is
+        ``max(gaussian, CLIP rho + gaussian sqrt(1 - rho^2))`` with rho =
+        max |h| / ||h||_2 (a shift at the last point, rho = 1, cannot clear it).
+        """
+        if not self.heavy:
+            return self.gaussian
+        a = np.abs(np.asarray(h, dtype=float))
+        l2 = math.sqrt(float(np.dot(a, a)))
+        rho = float(a.max()) / l2 if l2 > 0 else 1.0
+        return self._spread(rho)
+
+    def spread_along(self, h: np.ndarray, n: int) -> np.ndarray | float:
+        """:meth:`for_spread` at every time T of an n-point series, pattern cut at n - T."""
+        if not self.heavy:
+            return self.gaussian
+        a = np.abs(np.asarray(h, dtype=float))
+        if not a.size or not a.max() > 0:
+            return self.gaussian
+        l2 = np.sqrt(np.cumsum(a * a))
+        peak = np.maximum.accumulate(a)
+        length = np.minimum(n - np.arange(n), a.size) - 1
+        rho = np.where(l2[length] > 0, peak[length] / np.where(l2[length] > 0, l2[length], 1), 1.0)
+        return self._spread(rho)
+
+    def _spread(self, rho):
+        rho = np.clip(rho, 0.0, 1.0)
+        return np.maximum(self.gaussian, CLIP * rho + self.gaussian * np.sqrt(1.0 - rho * rho))
 
     def along(self, h: np.ndarray, n: int) -> np.ndarray | float:
         """Critical |t| at every time T of an n-point series for pattern ``h`` cut at n - T.

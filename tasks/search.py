@@ -25,7 +25,7 @@ import numpy as np
 from scipy.fft import irfft, next_fast_len, rfft
 from scipy.special import ndtr
 
-from changekind.tasks.critical import Thresholds
+from changekind.tasks.critical import CLIP, SPREAD_TYPES, Thresholds
 from changekind.tasks.effects import EFFECTS, SEARCHED
 
 DELTA_GRID = (0.2, 0.35, 0.5, 0.6, 0.7, 0.8, 0.9)
@@ -236,9 +236,15 @@ def inner_loop(
     ls_from = start + LS_MARGIN if ls_from is None else ls_from
     found: list[Candidate] = []
     cache: dict = {}
-    bound = _bounds(_as_thresholds(crit), pats, n)
+    limits = _as_thresholds(crit)
+    bound = _bounds(limits, pats, n)
     for _ in range(max_inner):  # bounded: at least one event a pass
         taus = tau_all(e, w, pats, sigma, start, cache=cache)
+        if limits.heavy:  # spread types on clipped residuals (Thresholds.for_spread)
+            clipped = tau_all(
+                np.clip(e, -CLIP * sigma, CLIP * sigma), w, pats, sigma, start, cache=cache
+            )
+            taus.update({kind: clipped[kind] for kind in SPREAD_TYPES})
         taus["LS"][1][:ls_from] = np.nan
         # |tau| over each type's own critical value: an event where it reaches 1.
         stacked = np.vstack([np.abs(_zero_nan(taus[k][1])) / bound(k, taus) for k in EVENT_TYPES])
@@ -319,7 +325,14 @@ def joint(
         return []
     full = design(cands, pi, e.size)
     limits = _as_thresholds(crit)
-    own = np.array([limits.for_pattern(full[c.position :, j]) for j, c in enumerate(cands)])
+    own = np.array(
+        [
+            (limits.for_spread if c.kind in SPREAD_TYPES else limits.for_pattern)(
+                full[c.position :, j]
+            )
+            for j, c in enumerate(cands)
+        ]
+    )
     if base is not None:
         full = np.column_stack([full, base])
     Xw = full * w[:, None]
@@ -354,9 +367,10 @@ def _bounds(limits: Thresholds, pats: dict, n: int):
     """``bound(kind, taus)``: each time's critical |t| for the type (a float when Gaussian)."""
     if not limits.heavy:
         return lambda kind, taus: limits.gaussian
-    fixed = {kind: limits.along(pats[kind], n) for kind in ("AO", "LS", "IO")}
+    fixed = {kind: limits.along(pats[kind], n) for kind in ("AO", "IO")}
+    fixed["LS"] = limits.spread_along(pats["LS"], n)
     grid = np.fromiter(pats["TC"], dtype=float)
-    tc = np.column_stack([limits.along(pats["TC"][d], n) for d in grid])
+    tc = np.column_stack([limits.spread_along(pats["TC"][d], n) for d in grid])
     rows = np.arange(n)
 
     def bound(kind: str, taus: dict) -> np.ndarray:

@@ -125,3 +125,32 @@ def test_heavy_tails_keep_level_shifts_findable():
         result = analyse_series("t3", stamps, y)
         found += any(e.event_type == "LS" and abs(e.position - 360) <= 1 for e in result.events)
     assert found >= 8
+
+
+def test_spread_effects_are_held_to_the_clipped_residual_bound():
+    limits = Thresholds(gaussian=4.0, single=12.0, alpha=3.0)
+    # rho = max|h| / ||h||_2; the bound CLIP rho + gaussian sqrt(1 - rho^2) (numpy).
+    ls = np.array([1.0, 0.4, 0.4, 0.4])
+    rho = 1.0 / np.linalg.norm(ls)
+    assert_allclose(limits.for_spread(ls), 3.0 * rho + 4.0 * math.sqrt(1 - rho**2))
+    assert 4.0 < limits.for_spread(np.full(2000, 0.4)) < 4.07  # far from the end: near Gaussian
+    n = 30
+    long = np.concatenate([[1.0], np.full(n - 1, 0.4)])
+    along = limits.spread_along(long, n)
+    for T in (0, 20, 26, 29):
+        assert_allclose(along[T], limits.for_spread(long[: n - T]))
+
+
+def test_a_lone_large_residual_near_the_end_is_not_a_level_shift_under_heavy_tails():
+    # AR(1), Student-t(3) innovations, a 12-sigma spike 10 points before the
+    # end of 480 hourly points: clipped at 3 sigma for the spread types, it
+    # cannot pass for a shift (an AO or IO if anything).
+    rng = np.random.default_rng(9)
+    stamps = pd.date_range("2026-01-01", periods=480, freq="h")
+    for _ in range(8):
+        shocks = rng.standard_t(3, size=480) / math.sqrt(3)
+        shocks[470] += 12.0
+        result = analyse_series("t3", stamps, lfilter([1.0], [1.0, -0.6], shocks) + 50)
+        assert not [
+            e for e in result.events if e.event_type in ("LS", "TC") and abs(e.position - 470) <= 2
+        ]
