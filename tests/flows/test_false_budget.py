@@ -31,18 +31,19 @@ from tests.fleetsim import scan_fleet, sid, simulate_fleet, write_fleet
 
 HISTORY, SCANS, PER_SCAN = 720, 24, 60
 CLEAN = 24  # per innovation type
-SHIFTED = 8  # Gaussian series with one +3 sigma level shift
+SHIFTED = 8  # per innovation type: series with one +3 sigma level shift
 SHIFT_SIGMA = 3.0
 
 
 def _fleet(tmp_path_factory):
     rng = np.random.default_rng(20310504)
-    n = 2 * CLEAN + SHIFTED
-    heavy = [CLEAN <= i < 2 * CLEAN for i in range(n)]
-    # Shifts spread over the scanned hours, mid-hour, in the Gaussian block's tail.
+    n = 2 * CLEAN + 2 * SHIFTED
+    # Blocks: clean Gaussian, clean heavy-tailed, shifted Gaussian, shifted heavy-tailed.
+    heavy = [CLEAN <= i < 2 * CLEAN or i >= 2 * CLEAN + SHIFTED for i in range(n)]
+    # Shifts spread over the scanned hours, mid-hour.
     shifts = {
-        2 * CLEAN + j: (HISTORY + (1 + 2 * j) * PER_SCAN + 17 + 5 * j, SHIFT_SIGMA)
-        for j in range(SHIFTED)
+        2 * CLEAN + j: (HISTORY + (1 + 2 * (j % SHIFTED)) * PER_SCAN + 17 + 5 * j, SHIFT_SIGMA)
+        for j in range(2 * SHIFTED)
     }
     frame = simulate_fleet(n, history=HISTORY, scans=SCANS, heavy=heavy, shifts=shifts, rng=rng)
     path = write_fleet(frame, tmp_path_factory.mktemp("budget") / "fleet.parquet")
@@ -85,9 +86,11 @@ at 3 sigma on an AR(1) with phi 0.6 the step's estimated time wandered up to
 same sum)."""
 
 
-def _found(run, truth):
+def _found(run, truth, only=None):
     hits = 0
     for s, when in truth.items():
+        if only is not None and s not in only:
+            continue
         at = pd.Timestamp(when)
         hits += any(
             e.event_type == "LS" and abs(pd.Timestamp(t) - at) <= pd.Timedelta(minutes=NEAR_MINUTES)
@@ -102,8 +105,11 @@ def test_default_budget_holds_over_hourly_scans_and_keeps_3_sigma_shifts(fleet):
     assert run.modes["warm"] >= SCANS * len(truth)  # the warm path did the scans
     assert false["gaussian"] <= limit, (false, expected)
     assert false["heavy"] <= limit, (false, expected)
-    # Every +3 sigma shift found as a level shift (one miss allowed).
-    assert _found(run, truth) >= SHIFTED - 1
+    # +3 sigma shifts found as level shifts, one miss allowed per innovation
+    # type (bench_budget measured 18/20 Gaussian and 19/20 heavy-tailed).
+    gaussian = {sid(2 * CLEAN + j) for j in range(SHIFTED)}
+    assert _found(run, truth, gaussian) >= SHIFTED - 1
+    assert _found(run, truth) - _found(run, truth, gaussian) >= SHIFTED - 1
 
 
 @pytest.mark.slow
@@ -115,7 +121,7 @@ def test_a_larger_budget_spends_about_what_it_allows(fleet):
     # The budget is spent, not wasted: far above zero (Poisson 0.1 % lower bound of
     # a quarter of the allowance, a loose bound for Bonferroni's conservatism).
     assert false["gaussian"] + false["heavy"] >= stats.poisson.ppf(0.001, expected / 2)
-    assert _found(run, truth) == SHIFTED
+    assert _found(run, truth) >= 2 * SHIFTED - 1
 
 
 def test_budget_critical_is_the_per_point_share_of_the_budget():
