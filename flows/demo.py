@@ -42,6 +42,7 @@ import pandas as pd
 from scipy.signal import lfilter
 
 from changekind.tasks.errors import ConfigError
+from changekind.tasks.timeaxis import parse_times
 from changekind.tasks.types import EVENT_TYPES, Event
 
 TC_DECAY = 0.8
@@ -436,8 +437,7 @@ def _positions(times: pd.Series, step) -> np.ndarray:
         raise ConfigError(f"step {step!r} is not a time interval such as '5min'") from exc
     if step_td <= pd.Timedelta(0):
         raise ConfigError(f"step must be positive, got {step!r}")
-    parsed = pd.to_datetime(pd.Series(times, dtype=object), utc=True, format="mixed")
-    ns = parsed.dt.tz_convert(None).to_numpy(dtype="datetime64[ns]").view("i8")
+    ns = parse_times("scored events", pd.Series(times, dtype=object)).instants  # UTC (timeaxis)
     return ns.astype(float) / float(step_td.value)
 
 

@@ -42,6 +42,7 @@ from changekind.tasks.errors import ChangekindError, SeriesError
 from changekind.tasks.fetch import SeriesWindow, SourceProblem, SourceSpec, read_windows
 from changekind.tasks.fit import pi_weights
 from changekind.tasks.magnitude import MinEffect, keep_effects
+from changekind.tasks.timeaxis import TimeAxis, parse_instant
 from changekind.tasks.types import Event, FittedModel
 from changekind.tasks.window import (
     complete_windows,
@@ -626,28 +627,18 @@ def _after(event: Event, options: AnalysisOptions) -> bool:
 
 
 def _at_or_after(label: str, bound: str) -> bool:
-    try:
-        return float(label) >= float(bound)
-    except ValueError:
-        pass
-    a, b = pd.Timestamp(label), pd.Timestamp(bound)
-    if (a.tz is None) != (b.tz is None):
-        a = a.tz_localize("UTC") if a.tz is None else a
-        b = b.tz_localize("UTC") if b.tz is None else b
-    return a >= b
+    """Whether an event time is at or after a bound (a naive time is UTC)."""
+    return bool(parse_instant(label, what="event time") >= parse_instant(bound, what="bound"))
 
 
 def _as_time(label: str | None, like: pd.Index):
+    """A label as a value comparable with ``like`` (naive labels are UTC, timeaxis' rule)."""
     if label is None:
         return None
-    if isinstance(like, pd.DatetimeIndex):
-        when = pd.Timestamp(label)
-        if when.tz is None and like.tz is not None:
-            when = when.tz_localize("UTC").tz_convert(like.tz)
-        elif when.tz is not None and like.tz is None:
-            when = when.tz_convert("UTC").tz_localize(None)
-        return when
-    return float(label)
+    when = TimeAxis.of_index("", like).instant(label)
+    if isinstance(like, pd.DatetimeIndex) and like.tz is None:
+        return when.tz_localize(None)
+    return when
 
 
 def _after_watermark(index: pd.Index, watermark: str | None) -> np.ndarray:
@@ -658,9 +649,18 @@ def _after_watermark(index: pd.Index, watermark: str | None) -> np.ndarray:
 
 
 def _position(index: pd.Index, label: str) -> int | None:
+    """The grid point of an event time: the nearest one within half a step (the rounding
+    the warm screen's ``known_effects`` places it by), or None outside the grid."""
+    if len(index) == 0:
+        return None
     when = _as_time(label, index)
-    hits = np.flatnonzero(np.asarray(index == when))
-    return int(hits[0]) if hits.size else None
+    i = int(index.get_indexer([when], method="nearest")[0])
+    if i < 0:
+        return None
+    if len(index) < 2:
+        return i if index[i] == when else None
+    step = index[1] - index[0] if i == 0 else index[i] - index[i - 1]
+    return i if 2 * abs(index[i] - when) <= step else None
 
 
 def _points_since(index: pd.Index, label: str | None, step_seconds: float | None) -> float | None:

@@ -28,6 +28,7 @@ from changekind.tasks.errors import (
     TimestampError,
     TooShortError,
 )
+from changekind.tasks.timeaxis import parse_times
 from changekind.tasks.types import Decomposition, RegularSeries, StampLabels
 
 MAX_MAGNITUDE = 1e150
@@ -479,14 +480,6 @@ def _whole_seconds(stamps: np.ndarray) -> bool:
     return not np.isnat(stamps).any() and bool((stamps.view("i8") % 1_000_000_000 == 0).all())
 
 
-def _to_datetime(text: pd.Series, fmt: str) -> pd.Series:
-    """Parse text times; mixed UTC offsets (a zone across a clock change) go to UTC."""
-    try:
-        return pd.to_datetime(text, errors="coerce", format=fmt, utc=False)
-    except ValueError:  # "Mixed timezones detected"
-        return pd.to_datetime(text, errors="coerce", format=fmt, utc=True)
-
-
 def _is_numeric(values) -> bool:
     dtype = getattr(values, "dtype", None)
     return dtype is not None and np.issubdtype(dtype, np.number)
@@ -503,11 +496,13 @@ def _parse_timestamps(series_id: str, timestamps) -> tuple[np.ndarray, list[str]
 
     Returns the parsed stamps, their text as given (None when that text is each
     stamp's own ISO form, for zone-less whole-second date-times: the labels are
-    then made on demand), and the time zone (or None).
+    then made on demand), and the time zone (or None).  The rules (a naive time
+    is UTC, ISO 8601 text only, all-number text is a numeric axis, nothing
+    outside the nanosecond range) are :func:`~changekind.tasks.timeaxis.parse_times`'.
     """
     dtype = getattr(timestamps, "dtype", None)
-    if isinstance(dtype, np.dtype) and dtype.kind == "M":  # typed, zone-less: the common case
-        stamps = np.asarray(timestamps).astype("datetime64[ns]")
+    if isinstance(dtype, np.dtype) and dtype == np.dtype("datetime64[ns]"):  # the common case
+        stamps = np.asarray(timestamps)
         if np.isnat(stamps).any():
             raise TimestampError(
                 series_id,
@@ -516,36 +511,14 @@ def _parse_timestamps(series_id: str, timestamps) -> tuple[np.ndarray, list[str]
         if _whole_seconds(stamps):
             return stamps, None, None
         return stamps, [pd.Timestamp(t).isoformat() for t in stamps], None
-    raw = pd.Series(timestamps).reset_index(drop=True)
-    if raw.isna().any():
-        raise TimestampError(
-            series_id, f"{int(raw.isna().sum())} timestamp(s) are missing; every row needs one"
-        )
-    if raw.dtype.kind in "iuf":
-        stamps = raw.to_numpy(dtype=float)
-        if not np.isfinite(stamps).all():
-            raise TimestampError(series_id, "numeric timestamps must be finite")
-        labels = [f"{int(v)}" if float(v).is_integer() else repr(float(v)) for v in stamps]
-        return stamps, labels, None
-    if isinstance(raw.dtype, pd.DatetimeTZDtype):
-        parsed = raw
-        labels = [ts.isoformat() for ts in parsed]
-    else:
-        text = raw.astype(str)
-        parsed = _to_datetime(text, "ISO8601")
-        if parsed.isna().any():
-            parsed = _to_datetime(text, "mixed")
-        if parsed.isna().any():
-            bad = text[parsed.isna()].iloc[0]
-            raise TimestampError(
-                series_id,
-                f"{int(parsed.isna().sum())} timestamp(s) cannot be parsed (first: {bad!r}); "
-                "use ISO 8601 such as 2026-01-31T14:05:00",
-            )
-        labels = list(raw.astype(str))
-    tz = None
-    if isinstance(parsed.dtype, pd.DatetimeTZDtype):
-        tz = parsed.dt.tz
-        parsed = parsed.dt.tz_convert("UTC").dt.tz_localize(None)
-    stamps = parsed.to_numpy(dtype="datetime64[ns]")
-    return stamps, labels, tz
+    parsed = parse_times(series_id, timestamps)
+    labels = list(parsed.texts) if parsed.texts is not None else None
+    if not parsed.axis.is_datetime:
+        if labels is None:
+            labels = [parsed.label(i) for i in range(len(parsed))]
+        return parsed.instants, labels, None
+    stamps = parsed.utc_naive()
+    zone = parsed.axis.zone
+    if labels is None and (zone is not None or not _whole_seconds(stamps)):
+        labels = [parsed.label(i) for i in range(len(parsed))]
+    return stamps, labels, zone

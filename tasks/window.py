@@ -14,7 +14,7 @@ engine needs to see a level shift that lasts hours.  Three pure steps:
 Windows are left-closed, ``[start, start + window)``, labelled by their start
 and aligned to the Unix epoch, as ``pandas.Timestamp.floor`` aligns them: a 10 s
 window starts at :00, :10, ...; a window that divides a day starts at midnight.
-Naive timestamps are aligned on their own clock; time-zone aware ones in UTC
+A naive time is UTC (:mod:`changekind.tasks.timeaxis`): windows are aligned in UTC
 (labels are given back in the input's zone).
 """
 
@@ -44,6 +44,7 @@ from changekind.tasks.errors import (
     TimestampError,
     TooShortError,
 )
+from changekind.tasks.timeaxis import parse_instant, parse_times
 from changekind.tasks.types import DetectionResult, Event, FittedModel, format_duration
 
 if TYPE_CHECKING:
@@ -954,46 +955,18 @@ def _check_values(series_id: str, values) -> np.ndarray:
 def _datetimes(series_id: str, timestamps) -> tuple[np.ndarray, object]:
     """UTC-naive datetime64[ns] and the input's time zone (None for naive input).
 
-    Date/time values are taken as they are; text is parsed as ISO 8601 (then
-    any format pandas recognises), with mixed UTC offsets (a local zone across
-    a daylight-saving change) read as UTC.
+    Parsed by :func:`~changekind.tasks.timeaxis.parse_times`: a naive time is
+    UTC, text is ISO 8601, mixed UTC offsets (a local zone across a
+    daylight-saving change) are read as UTC; numbers are refused.
     """
-    raw = pd.Series(timestamps).reset_index(drop=True)
-    if raw.isna().any():
+    stamps = parse_times(series_id, timestamps)
+    if not stamps.axis.is_datetime:
         raise TimestampError(
-            series_id, f"{int(raw.isna().sum())} timestamp(s) are missing; every row needs one"
+            series_id,
+            "timestamps are plain numbers; windows of time need dates/times (ISO 8601 text, "
+            "or epoch numbers read with a timestamp unit)",
         )
-    plain = "timestamps are plain numbers; windows of time need dates/times (ISO 8601 text, "
-    plain += "or epoch numbers read with a timestamp unit)"
-    if raw.dtype.kind in "iufb":
-        raise TimestampError(series_id, plain)
-    if not (raw.dtype.kind == "M" or isinstance(raw.dtype, pd.DatetimeTZDtype)):
-        text = raw.astype(str).str.strip()
-        if len(text) and pd.to_numeric(text, errors="coerce").notna().all():
-            raise TimestampError(series_id, plain)
-        raw = _parse_text(series_id, text)
-    tz = raw.dt.tz
-    if tz is not None:
-        raw = raw.dt.tz_convert("UTC").dt.tz_localize(None)
-    return raw.to_numpy(dtype="datetime64[ns]"), tz
-
-
-def _parse_text(series_id: str, text: pd.Series) -> pd.Series:
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")  # pandas' format-inference notices
-        for fmt in ("ISO8601", "mixed"):
-            for utc in (False, True):
-                try:
-                    return pd.to_datetime(text, format=fmt, utc=utc)
-                except (ValueError, TypeError, OverflowError):
-                    continue
-        coerced = pd.to_datetime(text, format="mixed", utc=True, errors="coerce")
-    bad = text[coerced.isna()]
-    raise TimestampError(
-        series_id,
-        f"{len(bad)} timestamp(s) cannot be parsed (first: {bad.iloc[0]!r}); "
-        "use ISO 8601 such as 2026-01-31T14:05:00",
-    )
+    return stamps.utc_naive(), stamps.axis.zone
 
 
 def _check_shape(
@@ -1125,10 +1098,9 @@ def _event_timestamp(value: str | pd.Timestamp) -> pd.Timestamp:
         if _NUMBER.match(value):
             raise ConfigError(f"event time {value!r} is a number, not a date/time; {example}")
         try:
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore")  # pandas' format-guessing notices
-                stamp = pd.Timestamp(value.strip())
-        except (ValueError, TypeError, OverflowError):
+            parse_instant(value)  # ISO 8601 only (timeaxis); the stamp keeps its own zone
+            stamp = pd.Timestamp(value.strip())
+        except (ConfigError, ValueError, TypeError, OverflowError):
             raise ConfigError(f"event time {value!r} is not a date/time; {example}") from None
     if stamp is pd.NaT:
         raise ConfigError(f"event time {value!r} is not a date/time; {example}")

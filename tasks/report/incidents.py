@@ -37,6 +37,7 @@ from changekind.tasks.report.style import (
     VERDICT_COLOURS,
     style_of,
 )
+from changekind.tasks.timeaxis import parse_times
 from changekind.tasks.types import number
 
 __all__ = [
@@ -287,7 +288,8 @@ def read_member_series(
             part = data[data["series_id"] == m.series_id]
             if part.empty:
                 continue
-            stamps = pd.DatetimeIndex(pd.to_datetime(part["timestamp"], utc=True, format="mixed"))
+            utc = parse_times(m.series_id, part["timestamp"]).utc_naive()  # timeaxis' rule
+            stamps = pd.DatetimeIndex(utc).tz_localize("UTC")
             found.append(MemberSeries(m, stamps, part["value"].to_numpy(dtype=float)))
         out[inc.incident_id] = found
     return out
