@@ -44,14 +44,12 @@ from changekind.tasks.fit import pi_weights
 from changekind.tasks.magnitude import MinEffect, keep_effects
 from changekind.tasks.timeaxis import TimeAxis, parse_instant
 from changekind.tasks.types import Event, FittedModel
-from changekind.tasks.window import (
+from changekind.tasks.window.detection import detect_windowed, screen_windowed, windowed_model
+from changekind.tasks.window.summary import (
     complete_windows,
     count_windows,
-    detect_windowed,
     last_window_label,
-    screen_windowed,
     summarize_windows,
-    windowed_model,
 )
 
 Mode = Literal["cold", "warm", "unchanged", "deferred", "failed"]
@@ -119,7 +117,7 @@ class AnalysisOptions:
         Windowed mode (changekind.tasks.window): raw points are summarized into
         windows of this width and the engine models the window medians and
         spreads; ``min_points`` and ``context_points`` then count windows.
-        Canonical text (:func:`~changekind.tasks.window.window_text`).
+        Canonical text (:func:`~changekind.tasks.window.summary.window_text`).
     """
 
     critical: float | None = None

@@ -26,7 +26,7 @@ from changekind.tasks.errors import ConfigError, mask_url
 from changekind.tasks.fetch import open_source
 from changekind.tasks.labels import check_label_columns
 from changekind.tasks.timeaxis import parse_instant
-from changekind.tasks.window import window_text
+from changekind.tasks.window.summary import window_text
 
 RUNNERS: tuple[str, ...] = ("threads", "processes", "dask")
 

@@ -31,7 +31,8 @@ from changekind.flows.cli.options import (
 from changekind.tasks.errors import ChangekindError
 from changekind.tasks.fetch import open_source
 from changekind.tasks.types import format_duration, number
-from changekind.tasks.window import MAD_SCALE, drill, parse_window
+from changekind.tasks.window.drill import drill
+from changekind.tasks.window.summary import MAD_SCALE, parse_window
 
 # --------------------------------------------------------------------------- drill
 

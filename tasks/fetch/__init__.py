@@ -51,7 +51,7 @@ from changekind.tasks.fetch.reading import (
     read_windows,
     survey_source,
 )
-from changekind.tasks.fetch.times import _Axis, numeric_text
+from changekind.tasks.fetch.times import numeric_text
 from changekind.tasks.fetch.values import (
     CONNECT_TIMEOUT_S,
     CSV_SUFFIXES,
@@ -90,7 +90,6 @@ __all__ = [
     "SourceSurvey",
     "Span",
     "TimeKind",
-    "_Axis",  # tasks/window.py reads the time axis of a source (engine file; see DEVELOPERS.md)
     "iter_batches",
     "iter_window_batches",
     "list_series",
