@@ -35,12 +35,12 @@ import numpy as np
 import pandas as pd
 from scipy.special import chdtri
 
+from changekind.tasks.arma import pi_weights
 from changekind.tasks.critical import FALSE_BUDGET
 from changekind.tasks.decompose import MIN_POINTS, decompose, regularize
 from changekind.tasks.detect import detect_events, reestimate, screen_new_points
 from changekind.tasks.errors import ChangekindError, SeriesError
 from changekind.tasks.fetch import SeriesWindow, SourceProblem, SourceSpec, read_windows
-from changekind.tasks.fit import pi_weights
 from changekind.tasks.magnitude import MinEffect, keep_effects
 from changekind.tasks.timeaxis import TimeAxis, parse_instant
 from changekind.tasks.types import Event, FittedModel

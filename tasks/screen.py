@@ -14,18 +14,17 @@ from dataclasses import replace
 import numpy as np
 import pandas as pd
 
-from changekind.tasks.critical import check_budget, check_critical, series_critical
-from changekind.tasks.decompose import profile_at
-from changekind.tasks.effects import EFFECTS
-from changekind.tasks.fit import (
-    EstimationError,
+from changekind.tasks.arma import (
     interpolate_missing,
     linear_filter,
     pi_weights,
     polynomials,
     psi_weights,
-    refit,
 )
+from changekind.tasks.critical import check_budget, check_critical, series_critical
+from changekind.tasks.decompose import profile_at
+from changekind.tasks.effects import EFFECTS
+from changekind.tasks.estimation import EstimationError, refit
 from changekind.tasks.results import to_event
 from changekind.tasks.search import design, inner_loop, joint, robust_sigma, weights_for
 from changekind.tasks.threads import single_blas_thread
