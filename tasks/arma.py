@@ -17,15 +17,33 @@ from scipy.signal import lfilter
 
 from changekind.tasks.types import FittedModel
 
+Order = tuple[int, int, int]
+SeasonalOrder = tuple[int, int, int, int]
+
 
 def polynomials(model: FittedModel) -> tuple[np.ndarray, np.ndarray]:
     """Full AR polynomial (with differencing) and MA polynomial, lag-0 first.
 
     statsmodels' sign convention: phi(B) = 1 - phi_1 B - ..., theta(B) = 1 + theta_1 B + ...
     """
-    params = dict(model.params)
-    p, d, q = model.order
-    P, D, Q, s = model.seasonal_order
+    ar, ma = _arma_polys(dict(model.params), model.order, model.seasonal_order)
+    d, (_, D, _, s) = model.order[1], model.seasonal_order
+    if s:
+        for _ in range(D):
+            seas_diff = np.zeros(s + 1)
+            seas_diff[0], seas_diff[s] = 1.0, -1.0
+            ar = np.convolve(ar, seas_diff)
+    for _ in range(d):
+        ar = np.convolve(ar, [1.0, -1.0])
+    return ar, ma
+
+
+def _arma_polys(
+    params: dict[str, float], order: Order, seasonal_order: SeasonalOrder
+) -> tuple[np.ndarray, np.ndarray]:
+    """AR and MA polynomials of the stationary part (no differencing), lag 0 first."""
+    p, _, q = order
+    P, _, Q, s = seasonal_order
     ar = np.array([1.0] + [-params.get(f"ar.L{i}", 0.0) for i in range(1, p + 1)])
     ma = np.array([1.0] + [params.get(f"ma.L{i}", 0.0) for i in range(1, q + 1)])
     if s:
@@ -39,12 +57,6 @@ def polynomials(model: FittedModel) -> tuple[np.ndarray, np.ndarray]:
             sma[i * s] = params.get(f"ma.S.L{i * s}", 0.0)
         ar = np.convolve(ar, sar)
         ma = np.convolve(ma, sma)
-        for _ in range(D):
-            seas_diff = np.zeros(s + 1)
-            seas_diff[0], seas_diff[s] = 1.0, -1.0
-            ar = np.convolve(ar, seas_diff)
-    for _ in range(d):
-        ar = np.convolve(ar, [1.0, -1.0])
     return ar, ma
 
 

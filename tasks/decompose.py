@@ -105,36 +105,7 @@ def regularize(series_id: str, timestamps, values) -> RegularSeries:
     # Step 1: values.
     if len(values) != len(timestamps):
         raise SeriesError(series_id, "timestamps and values have different lengths")
-    if _is_numeric(values):  # the common case: nothing to parse
-        vals = np.asarray(values, dtype=float)
-    else:
-        raw_values = pd.Series(np.asarray(values, dtype=object))
-        numeric = pd.to_numeric(raw_values, errors="coerce").astype(float)
-        bad = numeric.isna() & raw_values.notna() & ~_is_nan_like(raw_values)
-        if bad.any():
-            first = raw_values[bad].iloc[0]
-            raise NonNumericError(
-                series_id,
-                f"{int(bad.sum())} value(s) are not numbers (first: {first!r}); "
-                "clean the value column or mark missing samples as empty",
-            )
-        vals = numeric.to_numpy(dtype=float)
-    if np.isinf(vals).any():
-        where = int(np.flatnonzero(np.isinf(vals))[0])
-        raise NonFiniteError(
-            series_id,
-            f"{int(np.isinf(vals).sum())} value(s) are infinite (first at {timestamps[where]!r}); "
-            "leave a missing sample empty instead of writing inf",
-        )
-    huge = np.abs(vals) > MAX_MAGNITUDE
-    if huge.any():
-        where = int(np.flatnonzero(huge)[0])
-        raise NonFiniteError(
-            series_id,
-            f"{int(huge.sum())} value(s) are beyond {MAX_MAGNITUDE:g} in size (first: "
-            f"{vals[where]:g} at {timestamps[where]!r}), too large to analyse; check the "
-            "source for a unit or encoding error, or leave such samples empty",
-        )
+    vals = check_values(series_id, values, timestamps)
 
     # Step 2: timestamps (labels None: each stamp's own ISO text, made on demand).
     stamps, labels, tz = _parse_timestamps(series_id, timestamps)
@@ -250,6 +221,57 @@ def _business_slots(stamps: np.ndarray) -> np.ndarray:
     """Weekday index of each stamp from the first (a weekend stamp joins the next Monday)."""
     days = stamps.astype("datetime64[D]")
     return np.busday_count(days[0], days).astype(np.int64)
+
+
+def check_values(series_id: str, values, timestamps=None) -> np.ndarray:
+    """Values as float64: numbers or missing (None, NaN, empty or NaN-like text).
+
+    The one check of a series' values, for :func:`regularize` and the window
+    summaries.
+
+    Raises
+    ------
+    NonNumericError, NonFiniteError
+        Naming the first bad value (and its timestamp, when ``timestamps`` is
+        given): text that is not a number, infinities, or sizes beyond
+        ``MAX_MAGNITUDE``.
+    """
+    raw = pd.Series(values).reset_index(drop=True)
+    if pd.api.types.is_numeric_dtype(raw.dtype) and not pd.api.types.is_bool_dtype(raw.dtype):
+        vals = raw.to_numpy(dtype=float, na_value=np.nan)  # the common case: nothing to parse
+    else:
+        numeric = pd.to_numeric(raw, errors="coerce").astype(float)
+        bad = numeric.isna() & raw.notna() & ~_is_nan_like(raw)
+        if bad.any():
+            first = raw[bad].iloc[0]
+            raise NonNumericError(
+                series_id,
+                f"{int(bad.sum())} value(s) are not numbers (first: {first!r}); "
+                "clean the value column or mark missing samples as empty",
+            )
+        vals = numeric.to_numpy(dtype=float)
+
+    def at(where: int) -> str:
+        return "" if timestamps is None else f" at {timestamps[where]!r}"
+
+    if np.isinf(vals).any():
+        where = int(np.flatnonzero(np.isinf(vals))[0])
+        first = f" (first{at(where)})" if timestamps is not None else ""
+        raise NonFiniteError(
+            series_id,
+            f"{int(np.isinf(vals).sum())} value(s) are infinite{first}; "
+            "leave a missing sample empty instead of writing inf",
+        )
+    huge = np.abs(vals) > MAX_MAGNITUDE
+    if huge.any():
+        where = int(np.flatnonzero(huge)[0])
+        raise NonFiniteError(
+            series_id,
+            f"{int(huge.sum())} value(s) are beyond {MAX_MAGNITUDE:g} in size (first: "
+            f"{vals[where]:g}{at(where)}), too large to analyse; check the "
+            "source for a unit or encoding error, or leave such samples empty",
+        )
+    return vals
 
 
 def check_series(series: RegularSeries) -> None:
@@ -478,11 +500,6 @@ def _nice_step(step: float, is_time: bool) -> float:
 def _whole_seconds(stamps: np.ndarray) -> bool:
     """Zone-less stamps on whole seconds: their numpy ISO text is their isoformat()."""
     return not np.isnat(stamps).any() and bool((stamps.view("i8") % 1_000_000_000 == 0).all())
-
-
-def _is_numeric(values) -> bool:
-    dtype = getattr(values, "dtype", None)
-    return dtype is not None and np.issubdtype(dtype, np.number)
 
 
 def _is_nan_like(values: pd.Series) -> pd.Series:

@@ -19,6 +19,9 @@ from scipy.optimize import minimize
 from scipy.signal import lfilter
 
 from changekind.tasks.arma import (
+    Order,
+    SeasonalOrder,
+    _arma_polys,
     _long_ar_resid,
     interpolate_missing,
     linear_filter,
@@ -34,12 +37,6 @@ MAX_ITER = 60
 MAX_ROOT = 0.99
 """Largest modulus allowed for an inverse MA root (nearly non-invertible MA
 polynomials produce spurious start-up effects in filtered residuals)."""
-
-
-Order = tuple[int, int, int]
-
-
-SeasonalOrder = tuple[int, int, int, int]
 
 
 @dataclass(frozen=True, slots=True)
@@ -290,28 +287,6 @@ def _differenced(z: np.ndarray, d: int, D: int, s: int) -> np.ndarray:
     for _ in range(d):
         z = np.diff(z)
     return z
-
-
-def _arma_polys(
-    params: dict[str, float], order: Order, seasonal_order: SeasonalOrder
-) -> tuple[np.ndarray, np.ndarray]:
-    """AR and MA polynomials of the stationary part (no differencing), lag 0 first."""
-    p, _, q = order
-    P, _, Q, s = seasonal_order
-    ar = np.array([1.0] + [-params.get(f"ar.L{i}", 0.0) for i in range(1, p + 1)])
-    ma = np.array([1.0] + [params.get(f"ma.L{i}", 0.0) for i in range(1, q + 1)])
-    if s:
-        sar = np.zeros(s * P + 1)
-        sar[0] = 1.0
-        for i in range(1, P + 1):
-            sar[i * s] = -params.get(f"ar.S.L{i * s}", 0.0)
-        sma = np.zeros(s * Q + 1)
-        sma[0] = 1.0
-        for i in range(1, Q + 1):
-            sma[i * s] = params.get(f"ma.S.L{i * s}", 0.0)
-        ar = np.convolve(ar, sar)
-        ma = np.convolve(ma, sma)
-    return ar, ma
 
 
 def filtered_residuals(y: np.ndarray, model: FittedModel) -> np.ndarray:

@@ -14,12 +14,10 @@ from dataclasses import replace
 
 import numpy as np
 
-from changekind.tasks.arma import _long_ar_resid, interpolate_missing, ols
+from changekind.tasks.arma import Order, SeasonalOrder, _long_ar_resid, interpolate_missing, ols
 from changekind.tasks.estimation import (
     Estimate,
     EstimationError,
-    Order,
-    SeasonalOrder,
     _to_model,
     conditional_fit,
     estimate,

@@ -25,6 +25,7 @@ from matplotlib.figure import Figure
 
 from changekind.tasks.errors import ConfigError
 from changekind.tasks.incidents import Incident, IncidentMember
+from changekind.tasks.report.files import write_page
 from changekind.tasks.report.style import (
     FALLBACK_STYLE,
     GRID_COLOUR,
@@ -260,12 +261,7 @@ def write_incident_report(
         facts=facts,
         events_page=events_page,
     )
-    index = out / INCIDENTS_PAGE
-    try:
-        index.write_text(page, encoding="utf-8")
-    except OSError as exc:
-        raise ConfigError(f"cannot write {index}: {exc.strerror or exc}") from None
-    return index
+    return write_page(out / INCIDENTS_PAGE, page)
 
 
 def read_member_series(

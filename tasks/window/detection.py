@@ -18,6 +18,7 @@ import numpy as np
 import pandas as pd
 
 from changekind.tasks.errors import SeriesError
+from changekind.tasks.results import local_level
 from changekind.tasks.types import DetectionResult, Event, FittedModel, format_duration
 from changekind.tasks.window.summary import (
     MIN_WINDOWS,
@@ -510,7 +511,7 @@ def _standardize(
     scale = np.ones(median.size)
     a, b, S = 0.0, 0.0, 1.0  # identity before the first change
     for pos, ratio in changes:
-        before = _local_level(median, pos)
+        before = local_level(median, pos, LEVEL_WINDOWS)
         if not math.isfinite(before) or not ratio > 0:
             continue
         a, b, S = a + (before - b) / S, before, S * ratio
@@ -519,22 +520,12 @@ def _standardize(
     return y, scale
 
 
-def _local_level(values: np.ndarray, pos: int) -> float:
-    """Median of up to ``LEVEL_WINDOWS`` observed values before ``pos`` (after, if none)."""
-    part = values[max(0, pos - LEVEL_WINDOWS) : pos]
-    part = part[~np.isnan(part)]
-    if part.size == 0:
-        part = values[pos + 1 : pos + 1 + LEVEL_WINDOWS]
-        part = part[~np.isnan(part)]
-    return float(np.median(part)) if part.size else float("nan")
-
-
 def _rescaled(ev: Event, scale: float, median: np.ndarray) -> Event:
     """A level event found on the standardized medians, in the series' own units."""
     if scale == 1.0:
         return ev
     effect = ev.effect * scale
-    level = _local_level(median, ev.position)
+    level = local_level(median, ev.position, LEVEL_WINDOWS)
     near_zero = not abs(level) > 1e-9 * (1 + abs(effect))
     return replace(
         ev,

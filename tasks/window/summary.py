@@ -25,12 +25,10 @@ import pandas as pd
 from pandas.tseries.frequencies import to_offset
 from scipy.special import ndtri
 
-from changekind.tasks.decompose import MAX_GRID_RATIO, MIN_POINTS
+from changekind.tasks.decompose import MAX_GRID_RATIO, MIN_POINTS, check_values
 from changekind.tasks.errors import (
     AllMissingError,
     ConfigError,
-    NonFiniteError,
-    NonNumericError,
     SeriesError,
     TimestampError,
     TooShortError,
@@ -229,7 +227,7 @@ def summarize_windows(
     """
     # Step 1: inputs.
     width = parse_window(window)
-    vals = _check_values(series_id, values)
+    vals = check_values(series_id, values)
     if len(vals) != len(timestamps):
         raise SeriesError(series_id, "timestamps and values have different lengths")
     stamps, tz = _datetimes(series_id, timestamps)
@@ -332,7 +330,7 @@ def count_windows(series_id: str, timestamps, values, window: str | pd.Timedelta
     """How many windows hold at least one observed (non-missing) value."""
     width = parse_window(window)
     stamps, _ = _datetimes(series_id, timestamps)
-    ok = ~np.isnan(_check_values(series_id, values))
+    ok = ~np.isnan(check_values(series_id, values))
     keys = np.floor_divide(stamps.view("i8")[ok], int(width.value))
     return int(np.unique(keys).size)
 
@@ -341,31 +339,6 @@ def last_window_label(summary: WindowSummary) -> str:
     """ISO text of the last window start holding data (a windowed series' watermark)."""
     ok = np.flatnonzero(summary.count > 0)
     return summary.index[int(ok[-1]) if ok.size else -1].isoformat()
-
-
-def _check_values(series_id: str, values) -> np.ndarray:
-    """Float64 values; NonNumericError / NonFiniteError naming the first bad one."""
-    raw = pd.Series(values).reset_index(drop=True)
-    if pd.api.types.is_numeric_dtype(raw.dtype) and not pd.api.types.is_bool_dtype(raw.dtype):
-        vals = raw.to_numpy(dtype=float, na_value=np.nan)
-    else:
-        numeric = pd.to_numeric(raw, errors="coerce").astype(float)
-        text = raw.astype(str).str.strip().str.lower()
-        bad = numeric.isna() & raw.notna() & ~text.isin(["", "nan", "na", "null", "none"])
-        if bad.any():
-            raise NonNumericError(
-                series_id,
-                f"{int(bad.sum())} value(s) are not numbers (first: {raw[bad].iloc[0]!r}); "
-                "clean the value column or mark missing samples as empty",
-            )
-        vals = numeric.to_numpy(dtype=float)
-    if np.isinf(vals).any():
-        raise NonFiniteError(
-            series_id,
-            f"{int(np.isinf(vals).sum())} value(s) are infinite; "
-            "leave a missing sample empty instead of writing inf",
-        )
-    return vals
 
 
 def _datetimes(series_id: str, timestamps) -> tuple[np.ndarray, object]:
