@@ -598,3 +598,14 @@ def test_drill_marks_the_extreme_point_of_each_window():
         True,
         False,
     ]
+
+
+def test_window_summaries_refuse_values_too_large_to_analyse():
+    # The one value check (decompose.check_values): sums of squares of 1e200 overflow float64.
+    from changekind.tasks.errors import NonFiniteError
+
+    stamps = pd.date_range(START, periods=3000, freq="s")
+    y = np.random.default_rng(2).normal(size=stamps.size)
+    y[5] = 1e200
+    with pytest.raises(NonFiniteError, match=r"1 value\(s\) are beyond 1e\+150 .*first: 1e\+200"):
+        summarize_windows("s1", stamps, y, "1min")
