@@ -39,6 +39,7 @@ from changekind.tasks.arma import pi_weights
 from changekind.tasks.critical import FALSE_BUDGET
 from changekind.tasks.decompose import MIN_POINTS, decompose, regularize
 from changekind.tasks.detect import detect_events, reestimate, screen_new_points
+from changekind.tasks.effects import EFFECTS
 from changekind.tasks.errors import ChangekindError, SeriesError
 from changekind.tasks.fetch import SeriesWindow, SourceProblem, SourceSpec, read_windows
 from changekind.tasks.magnitude import MinEffect, keep_effects
@@ -566,7 +567,7 @@ def _needs_refit(
     if tested_since_fit is not None and tested_since_fit > options.refit_after * model.nobs:
         return "age"
     for e in result.events:
-        if e.event_type in ("LS", "VC") and e.status == "confirmed":
+        if EFFECTS[e.event_type].lasting and e.status == "confirmed":
             return f"confirmed {e.event_type}"
     scale = result.resid_scale
     n_new = len(index) - first_new

@@ -17,6 +17,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 import pandas as pd
 
+from changekind.tasks.effects import SEARCHED
 from changekind.tasks.errors import SeriesError
 from changekind.tasks.results import local_level
 from changekind.tasks.types import DetectionResult, Event, FittedModel, format_duration
@@ -344,7 +345,7 @@ def extreme_windows(
     local = usable.rolling(LEVEL_WINDOWS + 1, center=True, min_periods=1).median().to_numpy()
     ok &= np.isfinite(local) & (local > 0)
     z = np.where(ok, dev / np.where(ok, local, 1.0), 0.0)
-    weights = tuple((k, 1.0 if k == "AO" else 0.0) for k in ("AO", "LS", "TC", "IO"))
+    weights = tuple((k, 1.0 if k == "AO" else 0.0) for k in SEARCHED)
     out = []
     for pos in np.flatnonzero(np.abs(z) >= crit):
         pos = int(pos)
