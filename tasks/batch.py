@@ -40,7 +40,7 @@ from changekind.tasks.critical import FALSE_BUDGET
 from changekind.tasks.decompose import MIN_POINTS, decompose, regularize
 from changekind.tasks.detect import detect_events, reestimate, screen_new_points
 from changekind.tasks.effects import EFFECTS
-from changekind.tasks.errors import ChangekindError, SeriesError
+from changekind.tasks.errors import series_failure
 from changekind.tasks.fetch import SeriesWindow, SourceProblem, SourceSpec, read_windows
 from changekind.tasks.magnitude import MinEffect, keep_effects
 from changekind.tasks.timeaxis import TimeAxis, parse_instant
@@ -380,14 +380,11 @@ def analyse_series_work(
             outcome = _cold(work, timestamps, values, options)
         else:
             outcome = _warm(work, timestamps, values, options)
-    except SeriesError as exc:
-        outcome = SeriesOutcome(work.series_id, "failed", failure=("prepare", exc.problem))
-    except ChangekindError as exc:
-        outcome = SeriesOutcome(work.series_id, "failed", failure=("detect", str(exc)))
-    except (ValueError, ArithmeticError, np.linalg.LinAlgError) as exc:
-        outcome = SeriesOutcome(
-            work.series_id, "failed", failure=("detect", f"{type(exc).__name__}: {exc}")
-        )
+    except Exception as exc:
+        failure = series_failure(exc)  # the one per-series error policy
+        if failure is None:
+            raise  # not the series' own problem: a bug, or the machinery failing
+        outcome = SeriesOutcome(work.series_id, "failed", failure=failure)
     return replace(outcome, seconds=time.perf_counter() - t0)
 
 
@@ -543,7 +540,9 @@ def _reestimated(
         series = regularize(work.series_id, timestamps, values)
         model = reestimate(work.model, series, outcome.reestimate)
         done = replace(outcome, model=model, reestimate=None)
-    except (ChangekindError, ValueError, ArithmeticError, np.linalg.LinAlgError) as exc:
+    except Exception as exc:
+        if series_failure(exc) is None:
+            raise
         done = replace(
             outcome, reestimate=None, note=f"{outcome.note}; failed ({exc}), cached model kept"
         )
