@@ -41,11 +41,14 @@ import numpy as np
 import pandas as pd
 from scipy.signal import lfilter
 
+from changekind.tasks.effects import EFFECTS
 from changekind.tasks.errors import ConfigError
+from changekind.tasks.timeaxis import parse_times
 from changekind.tasks.types import EVENT_TYPES, Event
 
 TC_DECAY = 0.8
-"""Decay per grid step of an injected temporary change (cache rebuild)."""
+"""Decay per grid step of an injected temporary change (cache rebuild): the demo's
+scenario, not the engine's default (``changekind.tasks.effects.TC_DECAY``)."""
 
 EFFECT_SIGMAS = (4.0, 8.0)
 """Range of injected effect sizes, in innovation standard deviations."""
@@ -275,14 +278,10 @@ def make_demo_fleet(
                 truth_rows.append((series_id, stamps[t0], kind, float(omega), note))
                 if not inject:
                     continue
-                if kind == "IO":
+                if kind == "IO":  # an innovation: the process's psi(B) carries it
                     shocks[burn + t0] += omega
-                elif kind == "AO":
-                    adds[t0] += omega
-                elif kind == "LS":
-                    adds[t0:] += omega
-                else:  # TC
-                    adds[t0:] += omega * TC_DECAY ** np.arange(n - t0)
+                else:  # AO, LS, TC: the registry's paths
+                    adds[t0:] += omega * EFFECTS[kind].path(n - t0, delta=TC_DECAY)
 
             noise = lfilter([1.0, proc.ma], [1.0, -proc.ar], shocks)[burn:]
             # Step 4: level and daily profile.
@@ -436,8 +435,7 @@ def _positions(times: pd.Series, step) -> np.ndarray:
         raise ConfigError(f"step {step!r} is not a time interval such as '5min'") from exc
     if step_td <= pd.Timedelta(0):
         raise ConfigError(f"step must be positive, got {step!r}")
-    parsed = pd.to_datetime(pd.Series(times, dtype=object), utc=True, format="mixed")
-    ns = parsed.dt.tz_convert(None).to_numpy(dtype="datetime64[ns]").view("i8")
+    ns = parse_times("scored events", pd.Series(times, dtype=object)).instants  # UTC (timeaxis)
     return ns.astype(float) / float(step_td.value)
 
 

@@ -15,6 +15,7 @@ import pandas as pd
 from changekind.tasks import persist
 from changekind.tasks.batch import SeriesOutcome
 from changekind.tasks.fetch import SourceProblem
+from changekind.tasks.timeaxis import parse_instant
 
 if TYPE_CHECKING:
     from changekind.flows.pipeline import Reach
@@ -46,10 +47,8 @@ def time_key(value: object, time_kind: str):
         return None
     if time_kind == "numeric":
         return float(value)  # type: ignore[arg-type]
-    stamp = pd.Timestamp(value)  # type: ignore[arg-type]
-    if stamp.tz is not None:  # compared in UTC; the fetch step maps zones back
-        stamp = stamp.tz_convert("UTC").tz_localize(None)
-    return stamp
+    stamp = parse_instant(value, what="time")  # a naive time is UTC (timeaxis' rule)
+    return stamp.tz_localize(None) if isinstance(stamp, pd.Timestamp) else stamp
 
 
 def stored_state(db: str, series_ids: Sequence[str] | None = None):

@@ -16,7 +16,7 @@ from changekind.tasks.batch import AnalysisOptions
 from changekind.tasks.critical import BUDGET_RANGE, CRITICAL_RANGE, FALSE_BUDGET
 from changekind.tasks.errors import ConfigError
 from changekind.tasks.magnitude import parse_min_effect
-from changekind.tasks.window import window_text
+from changekind.tasks.window.summary import window_text
 
 if TYPE_CHECKING:  # the engine (scipy) is imported by the commands that analyse
     from changekind.tasks.batch import AnalysisOptions

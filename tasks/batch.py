@@ -35,22 +35,22 @@ import numpy as np
 import pandas as pd
 from scipy.special import chdtri
 
+from changekind.tasks.arma import pi_weights
 from changekind.tasks.critical import FALSE_BUDGET
 from changekind.tasks.decompose import MIN_POINTS, decompose, regularize
 from changekind.tasks.detect import detect_events, reestimate, screen_new_points
-from changekind.tasks.errors import ChangekindError, SeriesError
+from changekind.tasks.effects import EFFECTS
+from changekind.tasks.errors import series_failure
 from changekind.tasks.fetch import SeriesWindow, SourceProblem, SourceSpec, read_windows
-from changekind.tasks.fit import pi_weights
 from changekind.tasks.magnitude import MinEffect, keep_effects
+from changekind.tasks.timeaxis import TimeAxis, parse_instant
 from changekind.tasks.types import Event, FittedModel
-from changekind.tasks.window import (
+from changekind.tasks.window.detection import detect_windowed, screen_windowed, windowed_model
+from changekind.tasks.window.summary import (
     complete_windows,
     count_windows,
-    detect_windowed,
     last_window_label,
-    screen_windowed,
     summarize_windows,
-    windowed_model,
 )
 
 Mode = Literal["cold", "warm", "unchanged", "deferred", "failed"]
@@ -118,7 +118,7 @@ class AnalysisOptions:
         Windowed mode (changekind.tasks.window): raw points are summarized into
         windows of this width and the engine models the window medians and
         spreads; ``min_points`` and ``context_points`` then count windows.
-        Canonical text (:func:`~changekind.tasks.window.window_text`).
+        Canonical text (:func:`~changekind.tasks.window.summary.window_text`).
     """
 
     critical: float | None = None
@@ -380,14 +380,11 @@ def analyse_series_work(
             outcome = _cold(work, timestamps, values, options)
         else:
             outcome = _warm(work, timestamps, values, options)
-    except SeriesError as exc:
-        outcome = SeriesOutcome(work.series_id, "failed", failure=("prepare", exc.problem))
-    except ChangekindError as exc:
-        outcome = SeriesOutcome(work.series_id, "failed", failure=("detect", str(exc)))
-    except (ValueError, ArithmeticError, np.linalg.LinAlgError) as exc:
-        outcome = SeriesOutcome(
-            work.series_id, "failed", failure=("detect", f"{type(exc).__name__}: {exc}")
-        )
+    except Exception as exc:
+        failure = series_failure(exc)  # the one per-series error policy
+        if failure is None:
+            raise  # not the series' own problem: a bug, or the machinery failing
+        outcome = SeriesOutcome(work.series_id, "failed", failure=failure)
     return replace(outcome, seconds=time.perf_counter() - t0)
 
 
@@ -543,7 +540,9 @@ def _reestimated(
         series = regularize(work.series_id, timestamps, values)
         model = reestimate(work.model, series, outcome.reestimate)
         done = replace(outcome, model=model, reestimate=None)
-    except (ChangekindError, ValueError, ArithmeticError, np.linalg.LinAlgError) as exc:
+    except Exception as exc:
+        if series_failure(exc) is None:
+            raise
         done = replace(
             outcome, reestimate=None, note=f"{outcome.note}; failed ({exc}), cached model kept"
         )
@@ -567,7 +566,7 @@ def _needs_refit(
     if tested_since_fit is not None and tested_since_fit > options.refit_after * model.nobs:
         return "age"
     for e in result.events:
-        if e.event_type in ("LS", "VC") and e.status == "confirmed":
+        if EFFECTS[e.event_type].lasting and e.status == "confirmed":
             return f"confirmed {e.event_type}"
     scale = result.resid_scale
     n_new = len(index) - first_new
@@ -626,28 +625,18 @@ def _after(event: Event, options: AnalysisOptions) -> bool:
 
 
 def _at_or_after(label: str, bound: str) -> bool:
-    try:
-        return float(label) >= float(bound)
-    except ValueError:
-        pass
-    a, b = pd.Timestamp(label), pd.Timestamp(bound)
-    if (a.tz is None) != (b.tz is None):
-        a = a.tz_localize("UTC") if a.tz is None else a
-        b = b.tz_localize("UTC") if b.tz is None else b
-    return a >= b
+    """Whether an event time is at or after a bound (a naive time is UTC)."""
+    return bool(parse_instant(label, what="event time") >= parse_instant(bound, what="bound"))
 
 
 def _as_time(label: str | None, like: pd.Index):
+    """A label as a value comparable with ``like`` (naive labels are UTC, timeaxis' rule)."""
     if label is None:
         return None
-    if isinstance(like, pd.DatetimeIndex):
-        when = pd.Timestamp(label)
-        if when.tz is None and like.tz is not None:
-            when = when.tz_localize("UTC").tz_convert(like.tz)
-        elif when.tz is not None and like.tz is None:
-            when = when.tz_convert("UTC").tz_localize(None)
-        return when
-    return float(label)
+    when = TimeAxis.of_index("", like).instant(label)
+    if isinstance(like, pd.DatetimeIndex) and like.tz is None:
+        return when.tz_localize(None)
+    return when
 
 
 def _after_watermark(index: pd.Index, watermark: str | None) -> np.ndarray:
@@ -658,9 +647,18 @@ def _after_watermark(index: pd.Index, watermark: str | None) -> np.ndarray:
 
 
 def _position(index: pd.Index, label: str) -> int | None:
+    """The grid point of an event time: the nearest one within half a step (the rounding
+    the warm screen's ``known_effects`` places it by), or None outside the grid."""
+    if len(index) == 0:
+        return None
     when = _as_time(label, index)
-    hits = np.flatnonzero(np.asarray(index == when))
-    return int(hits[0]) if hits.size else None
+    i = int(index.get_indexer([when], method="nearest")[0])
+    if i < 0:
+        return None
+    if len(index) < 2:
+        return i if index[i] == when else None
+    step = index[1] - index[0] if i == 0 else index[i] - index[i - 1]
+    return i if 2 * abs(index[i] - when) <= step else None
 
 
 def _points_since(index: pd.Index, label: str | None, step_seconds: float | None) -> float | None:

@@ -28,6 +28,7 @@ from changekind.tasks.errors import (
     TimestampError,
     TooShortError,
 )
+from changekind.tasks.timeaxis import parse_times
 from changekind.tasks.types import Decomposition, RegularSeries, StampLabels
 
 MAX_MAGNITUDE = 1e150
@@ -104,36 +105,7 @@ def regularize(series_id: str, timestamps, values) -> RegularSeries:
     # Step 1: values.
     if len(values) != len(timestamps):
         raise SeriesError(series_id, "timestamps and values have different lengths")
-    if _is_numeric(values):  # the common case: nothing to parse
-        vals = np.asarray(values, dtype=float)
-    else:
-        raw_values = pd.Series(np.asarray(values, dtype=object))
-        numeric = pd.to_numeric(raw_values, errors="coerce").astype(float)
-        bad = numeric.isna() & raw_values.notna() & ~_is_nan_like(raw_values)
-        if bad.any():
-            first = raw_values[bad].iloc[0]
-            raise NonNumericError(
-                series_id,
-                f"{int(bad.sum())} value(s) are not numbers (first: {first!r}); "
-                "clean the value column or mark missing samples as empty",
-            )
-        vals = numeric.to_numpy(dtype=float)
-    if np.isinf(vals).any():
-        where = int(np.flatnonzero(np.isinf(vals))[0])
-        raise NonFiniteError(
-            series_id,
-            f"{int(np.isinf(vals).sum())} value(s) are infinite (first at {timestamps[where]!r}); "
-            "leave a missing sample empty instead of writing inf",
-        )
-    huge = np.abs(vals) > MAX_MAGNITUDE
-    if huge.any():
-        where = int(np.flatnonzero(huge)[0])
-        raise NonFiniteError(
-            series_id,
-            f"{int(huge.sum())} value(s) are beyond {MAX_MAGNITUDE:g} in size (first: "
-            f"{vals[where]:g} at {timestamps[where]!r}), too large to analyse; check the "
-            "source for a unit or encoding error, or leave such samples empty",
-        )
+    vals = check_values(series_id, values, timestamps)
 
     # Step 2: timestamps (labels None: each stamp's own ISO text, made on demand).
     stamps, labels, tz = _parse_timestamps(series_id, timestamps)
@@ -249,6 +221,57 @@ def _business_slots(stamps: np.ndarray) -> np.ndarray:
     """Weekday index of each stamp from the first (a weekend stamp joins the next Monday)."""
     days = stamps.astype("datetime64[D]")
     return np.busday_count(days[0], days).astype(np.int64)
+
+
+def check_values(series_id: str, values, timestamps=None) -> np.ndarray:
+    """Values as float64: numbers or missing (None, NaN, empty or NaN-like text).
+
+    The one check of a series' values, for :func:`regularize` and the window
+    summaries.
+
+    Raises
+    ------
+    NonNumericError, NonFiniteError
+        Naming the first bad value (and its timestamp, when ``timestamps`` is
+        given): text that is not a number, infinities, or sizes beyond
+        ``MAX_MAGNITUDE``.
+    """
+    raw = pd.Series(values).reset_index(drop=True)
+    if pd.api.types.is_numeric_dtype(raw.dtype) and not pd.api.types.is_bool_dtype(raw.dtype):
+        vals = raw.to_numpy(dtype=float, na_value=np.nan)  # the common case: nothing to parse
+    else:
+        numeric = pd.to_numeric(raw, errors="coerce").astype(float)
+        bad = numeric.isna() & raw.notna() & ~_is_nan_like(raw)
+        if bad.any():
+            first = raw[bad].iloc[0]
+            raise NonNumericError(
+                series_id,
+                f"{int(bad.sum())} value(s) are not numbers (first: {first!r}); "
+                "clean the value column or mark missing samples as empty",
+            )
+        vals = numeric.to_numpy(dtype=float)
+
+    def at(where: int) -> str:
+        return "" if timestamps is None else f" at {timestamps[where]!r}"
+
+    if np.isinf(vals).any():
+        where = int(np.flatnonzero(np.isinf(vals))[0])
+        first = f" (first{at(where)})" if timestamps is not None else ""
+        raise NonFiniteError(
+            series_id,
+            f"{int(np.isinf(vals).sum())} value(s) are infinite{first}; "
+            "leave a missing sample empty instead of writing inf",
+        )
+    huge = np.abs(vals) > MAX_MAGNITUDE
+    if huge.any():
+        where = int(np.flatnonzero(huge)[0])
+        raise NonFiniteError(
+            series_id,
+            f"{int(huge.sum())} value(s) are beyond {MAX_MAGNITUDE:g} in size (first: "
+            f"{vals[where]:g}{at(where)}), too large to analyse; check the "
+            "source for a unit or encoding error, or leave such samples empty",
+        )
+    return vals
 
 
 def check_series(series: RegularSeries) -> None:
@@ -479,19 +502,6 @@ def _whole_seconds(stamps: np.ndarray) -> bool:
     return not np.isnat(stamps).any() and bool((stamps.view("i8") % 1_000_000_000 == 0).all())
 
 
-def _to_datetime(text: pd.Series, fmt: str) -> pd.Series:
-    """Parse text times; mixed UTC offsets (a zone across a clock change) go to UTC."""
-    try:
-        return pd.to_datetime(text, errors="coerce", format=fmt, utc=False)
-    except ValueError:  # "Mixed timezones detected"
-        return pd.to_datetime(text, errors="coerce", format=fmt, utc=True)
-
-
-def _is_numeric(values) -> bool:
-    dtype = getattr(values, "dtype", None)
-    return dtype is not None and np.issubdtype(dtype, np.number)
-
-
 def _is_nan_like(values: pd.Series) -> pd.Series:
     """True where a value is an empty or NaN-like text (counted as missing)."""
     text = values.astype(str).str.strip().str.lower()
@@ -503,11 +513,13 @@ def _parse_timestamps(series_id: str, timestamps) -> tuple[np.ndarray, list[str]
 
     Returns the parsed stamps, their text as given (None when that text is each
     stamp's own ISO form, for zone-less whole-second date-times: the labels are
-    then made on demand), and the time zone (or None).
+    then made on demand), and the time zone (or None).  The rules (a naive time
+    is UTC, ISO 8601 text only, all-number text is a numeric axis, nothing
+    outside the nanosecond range) are :func:`~changekind.tasks.timeaxis.parse_times`'.
     """
     dtype = getattr(timestamps, "dtype", None)
-    if isinstance(dtype, np.dtype) and dtype.kind == "M":  # typed, zone-less: the common case
-        stamps = np.asarray(timestamps).astype("datetime64[ns]")
+    if isinstance(dtype, np.dtype) and dtype == np.dtype("datetime64[ns]"):  # the common case
+        stamps = np.asarray(timestamps)
         if np.isnat(stamps).any():
             raise TimestampError(
                 series_id,
@@ -516,36 +528,14 @@ def _parse_timestamps(series_id: str, timestamps) -> tuple[np.ndarray, list[str]
         if _whole_seconds(stamps):
             return stamps, None, None
         return stamps, [pd.Timestamp(t).isoformat() for t in stamps], None
-    raw = pd.Series(timestamps).reset_index(drop=True)
-    if raw.isna().any():
-        raise TimestampError(
-            series_id, f"{int(raw.isna().sum())} timestamp(s) are missing; every row needs one"
-        )
-    if raw.dtype.kind in "iuf":
-        stamps = raw.to_numpy(dtype=float)
-        if not np.isfinite(stamps).all():
-            raise TimestampError(series_id, "numeric timestamps must be finite")
-        labels = [f"{int(v)}" if float(v).is_integer() else repr(float(v)) for v in stamps]
-        return stamps, labels, None
-    if isinstance(raw.dtype, pd.DatetimeTZDtype):
-        parsed = raw
-        labels = [ts.isoformat() for ts in parsed]
-    else:
-        text = raw.astype(str)
-        parsed = _to_datetime(text, "ISO8601")
-        if parsed.isna().any():
-            parsed = _to_datetime(text, "mixed")
-        if parsed.isna().any():
-            bad = text[parsed.isna()].iloc[0]
-            raise TimestampError(
-                series_id,
-                f"{int(parsed.isna().sum())} timestamp(s) cannot be parsed (first: {bad!r}); "
-                "use ISO 8601 such as 2026-01-31T14:05:00",
-            )
-        labels = list(raw.astype(str))
-    tz = None
-    if isinstance(parsed.dtype, pd.DatetimeTZDtype):
-        tz = parsed.dt.tz
-        parsed = parsed.dt.tz_convert("UTC").dt.tz_localize(None)
-    stamps = parsed.to_numpy(dtype="datetime64[ns]")
-    return stamps, labels, tz
+    parsed = parse_times(series_id, timestamps)
+    labels = list(parsed.texts) if parsed.texts is not None else None
+    if not parsed.axis.is_datetime:
+        if labels is None:
+            labels = [parsed.label(i) for i in range(len(parsed))]
+        return parsed.instants, labels, None
+    stamps = parsed.utc_naive()
+    zone = parsed.axis.zone
+    if labels is None and (zone is not None or not _whole_seconds(stamps)):
+        labels = [parsed.label(i) for i in range(len(parsed))]
+    return stamps, labels, zone

@@ -16,6 +16,7 @@ from dataclasses import replace
 
 import numpy as np
 
+from changekind.tasks.arma import pi_weights, psi_weights
 from changekind.tasks.budget import DEFAULT_BUDGET, Spend, WorkBudget
 from changekind.tasks.critical import ALLOWANCE as ALPHA
 from changekind.tasks.critical import (
@@ -29,14 +30,8 @@ from changekind.tasks.critical import (
 )
 from changekind.tasks.decompose import decompose, regularize
 from changekind.tasks.effects import EFFECTS
-from changekind.tasks.fit import (
-    EstimationError,
-    choose_model,
-    filtered_residuals,
-    pi_weights,
-    psi_weights,
-    refit,
-)
+from changekind.tasks.estimation import EstimationError, filtered_residuals, refit
+from changekind.tasks.fit import choose_model
 from changekind.tasks.patterns import MAX_PATTERNS, absorb_pattern, find_period, regular_period
 from changekind.tasks.results import to_event
 from changekind.tasks.screen import known_effects, reestimate, screen_new_points

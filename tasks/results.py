@@ -28,7 +28,7 @@ def to_event(
     decays = EFFECTS[c.kind].decays
     half_steps = math.log(0.5) / math.log(delta) if decays and delta else None
     settle = max(SETTLE, 2 * half_steps if half_steps else 0)
-    level = _local_level(series.values, c.position)
+    level = local_level(series.values, c.position)
     pct = 100.0 * c.omega / level if abs(level) > 1e-9 * (1 + abs(c.omega)) else None
     effect, t_stat = round_sig(c.omega), round_sig(c.t)
     return Event(
@@ -66,7 +66,9 @@ def _duration(series: RegularSeries, kind: str, after: int, delta: float | None)
     return round_sig(steps * series.step_seconds, 4)
 
 
-def _local_level(values: np.ndarray, T: int, window: int = 24) -> float:
+def local_level(values: np.ndarray, T: int, window: int = 24) -> float:
+    """Median of up to ``window`` observed values before ``T`` (after it, if none):
+    an event's ``level``, for points and for window medians alike."""
     before = values[max(0, T - window) : T]
     before = before[~np.isnan(before)]
     if before.size == 0:

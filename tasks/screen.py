@@ -14,18 +14,17 @@ from dataclasses import replace
 import numpy as np
 import pandas as pd
 
-from changekind.tasks.critical import Thresholds, check_budget, check_critical, series_thresholds
-from changekind.tasks.decompose import profile_at
-from changekind.tasks.effects import EFFECTS
-from changekind.tasks.fit import (
-    EstimationError,
+from changekind.tasks.arma import (
     interpolate_missing,
     linear_filter,
     pi_weights,
     polynomials,
     psi_weights,
-    refit,
 )
+from changekind.tasks.critical import Thresholds, check_budget, check_critical, series_thresholds
+from changekind.tasks.decompose import profile_at
+from changekind.tasks.effects import EFFECTS
+from changekind.tasks.estimation import EstimationError, refit
 from changekind.tasks.results import to_event
 from changekind.tasks.search import design, inner_loop, joint, robust_sigma, weights_for
 from changekind.tasks.threads import single_blas_thread
@@ -213,8 +212,8 @@ def _grid_offsets(series: RegularSeries, step_seconds: float | None):
                 when = pd.Timestamp(label)
             except (ValueError, TypeError):
                 return None
-            if when.tz is None and first.tz is not None:
-                when = when.tz_localize(first.tz)
+            if when.tz is None and first.tz is not None:  # a naive time is UTC (timeaxis)
+                when = when.tz_localize("UTC").tz_convert(first.tz)
             elif when.tz is not None and first.tz is None:
                 when = when.tz_convert("UTC").tz_localize(None)
             if series.business_days:
@@ -240,8 +239,8 @@ def _seasonal_for(model: FittedModel, series: RegularSeries) -> np.ndarray:
     if series.is_datetime and model.anchor is not None and model.step_seconds:
         anchor = pd.Timestamp(model.anchor)
         idx = series.index
-        if idx.tz is not None and anchor.tz is None:
-            anchor = anchor.tz_localize(idx.tz)
+        if idx.tz is not None and anchor.tz is None:  # a naive time is UTC (timeaxis)
+            anchor = anchor.tz_localize("UTC").tz_convert(idx.tz)
         elif idx.tz is None and anchor.tz is not None:
             anchor = anchor.tz_convert("UTC").tz_localize(None)
         if model.business_days:

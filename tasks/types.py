@@ -141,7 +141,10 @@ class RegularSeries:
         if given is not None:
             return given
         stamp = self.index[i]
-        return stamp.isoformat() if isinstance(stamp, pd.Timestamp) else repr(float(stamp))
+        if isinstance(stamp, pd.Timestamp):
+            return stamp.isoformat()
+        number = float(stamp)  # one text per number, as TimeAxis.label writes it
+        return str(int(number)) if number.is_integer() else repr(number)
 
     def tail(self, n: int) -> RegularSeries:
         """The last ``n`` grid points as a series of their own."""

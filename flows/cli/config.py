@@ -26,7 +26,7 @@ from changekind.tasks.errors import ConfigError, mask_url
 from changekind.tasks.fetch import open_source
 from changekind.tasks.labels import check_label_columns
 from changekind.tasks.timeaxis import parse_instant
-from changekind.tasks.window import window_text
+from changekind.tasks.window.summary import window_text
 
 RUNNERS: tuple[str, ...] = ("threads", "processes", "dask")
 
@@ -100,6 +100,15 @@ def check_db(url: str) -> None:
     engine.dispose()
 
 
+def has_table(url: str, name: str) -> bool:
+    """Whether the database holds table ``name`` (connects once and lets go)."""
+    engine = persist.connect(url)
+    try:
+        return sa.inspect(engine).has_table(name)
+    finally:
+        engine.dispose()
+
+
 def require_tables(url: str) -> None:
     """The database exists and holds changekind's tables (reading commands only)."""
 
@@ -111,14 +120,9 @@ def require_tables(url: str) -> None:
                 f"no database at {path!r}; run 'changekind scan' (or 'changekind demo') first, "
                 "or point --db / CHANGEKIND_DB_URL at an existing one"
             )
-    engine = persist.connect(url)
-    try:
-        present = sa.inspect(engine).has_table(persist.series_events.name)
-    finally:
-        engine.dispose()
-    if not present:
+    if not has_table(url, persist.series_events.name):
         raise ConfigError(
-            f"database {mask_url(engine.url)!r} holds no changekind "
+            f"database {mask_url(url)!r} holds no changekind "
             "tables yet; run 'changekind scan' or 'changekind backfill' against it first"
         )
 

@@ -3,7 +3,7 @@
 It calls the engine's pure functions directly, in a process pool: no Prefect
 flow, so no Prefect import (it costs seconds; ``tests/flows/cli/test_detect.py``
 checks that ``detect`` does not load it).  ``--window`` analyses window
-summaries instead of raw points (:func:`changekind.tasks.window.detect_windowed`).
+summaries instead of raw points (:func:`changekind.tasks.window.detection.detect_windowed`).
 """
 
 from __future__ import annotations
@@ -41,7 +41,7 @@ from changekind.tasks.errors import SourceError, series_failure
 from changekind.tasks.fetch.inputs import SeriesInput, read_series_file
 from changekind.tasks.fetch.values import SourceProblem
 from changekind.tasks.types import DetectionResult, Event
-from changekind.tasks.window import detect_windowed
+from changekind.tasks.window.detection import detect_windowed
 
 # --------------------------------------------------------------------------- running the engine
 
@@ -345,7 +345,7 @@ def windowed_records(
     """Windowed detection of one series: its events (level events and VC), by window.
 
     Raises the ConfigError / SeriesError of
-    :func:`changekind.tasks.window.detect_windowed`.
+    :func:`changekind.tasks.window.detection.detect_windowed`.
     """
     result = detect_windowed(
         series_id, timestamps, values, window, critical=critical, periods=periods

@@ -31,7 +31,8 @@ from changekind.flows.cli.options import (
 from changekind.tasks.errors import ChangekindError
 from changekind.tasks.fetch import open_source
 from changekind.tasks.types import format_duration, number
-from changekind.tasks.window import MAD_SCALE, drill, parse_window
+from changekind.tasks.window.drill import drill
+from changekind.tasks.window.summary import MAD_SCALE, parse_window
 
 # --------------------------------------------------------------------------- drill
 
@@ -136,7 +137,7 @@ def _within(rows: pd.DataFrame, width: pd.Timedelta):
     if getattr(stamps.dt, "tz", None) is not None and getattr(starts.dt, "tz", None) is None:
         stamps = stamps.dt.tz_convert("UTC").dt.tz_localize(None)
     elif getattr(stamps.dt, "tz", None) is None and getattr(starts.dt, "tz", None) is not None:
-        stamps = stamps.dt.tz_localize(starts.dt.tz)
+        stamps = stamps.dt.tz_localize("UTC")  # a naive time is UTC (timeaxis)
     offset = (stamps - starts).to_numpy().astype("timedelta64[ns]").view("i8")
     return offset.clip(0, int(width.value) - 1)
 

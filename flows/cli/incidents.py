@@ -21,10 +21,10 @@ import typer
 from rich.table import Table
 
 from changekind.flows.cli.app import app, fail_usage, out_console, usage_errors
-from changekind.flows.cli.config import database_url, require_tables
+from changekind.flows.cli.config import database_url, has_table, require_tables
 from changekind.flows.cli.options import DbOpt
 from changekind.flows.cli.output import TABLE_ROWS
-from changekind.tasks import incident_store, persist
+from changekind.tasks import incident_store
 from changekind.tasks.errors import ConfigError
 from changekind.tasks.types import number
 
@@ -124,14 +124,7 @@ def incidents_table(records: Sequence[Mapping[str, Any]], *, title: str) -> Tabl
 
 
 def _require_incident_tables(url: str) -> None:
-    import sqlalchemy as sa
-
-    engine = persist.connect(url)
-    try:
-        present = sa.inspect(engine).has_table(incident_store.incidents.name)
-    finally:
-        engine.dispose()
-    if not present:
+    if not has_table(url, incident_store.incidents.name):
         raise ConfigError(
             "the database has no incidents table yet (it was written by an older changekind); "
             "run a scan or backfill on it, which updates its tables and its incidents"

@@ -30,9 +30,10 @@ the engine can quote an event's time as the input gave it.  Two conversions
 are made because the source carries no type of its own: text that is all
 numbers (a CSV column of epoch seconds or sample numbers) becomes numbers, and
 numbers declared as epoch times with ``timestamp_unit`` become UTC date/times.
-Naive times are read in ``timezone`` (default UTC) whenever they are compared
-with aware ones; rows without a series id or a timestamp cannot be placed and
-are skipped.  Bounds are ``start <= t < end``.
+A naive time is UTC (the rule of :mod:`changekind.tasks.timeaxis`), bounds
+included; a source that declares the zone of its naive stamps (``timezone``)
+has them handed on aware, text with its offset.  Rows without a series id or
+a timestamp cannot be placed and are skipped.  Bounds are ``start <= t < end``.
 
 Modules: ``values`` (what a source is and what is read from it), ``files``
 (which kind a location is, the data files of a folder), ``times`` (bounds and
@@ -50,7 +51,7 @@ from changekind.tasks.fetch.reading import (
     read_windows,
     survey_source,
 )
-from changekind.tasks.fetch.times import _Axis, numeric_text
+from changekind.tasks.fetch.times import numeric_text
 from changekind.tasks.fetch.values import (
     CONNECT_TIMEOUT_S,
     CSV_SUFFIXES,
@@ -89,7 +90,6 @@ __all__ = [
     "SourceSurvey",
     "Span",
     "TimeKind",
-    "_Axis",  # tasks/window.py reads the time axis of a source (engine file; see DEVELOPERS.md)
     "iter_batches",
     "iter_window_batches",
     "list_series",

@@ -1,8 +1,10 @@
 """Time in a source: bounds, comparable keys and the representation handed on.
 
 Timestamps are handed on as the source typed them; numbers declared as epoch
-times become UTC date/times; naive times are read in the source's zone whenever
-they are compared with aware ones.
+times become UTC date/times.  A naive time is UTC (the rule of
+:mod:`changekind.tasks.timeaxis`), bounds included; a source that declares
+the zone of its naive stamps (``timezone``) has them handed on aware, text
+with its offset, so that downstream they mean the instant of their row.
 """
 
 from __future__ import annotations
@@ -15,7 +17,7 @@ from typing import Any, Protocol
 import numpy as np
 import pandas as pd
 
-from changekind.tasks.errors import ConfigError, SourceError
+from changekind.tasks.errors import ConfigError, SourceError, TimestampError
 from changekind.tasks.fetch.values import (
     _OPTION,
     Bound,
@@ -24,6 +26,7 @@ from changekind.tasks.fetch.values import (
     _is_number,
     _to_timestamp,
 )
+from changekind.tasks.timeaxis import parse_times
 
 # ---------------------------------------------------------------------------
 # Time: bounds, keys and the representation handed on
@@ -33,21 +36,17 @@ from changekind.tasks.fetch.values import (
 def _parse_text_times(text: pd.Series) -> pd.Series:
     """Parse date/time text; naive results stay naive, aware ones become UTC.
 
-    ISO 8601 first (fast, unambiguous), then element-wise parsing.  Raises
+    ISO 8601 only, by :func:`~changekind.tasks.timeaxis.parse_times`.  Raises
     ValueError naming the first value that is not a date/time.
     """
-    for fmt in ("ISO8601", "mixed"):
-        for utc in (False, True):
-            try:
-                parsed = pd.to_datetime(text, format=fmt, utc=utc)
-            except (ValueError, TypeError, OverflowError):
-                continue
-            if parsed.dt.tz is not None:
-                parsed = parsed.dt.tz_convert("UTC")
-            return parsed
-    coerced = pd.to_datetime(text, format="mixed", utc=True, errors="coerce")
-    bad = text[coerced.isna() & text.notna()]
-    raise ValueError(f"{(bad.iloc[0] if len(bad) else text.iloc[0])!r} is not a date/time")
+    try:
+        stamps = parse_times("source", text.reset_index(drop=True))
+    except TimestampError as exc:
+        raise ValueError(exc.problem) from None
+    if not stamps.axis.is_datetime:
+        raise ValueError(f"{text.iloc[0]!r} is a number among dates/times")
+    out = pd.Series(stamps.utc_naive(), index=text.index)
+    return out if stamps.axis.zone is None else out.dt.tz_localize("UTC")
 
 
 def numeric_text(text: pd.Series) -> bool:
@@ -88,10 +87,8 @@ class _Axis:
             if math.isnan(number):
                 raise ConfigError(f"{what} is NaN; give a number or leave it open")
             return number
-        stamp = _to_timestamp(value, what=what)
-        if stamp.tzinfo is None:
-            stamp = stamp.tz_localize(self.tz, ambiguous=True, nonexistent="shift_forward")
-        return stamp.tz_convert("UTC").as_unit("ns")
+        # A naive bound is UTC (timeaxis' rule): the declared zone is the stamps', not the bounds'.
+        return _to_timestamp(value, what=what)
 
     def key_series(self, mapped: pd.Series) -> pd.Series:
         """Per-row bounds (a Series of keys or missing) in a comparable dtype."""
@@ -122,12 +119,33 @@ class _Axis:
             return ts
         if spec.time_kind == "datetime" and ts.dtype == object:
             try:
-                return pd.to_datetime(ts)
+                ts = pd.to_datetime(ts)
             except (ValueError, TypeError):
-                return pd.to_datetime(ts, utc=True)
+                ts = pd.to_datetime(ts, utc=True)
         if spec.time_kind == "text" and ts.dtype == object:
-            return ts.astype(str)
+            ts = ts.astype(str)
+        if self.tz != "UTC":
+            return self._declared(ts, spec)
         return ts
+
+    def _declared(self, ts: pd.Series, spec: SourceSpec) -> pd.Series:
+        """Naive stamps in the declared zone, handed on aware (text: with their offset).
+
+        The declaration is applied once, here: downstream, a naive time is UTC.
+        """
+        if pd.api.types.is_datetime64_any_dtype(ts.dtype):
+            if ts.dt.tz is not None:
+                return ts
+            return ts.dt.tz_localize(
+                self.tz, ambiguous=np.ones(len(ts), dtype=bool), nonexistent="shift_forward"
+            )
+        try:
+            stamps = parse_times(spec.describe, ts, naive_zone=self.tz)
+        except TimestampError as exc:
+            raise SourceError(
+                f"{spec.describe}: timestamp column {spec.columns.timestamp!r}: {exc.problem}"
+            ) from None
+        return pd.Series([stamps.label(i) for i in range(len(stamps))], index=ts.index)
 
     def keys(self, ts: pd.Series, spec: SourceSpec) -> pd.Series:
         """Comparable keys of the handed-on timestamp column."""

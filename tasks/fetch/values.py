@@ -16,6 +16,7 @@ import numpy as np
 import pandas as pd
 
 from changekind.tasks.errors import ConfigError, mask_url
+from changekind.tasks.timeaxis import ISO_EXAMPLE, parse_instant
 
 SourceKind = Literal["parquet", "csv", "sql"]
 TimeKind = Literal["datetime", "numeric", "text"]
@@ -63,18 +64,19 @@ def _is_number(value: object) -> bool:
 
 
 def _to_timestamp(value: object, *, what: str) -> pd.Timestamp:
-    if _is_number(value):
-        raise ConfigError(
-            f"{what} {value!r} is a number but the timestamps are dates/times; "
-            "give a date/time such as '2024-05-01T00:00'"
-        )
-    try:
-        stamp = pd.Timestamp(value)  # type: ignore[arg-type]
-    except (ValueError, TypeError) as exc:
-        raise ConfigError(f"{what} {value!r} is not a date/time ({exc})") from None
-    if stamp is pd.NaT:
-        raise ConfigError(f"{what} {value!r} is not a date/time")
-    return stamp
+    """A bound, watermark or event time as a UTC Timestamp: ISO 8601, a naive time is UTC
+    (the rule of :mod:`changekind.tasks.timeaxis`)."""
+    if not _is_number(value):
+        try:
+            stamp = parse_instant(value, what=what)
+        except ConfigError:
+            raise ConfigError(f"{what} {value!r} is not a date/time; give {ISO_EXAMPLE}") from None
+        if isinstance(stamp, pd.Timestamp):
+            return stamp
+    raise ConfigError(
+        f"{what} {value!r} is a number but the timestamps are dates/times; "
+        "give a date/time such as '2024-05-01T00:00'"
+    )
 
 
 def _to_timedelta(value: object, *, what: str) -> pd.Timedelta:

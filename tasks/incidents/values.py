@@ -15,6 +15,7 @@ import numpy as np
 import pandas as pd
 
 from changekind.tasks.errors import ConfigError
+from changekind.tasks.timeaxis import parse_instant
 from changekind.tasks.types import round_sig
 
 TIME_TOLERANCE: dict[str, float] = {"AO": 0.5, "IO": 1.5, "TC": 2.5, "LS": 3.5, "VC": 3.5}
@@ -458,10 +459,11 @@ def _optional_float(value: Any) -> float | None:
 
 
 def _utc_stamp(value: Any) -> pd.Timestamp:
-    stamp = pd.Timestamp(value)
-    if stamp is pd.NaT:
+    """A UTC Timestamp (timeaxis' rule: a naive time is UTC, text is ISO 8601)."""
+    stamp = parse_instant(value)
+    if not isinstance(stamp, pd.Timestamp):
         raise ValueError(f"{value!r} is not a date-time")
-    return stamp.tz_localize("UTC") if stamp.tzinfo is None else stamp.tz_convert("UTC")
+    return stamp
 
 
 _FIELDS: dict[type, dict[str, Callable[[Any], Any]]] = {

@@ -5,8 +5,6 @@ dialect-specific upsert (``INSERT ... ON CONFLICT``) every write uses.
 from __future__ import annotations
 
 import math
-import re
-import warnings
 from collections.abc import Iterator, Mapping, Sequence
 from datetime import UTC, datetime
 from typing import Any
@@ -18,9 +16,8 @@ from sqlalchemy.dialects import postgresql as pg_dialect
 from sqlalchemy.dialects import sqlite as sqlite_dialect
 from sqlalchemy.engine import Connection
 
-from changekind.tasks.errors import (
-    ConfigError,
-)
+from changekind.tasks.errors import ConfigError
+from changekind.tasks.timeaxis import utc_datetime
 
 _CHUNK = 500  # rows per IN (...) list when reading back a batch
 
@@ -58,27 +55,17 @@ def _as_datetime(value: datetime | str | None, what: str) -> datetime | None:
     )
 
 
-_NUMBER = re.compile(r"^\s*[-+]?(\d+\.?\d*|\.\d+)([eE][-+]?\d+)?\s*$")
-
-
 def _parse_timestamp(text: str) -> datetime | None:
-    """Parse an event time as the input gave it; None when it is not a date-time.
+    """The UTC instant of an event time as the input gave it; None when it is not a
+    date-time (plain numbers, the labels of numeric grids, are not).
 
-    Plain numbers (the labels of numeric grids) are not date-times.  Times
-    without a zone are taken to be UTC; others are converted to UTC.
+    The rule of :mod:`changekind.tasks.timeaxis`: a time without a zone is UTC,
+    others are converted to UTC; text is ISO 8601.
     """
-    if not text or _NUMBER.match(text):
-        return None
     try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            stamp = pd.Timestamp(text)
-    except (ValueError, TypeError, OverflowError):
+        return utc_datetime(text)
+    except ConfigError:
         return None
-    if stamp is pd.NaT:
-        return None
-    stamp = stamp.tz_localize("UTC") if stamp.tzinfo is None else stamp.tz_convert("UTC")
-    return stamp.to_pydatetime(warn=False)
 
 
 def _finite_or_none(value: float | None) -> float | None:

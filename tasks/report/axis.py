@@ -1,9 +1,9 @@
 """Reading a picture's time axis: timestamps as ticks, an event's tick, grid steps.
 
 A picture places everything by time, not by row: the observations may come in
-any order, with gaps and in any time zone.  The rule, the same for the data
-and for an event's time: aware date-times are converted to UTC and kept
-without their zone, naive ones are kept as they are, and numbers stay numbers.
+any order, with gaps and in any time zone.  The rule is
+:mod:`changekind.tasks.timeaxis`': a naive time is UTC, so every date-time is
+placed in UTC (kept without its zone), and numbers stay numbers.
 """
 
 from __future__ import annotations
@@ -13,7 +13,8 @@ from typing import Any, Literal
 import numpy as np
 import pandas as pd
 
-from changekind.tasks.errors import ConfigError, SeriesError
+from changekind.tasks.errors import ConfigError, SeriesError, TimestampError
+from changekind.tasks.timeaxis import parse_instant, parse_times
 from changekind.tasks.types import Event, FittedModel
 
 __all__ = [
@@ -21,7 +22,6 @@ __all__ = [
     "event_tick",
     "grid_offsets",
     "grid_step",
-    "has_zone",
     "read_axis",
     "time_kind_of",
     "time_tick",
@@ -30,39 +30,22 @@ __all__ = [
 TimeKind = Literal["datetime", "numeric"]
 
 
-def _utc_naive(stamps: pd.DatetimeIndex) -> pd.DatetimeIndex:
-    return stamps.tz_convert("UTC").tz_localize(None) if stamps.tz is not None else stamps
-
-
 def read_axis(timestamps: Any) -> tuple[TimeKind, np.ndarray]:
     """``("datetime", datetime64[ns] UTC-naive)`` or ``("numeric", float64)``.
+
+    Parsed by :func:`~changekind.tasks.timeaxis.parse_times` (a naive time is
+    UTC, ISO 8601 text, all-number text is numeric).
 
     Raises
     ------
     ConfigError
         The timestamps are neither times nor numbers.
     """
-    raw = pd.Series(timestamps).reset_index(drop=True)
-    if raw.dtype.kind in "iuf":
-        return "numeric", raw.to_numpy(dtype=float)
-    if raw.dtype.kind == "M" or isinstance(raw.dtype, pd.DatetimeTZDtype):
-        parsed = pd.DatetimeIndex(raw)
-    else:
-        text = raw.astype(str)
-        numbers = pd.to_numeric(text, errors="coerce")
-        if numbers.notna().all():
-            return "numeric", numbers.to_numpy(dtype=float)
-        try:
-            parsed = pd.DatetimeIndex(pd.to_datetime(text, format="ISO8601", utc=False))
-        except (ValueError, TypeError):
-            try:
-                parsed = pd.DatetimeIndex(pd.to_datetime(text, format="mixed", utc=True))
-            except (ValueError, TypeError) as exc:
-                raise ConfigError(
-                    f"timestamps cannot be read as times or numbers ({exc}); "
-                    "use ISO 8601 such as 2026-01-31T14:05:00"
-                ) from None
-    return "datetime", _utc_naive(parsed).to_numpy(dtype="datetime64[ns]")
+    try:
+        stamps = parse_times("picture", timestamps)
+    except TimestampError as exc:
+        raise ConfigError(f"timestamps cannot be read as times or numbers: {exc.problem}") from None
+    return stamps.axis.kind, stamps.utc_naive()
 
 
 def event_tick(event: Event, kind: TimeKind) -> np.datetime64 | float:
@@ -89,25 +72,24 @@ def time_tick(text: str, kind: TimeKind, series_id: str) -> np.datetime64 | floa
                 "timestamps are; check that --source is the data the events came from",
             ) from None
     try:
-        stamp = pd.Timestamp(text)
-    except (ValueError, TypeError):
+        stamp = parse_instant(text)
+    except ConfigError:
+        stamp = None
+    if not isinstance(stamp, pd.Timestamp):
         raise SeriesError(
             series_id,
             f"event time {text!r} is not a date-time but the source's "
             "timestamps are; check that --source is the data the events came from",
-        ) from None
-    if stamp.tz is not None:
-        stamp = stamp.tz_convert("UTC").tz_localize(None)
-    return stamp.to_datetime64().astype("datetime64[ns]")
+        )
+    return stamp.tz_localize(None).to_datetime64()
 
 
 def time_kind_of(text: str) -> TimeKind:
     """``"numeric"`` for a stored event time that is a number, else ``"datetime"``."""
     try:
-        float(text)
-    except ValueError:
+        return "numeric" if isinstance(parse_instant(text), float) else "datetime"
+    except ConfigError:
         return "datetime"
-    return "numeric"
 
 
 def grid_step(ticks: np.ndarray, kind: TimeKind, model: FittedModel | None) -> float:
@@ -131,11 +113,3 @@ def grid_offsets(
     else:
         seconds = ticks - float(at)
     return np.rint(seconds / step).astype(np.int64)
-
-
-def has_zone(text: str) -> bool:
-    """Whether a time written as text carries a zone or offset."""
-    try:
-        return pd.Timestamp(text).tz is not None
-    except (ValueError, TypeError):
-        return False

@@ -13,8 +13,8 @@ from typing import Any
 
 import numpy as np
 
+from changekind.tasks.arma import psi_weights
 from changekind.tasks.effects import EFFECTS
-from changekind.tasks.fit import psi_weights
 from changekind.tasks.report.axis import event_tick, grid_offsets, grid_step, read_axis
 from changekind.tasks.types import Event, FittedModel
 

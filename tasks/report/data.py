@@ -36,7 +36,7 @@ from changekind.tasks.report.views import (
     verdict_from_record,
 )
 from changekind.tasks.types import Event, FittedModel
-from changekind.tasks.window import summarize_windows
+from changekind.tasks.window.summary import summarize_windows
 
 __all__ = [
     "WrittenReport",

@@ -26,7 +26,6 @@ from changekind.tasks.report.axis import (
     event_tick,
     grid_offsets,
     grid_step,
-    has_zone,
     read_axis,
     time_tick,
 )
@@ -306,7 +305,7 @@ def _format_time_axis(ax: Axes, kind: TimeKind, event: Event) -> None:
         locator = mdates.AutoDateLocator(minticks=3, maxticks=8)
         ax.xaxis.set_major_locator(locator)
         ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))
-        ax.set_xlabel("time (UTC)" if has_zone(event.event_time) else "time", color=INK)
+        ax.set_xlabel("time (UTC)", color=INK)  # a naive time is UTC too (timeaxis)
     else:
         ax.set_xlabel("index", color=INK)
 

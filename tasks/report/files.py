@@ -132,9 +132,13 @@ def write_report(
         incidents_page=incidents_page,
         labels=labels,
     )
-    index = out / INDEX_NAME
+    return write_page(out / INDEX_NAME, page)
+
+
+def write_page(path: Path, page: str) -> Path:
+    """Write a report page (UTF-8); a ConfigError naming the file if it cannot be written."""
     try:
-        index.write_text(page, encoding="utf-8")
+        path.write_text(page, encoding="utf-8")
     except OSError as exc:
-        raise ConfigError(f"cannot write {index}: {exc.strerror or exc}") from None
-    return index
+        raise ConfigError(f"cannot write {path}: {exc.strerror or exc}") from None
+    return path

@@ -25,6 +25,7 @@ from matplotlib.figure import Figure
 
 from changekind.tasks.errors import ConfigError
 from changekind.tasks.incidents import Incident, IncidentMember
+from changekind.tasks.report.files import write_page
 from changekind.tasks.report.style import (
     FALLBACK_STYLE,
     GRID_COLOUR,
@@ -37,6 +38,7 @@ from changekind.tasks.report.style import (
     VERDICT_COLOURS,
     style_of,
 )
+from changekind.tasks.timeaxis import parse_times
 from changekind.tasks.types import number
 
 __all__ = [
@@ -259,12 +261,7 @@ def write_incident_report(
         facts=facts,
         events_page=events_page,
     )
-    index = out / INCIDENTS_PAGE
-    try:
-        index.write_text(page, encoding="utf-8")
-    except OSError as exc:
-        raise ConfigError(f"cannot write {index}: {exc.strerror or exc}") from None
-    return index
+    return write_page(out / INCIDENTS_PAGE, page)
 
 
 def read_member_series(
@@ -287,7 +284,8 @@ def read_member_series(
             part = data[data["series_id"] == m.series_id]
             if part.empty:
                 continue
-            stamps = pd.DatetimeIndex(pd.to_datetime(part["timestamp"], utc=True, format="mixed"))
+            utc = parse_times(m.series_id, part["timestamp"]).utc_naive()  # timeaxis' rule
+            stamps = pd.DatetimeIndex(utc).tz_localize("UTC")
             found.append(MemberSeries(m, stamps, part["value"].to_numpy(dtype=float)))
         out[inc.incident_id] = found
     return out

@@ -71,7 +71,7 @@ def _rss_mb() -> float:
 
 def child(mode: str, days: int, seed: int, window: str) -> dict:
     from changekind.tasks.detect import analyse_series
-    from changekind.tasks.window import detect_windowed
+    from changekind.tasks.window.detection import detect_windowed
 
     stamps, y = make_series(seed, days)
     before = _rss_mb()

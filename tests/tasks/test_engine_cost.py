@@ -8,11 +8,11 @@ import pytest
 from numpy.testing import assert_allclose
 from scipy.signal import lfilter
 
+from changekind.tasks.arma import pi_weights, psi_weights
 from changekind.tasks.budget import WorkBudget
 from changekind.tasks.decompose import regularize
 from changekind.tasks.detect import analyse_series
 from changekind.tasks.effects import EFFECTS, TC_DECAY
-from changekind.tasks.fit import pi_weights, psi_weights
 from changekind.tasks.screen import screen_new_points
 
 

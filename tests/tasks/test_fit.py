@@ -10,10 +10,13 @@ from numpy.testing import assert_allclose
 from scipy.signal import lfilter
 from statsmodels.tsa.statespace.sarimax import SARIMAX
 
+from changekind.tasks.arma import pi_weights, psi_weights
 from changekind.tasks.decompose import decompose, regularize
 from changekind.tasks.errors import ModelError
-from changekind.tasks.fit import choose_d, fit_model, innovations, pi_weights, psi_weights
+from changekind.tasks.estimation import innovations
+from changekind.tasks.fit import fit_model
 from changekind.tasks.types import FittedModel
+from changekind.tasks.unitroot import choose_d
 
 
 def _air_passengers() -> pd.DataFrame:
@@ -138,7 +141,7 @@ def test_pi_weights_and_the_filter_equal_scipy_lfilter(params, order):
     """Reference: scipy.signal.lfilter of the model's polynomials (statsmodels' sign convention)."""
     from scipy.signal import lfilter
 
-    from changekind.tasks.fit import linear_filter, polynomials
+    from changekind.tasks.arma import linear_filter, polynomials
 
     model = FittedModel(
         "x", order, (0, 0, 0, 0), "n", (*params, ("sigma2", 1.0)), 1.0, 100, "mle", True
@@ -156,7 +159,7 @@ def test_kpss_statistic_equals_statsmodels():
     # Oracle: statsmodels.tsa.stattools.kpss(regression="c", nlags="auto").
     from statsmodels.tsa.stattools import kpss
 
-    from changekind.tasks.fit import kpss_stat
+    from changekind.tasks.unitroot import kpss_stat
 
     rng = np.random.default_rng(17)
     for z in (

@@ -1,12 +1,9 @@
-"""Where today's code breaks the time rule: scenarios for the time-axis adoption.
+"""Regressions of the time rule: one scenario per place the code once broke it.
 
 Each test states the correct result under the rule of
 :mod:`changekind.tasks.timeaxis` (a naive time is UTC; text is ISO 8601;
-grid offsets are explicit about snapping).  Today's code gives another result,
-so each is ``xfail(strict=True, raises=...)``, pinned to the failure it
-shows today: the adoption step makes them pass and removes the marks (strict,
-so a fix made on the way is noticed).  The survey
-in TIMEAXIS-ADOPTION.md says where each comes from.
+grid offsets are explicit about snapping).  Each failed before the code was
+moved onto that module; the comments say what went wrong then.
 
 References: the standard library's ``datetime``/``zoneinfo`` for instants;
 the injected truth of the simulated series for the engine's results.
@@ -28,11 +25,6 @@ from changekind.tasks.detect import detect_events, known_effects, screen_new_poi
 from changekind.tasks.errors import ConfigError, TimestampError
 from changekind.tasks.fetch import SeriesWindow, open_source, read_series, read_windows
 from changekind.tasks.types import Event, FittedModel
-
-
-def fails_today(raises: type[BaseException], why: str) -> pytest.MarkDecorator:
-    """Strict xfail pinned to the failure the scenario shows today."""
-    return pytest.mark.xfail(strict=True, raises=raises, reason=why)
 
 
 def event(series_id: str, when: str, kind: str = "LS", effect: float = 5.0, **kw) -> Event:
@@ -73,11 +65,6 @@ def white_noise_model(series_id: str, **kw) -> FittedModel:
     return FittedModel(**values)
 
 
-@fails_today(
-    AssertionError,
-    "detect._grid_offsets reads a naive event time in the index's zone "
-    "(batch, persist and incidents read it as UTC)",
-)
 def test_a_known_event_with_a_naive_time_is_placed_at_its_utc_instant():
     index = pd.date_range("2030-01-10T00:00", periods=48, freq="h", tz="Europe/Paris")
     series = regularize("room-3", index, np.random.default_rng(0).normal(size=48))
@@ -85,15 +72,10 @@ def test_a_known_event_with_a_naive_time_is_placed_at_its_utc_instant():
         white_noise_model("room-3"), series, [event("room-3", "2030-01-10T12:00:00")]
     )
     first = series.index[int(np.flatnonzero(effect)[0])]
-    # 12:00 UTC (standard library), which is 13:00 in Paris; today the shift starts at 11:00 UTC.
+    # 12:00 UTC (standard library), which is 13:00 in Paris; it once started at 11:00 UTC.
     assert first == datetime(2030, 1, 10, 12, tzinfo=UTC)
 
 
-@fails_today(
-    AssertionError,
-    "detect._seasonal_for reads a naive model anchor in the index's zone: the "
-    "profile is applied an hour late and clean points become events",
-)
 def test_a_naive_anchor_keeps_the_seasonal_profile_in_phase():
     profile = tuple(float(10 * np.sin(2 * np.pi * k / 24)) for k in range(24))
     n = 240
@@ -108,16 +90,11 @@ def test_a_naive_anchor_keeps_the_seasonal_profile_in_phase():
     aware = white_noise_model(
         "room-4", periods=(24,), profiles=(profile,), anchor="2030-01-01T00:00:00+00:00"
     )
-    # Injected truth: no event.  The same anchor written with its offset finds none today.
+    # Injected truth: no event.  The same anchor written with its offset always found none.
     assert screen_new_points(aware, series, 48).events == ()
     assert screen_new_points(naive, series, 48).events == ()
 
 
-@fails_today(
-    AssertionError,
-    "flows.pipeline._bound turns an aware watermark into UTC wall time without a "
-    "zone, which fetch then reads in the source's declared zone",
-)
 def test_a_warm_read_starts_its_context_at_the_same_instant_whatever_the_source_zone(
     tmp_path: Path,
 ):
@@ -149,15 +126,10 @@ def test_a_warm_read_starts_its_context_at_the_same_instant_whatever_the_source_
         frame = read_windows(spec, [SeriesWindow("pump-1", work.start, work.end)])
         first_read.append(frame["timestamp"].iloc[0])
     # The stamps carry their offset, so the declared zone of naive stamps has nothing to
-    # change: 23 context hours before the watermark either way (today 5 h fewer in New York).
+    # change: 23 context hours before the watermark either way (once 5 h fewer in New York).
     assert first_read == ["2030-01-09T13:00:00+00:00"] * 2
 
 
-@fails_today(
-    AssertionError,
-    "fetch reads naive stamps in the declared zone but hands on their naive text; "
-    "persist stores that label as UTC, an hour away from the row it names",
-)
 def test_an_event_from_a_zoned_source_is_stored_at_the_instant_of_its_row(tmp_path: Path):
     stamps = pd.date_range("2030-01-08T00:00", periods=96, freq="h")
     path = tmp_path / "naive.csv"
@@ -176,16 +148,11 @@ def test_an_event_from_a_zoned_source_is_stored_at_the_instant_of_its_row(tmp_pa
     finally:
         engine.dispose()
     # Reading the source from the stored instant must start at the event's own row
-    # (2030-01-10T12:00 in Paris); today it starts an hour later.
+    # (2030-01-10T12:00 in Paris); it once started an hour later.
     again = read_series(paris, ["pump-2"], start=stored)
     assert again["timestamp"].iloc[0] == rows["timestamp"].iloc[60]
 
 
-@fails_today(
-    AssertionError,
-    "batch._position matches an event time to the grid exactly while detect rounds "
-    "to the nearest step: a jittered provisional event is never examined again",
-)
 def test_a_provisional_event_at_a_jittered_time_is_examined_again():
     rng = np.random.default_rng(3)
     n = 300
@@ -198,39 +165,25 @@ def test_a_provisional_event_at_a_jittered_time_is_examined_again():
     work = SeriesWork("j", cold.model, text[239], (ghost,), None, None)
     outcome = analyse_series_work(work, text, y, AnalysisOptions())
     # The data show nothing at 250: the provisional event is retracted, and nothing is
-    # found in its place.  Today it is kept as a fixed effect, subtracted, and its
-    # negative (about -4.7) is reported at the same time.
+    # found in its place.  It was once kept as a fixed effect, subtracted, and its
+    # negative (about -4.7) was reported at the same time.
     assert outcome.retract == (text[250],)
     assert outcome.events == ()
 
 
-@fails_today(
-    pytest.fail.Exception,
-    "regularize falls back to pandas' per-element format guessing: "
-    "dd/mm text is read month-first where it can be and day-first where it cannot",
-)
 def test_slashed_dates_are_refused_not_guessed():
     text = [f"{d:02d}/03/2030" for d in range(1, 29)] + [f"{d:02d}/04/2030" for d in range(1, 21)]
     with pytest.raises(TimestampError, match="ISO 8601"):
-        # Today: 01/03/2030 .. 12/03/2030 become 3 January .. 3 December, 13/03 on 13 March.
+        # Once: 01/03/2030 .. 12/03/2030 became 3 January .. 3 December, 13/03 on 13 March.
         regularize("s", text, np.random.default_rng(0).normal(size=len(text)))
 
 
-@fails_today(
-    TimestampError,
-    "regularize refuses text that is all numbers; fetch and the report read it as a numeric axis",
-)
 def test_sample_numbers_written_as_text_are_a_numeric_axis():
     text = np.array([str(i) for i in range(48)], dtype=object)
     series = regularize("s", text, np.random.default_rng(0).normal(size=48))
     assert not series.is_datetime and series.label(5) == "5"
 
 
-@fails_today(
-    pytest.fail.Exception,
-    "regularize converts with to_numpy(dtype='datetime64[ns]'), which wraps times "
-    "past 2262 silently (2300 becomes 1715)",
-)
 def test_times_beyond_the_nanosecond_range_are_refused():
     text = [f"2300-01-{d:02d}T00:00:00" for d in range(1, 31)]
     with pytest.raises(TimestampError, match="1677-2262"):

@@ -35,15 +35,13 @@ from changekind.flows.cli import detect as cli_window  # the windowed detect hel
 from changekind.tasks.errors import ConfigError, SeriesError, SourceError, TooShortError
 from changekind.tasks.fetch import open_source
 from changekind.tasks.types import EVENT_NAMES, EVENT_TYPES, FittedModel
-from changekind.tasks.window import (
+from changekind.tasks.window.detection import detect_windowed, screen_windowed, windowed_model
+from changekind.tasks.window.drill import drill
+from changekind.tasks.window.summary import (
     MIN_WINDOWS,
     complete_windows,
-    detect_windowed,
-    drill,
     parse_window,
-    screen_windowed,
     summarize_windows,
-    windowed_model,
 )
 
 SID = "array-07/write_latency_ms"
@@ -565,7 +563,8 @@ def test_a_spike_inside_a_window_is_an_ao_naming_the_window():
     # around it (normalized MADs, which one spike does not move) finds it.
     from scipy.signal import lfilter
 
-    from changekind.tasks.window import detect_windowed, extreme_windows, summarize_windows
+    from changekind.tasks.window.detection import detect_windowed, extreme_windows
+    from changekind.tasks.window.summary import summarize_windows
 
     rng = np.random.default_rng(1)
     n = 86_400
@@ -585,7 +584,7 @@ def test_a_spike_inside_a_window_is_an_ao_naming_the_window():
 
 
 def test_drill_marks_the_extreme_point_of_each_window():
-    from changekind.tasks.window import _extreme_rows
+    from changekind.tasks.window.drill import _extreme_rows
 
     values = np.array([1.0, 1.2, 9.0, 0.9, 5.0, 5.1, 4.0, np.nan])
     offset = np.array([0, 0, 0, 0, 1, 1, 1, 1])
@@ -599,3 +598,14 @@ def test_drill_marks_the_extreme_point_of_each_window():
         True,
         False,
     ]
+
+
+def test_window_summaries_refuse_values_too_large_to_analyse():
+    # The one value check (decompose.check_values): sums of squares of 1e200 overflow float64.
+    from changekind.tasks.errors import NonFiniteError
+
+    stamps = pd.date_range(START, periods=3000, freq="s")
+    y = np.random.default_rng(2).normal(size=stamps.size)
+    y[5] = 1e200
+    with pytest.raises(NonFiniteError, match=r"1 value\(s\) are beyond 1e\+150 .*first: 1e\+200"):
+        summarize_windows("s1", stamps, y, "1min")

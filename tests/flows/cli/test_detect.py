@@ -12,7 +12,6 @@ References
 from __future__ import annotations
 
 import json
-import os
 import subprocess
 import sys
 from pathlib import Path
@@ -29,6 +28,7 @@ from changekind.flows.cli.detect import analyse_inputs
 from changekind.tasks.fetch import open_source, read_series
 from changekind.tasks.fetch.inputs import SeriesInput, read_series_file
 from changekind.tasks.types import EVENT_TYPES
+from tests.fresh import run_python
 
 N, T_SHIFT, PHI, SHIFT = 300, 150, 0.5, 8.0  # shift of 8 innovation sds at t = 150
 STAMP_FORMAT = "%Y-%m-%d %H:%M"  # deliberately not ISO's "T": must come back as given
@@ -346,15 +346,7 @@ def test_detect_does_not_import_prefect(tmp_path):
         "assert r.exit_code == 0, r.stderr\n"
         "print('prefect' in sys.modules)\n"
     )
-    env = {**os.environ, "PYTHONWARNINGS": "ignore"}
-    done = subprocess.run(
-        [sys.executable, "-c", code],
-        capture_output=True,
-        text=True,
-        timeout=300,
-        check=False,
-        env=env,
-    )
+    done = run_python(code)
     assert done.returncode == 0, done.stderr
     assert done.stdout.strip() == "False"
 

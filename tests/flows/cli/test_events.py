@@ -10,9 +10,6 @@ import csv
 import importlib.util
 import io
 import json
-import os
-import subprocess
-import sys
 from datetime import UTC, datetime, timedelta
 
 import pandas as pd
@@ -23,6 +20,7 @@ from typer.testing import CliRunner
 from changekind.flows.cli import app
 from changekind.flows.cli.output import events_table
 from changekind.tasks import persist
+from tests.fresh import run_python
 from tests.tasks.persist.tables import make_event
 
 LONG_ID = "eu-west-3/checkout-api/latency-p99-ms/canary-frontend-7"
@@ -217,15 +215,7 @@ def test_read_only_commands_do_not_import_prefect(db, tmp_path, command):
         f"r = CliRunner().invoke(app, {args!r})\n"
         "print(r.exit_code, 'prefect' in sys.modules, repr(r.stderr[-300:]))\n"
     )
-    env = {**os.environ, "PYTHONWARNINGS": "ignore"}
-    done = subprocess.run(
-        [sys.executable, "-c", code],
-        capture_output=True,
-        text=True,
-        timeout=300,
-        check=False,
-        env=env,
-    )
+    done = run_python(code)
     assert done.returncode == 0, done.stderr
     exit_code, imported, stderr = done.stdout.strip().split(" ", 2)
     assert exit_code == "0", stderr

@@ -52,7 +52,7 @@ BAD_SOURCES = [
     (
         "csv-bad-time",
         r"timestamp column 'timestamp' holds values that are neither dates/times nor numbers: "
-        r"'yesterday'",
+        r".*not ISO 8601 \(first: 'yesterday'\)",
     ),
     ("sqlite-missing", r"SQLite database file '.*missing\.db' does not exist"),
     (
@@ -159,8 +159,8 @@ def test_bad_time_past_the_sample_fails_at_read(tmp_path: Path, monkeypatch):
     spec = open_source(path)
     with pytest.raises(
         SourceError,
-        match=r"CSV file '.*late\.csv': timestamp column 'timestamp': 'not a time' is not a "
-        r"date/time",
+        match=r"CSV file '.*late\.csv': timestamp column 'timestamp': 1 timestamp\(s\) are not "
+        r"ISO 8601 \(first: 'not a time'\)",
     ):
         read_series(spec, ["a"])
 

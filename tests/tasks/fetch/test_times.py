@@ -104,7 +104,10 @@ def test_naive_times_are_read_in_the_given_zone(tmp_path: Path):
     assert got["timestamp"].dt.tz is None  # handed on as stored
     paris = open_source(path, timezone="Europe/Paris")  # UTC+2 in May
     got = read_series(paris, ["pump-01"], start=start)
-    assert got["timestamp"].iloc[0] == pd.Timestamp("2031-05-02T00:00")
+    # The declared zone is applied to the stamps once: they are handed on aware, so
+    # downstream (where a naive time is UTC) they keep the instant of their row.
+    assert got["timestamp"].iloc[0] == pd.Timestamp("2031-05-02T00:00", tz="Europe/Paris")
+    assert str(got["timestamp"].dt.tz) == "Europe/Paris"
 
 
 def test_date_columns_in_parquet_and_sql(tmp_path: Path, monkeypatch):

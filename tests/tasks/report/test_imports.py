@@ -8,11 +8,9 @@ pay Prefect's start-up for a look at the database.
 
 from __future__ import annotations
 
-import os
-import subprocess
-import sys
-
 import pytest
+
+from tests.fresh import run_python
 
 CODE = """
 import importlib, pkgutil, sys
@@ -28,15 +26,7 @@ print(len(names), "prefect" in sys.modules)
 
 @pytest.mark.integration  # a fresh interpreter
 def test_importing_every_report_module_does_not_load_prefect():
-    env = {**os.environ, "PYTHONWARNINGS": "ignore"}
-    done = subprocess.run(
-        [sys.executable, "-c", CODE],
-        capture_output=True,
-        text=True,
-        timeout=300,
-        check=False,
-        env=env,
-    )
+    done = run_python(CODE)
     assert done.returncode == 0, done.stderr
     n_modules, loaded = done.stdout.split()
     assert int(n_modules) >= 10 and loaded == "False"
