@@ -11,7 +11,9 @@ from __future__ import annotations
 
 import inspect
 import os
-from collections.abc import Mapping
+import uuid
+from collections.abc import Iterator, Mapping
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -22,7 +24,7 @@ from pydantic import ValidationError
 from changekind.flows.cli.app import OPTION_NAMES, validation_text
 from changekind.flows.settings import RunOptions, Settings, split_password
 from changekind.tasks import persist
-from changekind.tasks.errors import ConfigError, mask_url
+from changekind.tasks.errors import ChangekindError, ConfigError, mask_url
 from changekind.tasks.fetch import open_source
 from changekind.tasks.labels import check_label_columns
 from changekind.tasks.timeaxis import parse_instant
@@ -257,6 +259,43 @@ def fleet_config(
         sql=sql,
         labels=labels,
     )
+
+
+def record_refusal(kind: str, db: str | None, message: str) -> str | None:
+    """Record a fleet command refused on its configuration as a run of its own.
+
+    The row (status ``failed``, the message prefixed ``not run:``) goes to the
+    database the command was given (``--db``, else ``CHANGEKIND_DB_URL``) when
+    that database answers and already holds changekind's tables: a refused
+    command never creates a database or its tables.  Returns the run id
+    recorded, or None when there was nowhere to record it (bad ``--db`` or
+    environment, a database that does not exist yet); the refusal itself is
+    what the person sees either way.
+    """
+    try:
+        url = database_url(db)
+        require_tables(url)
+    except ChangekindError:
+        return None
+    run_id = str(uuid.uuid4())
+    try:
+        persist.record_refused_run(url, run_id, kind, f"not run: {message}")  # type: ignore[arg-type]
+    except (ChangekindError, sa.exc.SQLAlchemyError):  # nowhere to record it
+        return None
+    return run_id
+
+
+@contextmanager
+def refusals_recorded(kind: str, db: str | None) -> Iterator[None]:
+    """A configuration error raised in the block is recorded (:func:`record_refusal`)."""
+    try:
+        yield
+    except ChangekindError as exc:
+        record_refusal(kind, db, str(exc))
+        raise
+    except ValidationError as exc:
+        record_refusal(kind, db, validation_text(exc, OPTION_NAMES))
+        raise
 
 
 def check_time(value: str | None, what: str, time_kind: str) -> str | None:

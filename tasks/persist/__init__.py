@@ -56,6 +56,7 @@ from changekind.tasks.persist.runs import (
     close_stale_runs,
     finish_run,
     record_failures,
+    record_refused_run,
     record_source_problems,
     start_run,
 )
@@ -122,6 +123,7 @@ __all__ = [
     "read_events",
     "read_triage_history",
     "record_failures",
+    "record_refused_run",
     "record_source_problems",
     "run_locks",
     "save_models",

@@ -134,6 +134,44 @@ def finish_run(
     return seconds
 
 
+def record_refused_run(
+    db: Database,
+    run_id: str,
+    kind: RunKind,
+    message: str,
+    *,
+    at: datetime | None = None,
+) -> None:
+    """Record a run that never started: its configuration was refused.
+
+    One row, status ``failed``, started and finished ``at`` (now by default),
+    no series, ``message`` saying what was wrong.  Only the columns the
+    database's ``scan_runs`` has are written, so an older schema (not yet
+    migrated by a run) takes the record too.
+    """
+    when = _now(at)
+    row = {
+        "run_id": _text(run_id, "run_id"),
+        "kind": _one_of(kind, RUN_KINDS, "run kind"),
+        "span_start": None,
+        "span_end": None,
+        "status": "failed",
+        "series_total": 0,
+        "series_ok": 0,
+        "series_failed": 0,
+        "events_new": 0,
+        "events_changed": 0,
+        "events_retracted": 0,
+        "started_at": when,
+        "finished_at": when,
+        "seconds": 0.0,
+        "message": _text(message, "message"),
+    }
+    with _engine(db) as engine, engine.begin() as conn:
+        present = {c["name"] for c in sa.inspect(conn).get_columns(scan_runs.name)}
+        conn.execute(sa.insert(scan_runs).values({k: v for k, v in row.items() if k in present}))
+
+
 def record_source_problems(
     db: Database,
     run_id: str,

@@ -95,3 +95,19 @@ def test_failures_are_recorded_once_per_run_series_and_stage(engine: sa.Engine) 
         ("a", "fetch", "refused", T0),
         ("b", "fit", "too short: 5 points", T0),
     ]
+
+
+def test_a_refused_run_is_one_failed_row_with_its_message(engine: sa.Engine) -> None:
+    persist.record_refused_run(
+        engine, "refused-1", "backfill", "not run: unknown runner 'turbo'", at=T0
+    )
+    with engine.connect() as conn:
+        row = conn.execute(sa.select(persist.scan_runs)).mappings().one()
+    assert (row["run_id"], row["kind"], row["status"]) == ("refused-1", "backfill", "failed")
+    assert row["message"] == "not run: unknown runner 'turbo'"
+    assert (row["started_at"], row["finished_at"], row["seconds"]) == (T0, T0, 0.0)
+    assert [row[k] for k in ("series_total", "series_ok", "series_failed")] == [0, 0, 0]
+    # A later run does not take it for a run left behind: it is not 'running'.
+    assert persist.close_stale_runs(engine, "next", at=T0) == []
+    with pytest.raises(ConfigError, match="run kind"):
+        persist.record_refused_run(engine, "refused-2", "rescan", "not run: x")  # type: ignore[arg-type]
