@@ -96,11 +96,13 @@ def _run(
         _record_refusal(db, run_id, kind, exc, logger=logger)
         raise
     span = (chunks[0][0], chunks[-1][1])
+    # Recorded (password hidden) so that report and drill can read it again.
+    origin = {"source": source, "source_columns": columns or None}
     try:
         lock = RunLock(db, run_id, kind, wait_seconds=options.wait_seconds)
         take_lock_task(lock)
     except RunBusyError as exc:
-        start_run_task(db, run_id, kind, *_span(span))
+        start_run_task(db, run_id, kind, *_span(span), **origin)
         finish_run_task(db, run_id, "failed", message=str(exc))
         raise
     try:
@@ -122,6 +124,7 @@ def _run(
                 refit=refit,
                 report_dir=report_dir,
                 labels=labels,
+                origin=origin,
             )
     finally:
         lock.release()
@@ -145,6 +148,7 @@ def _locked_run(
     refit: bool,
     report_dir: str | None,
     labels: Sequence[str] = (),
+    origin: Mapping[str, object] | None = None,
 ) -> RunSummary:
     """The run, once it holds the database (see :mod:`changekind.tasks.runlock`)."""
     starting = start_workers(options.workers)  # worker imports overlap the planning
@@ -166,7 +170,7 @@ def _locked_run(
             notes.append(extended)
             logger.warning("%s", extended)
     span = (chunks[0][0], chunks[-1][1])
-    start_run_task(db, run_id, kind, *_span(span))
+    start_run_task(db, run_id, kind, *_span(span), **(origin or {}))
     if problems:
         record_source_problems_task(db, run_id, problem_rows(problems))
         for problem in problems:

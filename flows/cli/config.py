@@ -261,6 +261,69 @@ def fleet_config(
     )
 
 
+@dataclass(frozen=True, slots=True)
+class ReadingSource:
+    """The source a reading command (``report``, ``drill``) reads, and where it came from."""
+
+    location: str
+    columns: dict[str, str] | None
+    recorded: persist.RunSource | None = None
+    """The run whose record named it; None when given (--source, CHANGEKIND_SOURCE)."""
+
+    def said(self) -> str | None:
+        """A line for stderr when the source came from a run record."""
+        if self.recorded is None:
+            return None
+        when = self.recorded.started_at.isoformat(timespec="seconds")
+        return (
+            f"changekind: reading {self.location} (the source of the {self.recorded.kind} "
+            f"run {self.recorded.run_id} of {when}; --source reads another)"
+        )
+
+
+def reading_source(
+    given: str | None, db_url: str | None, columns: Mapping[str, str] | None
+) -> ReadingSource:
+    """The source to read: ``--source``, else ``CHANGEKIND_SOURCE``, else the latest run's.
+
+    The latest run's source is the one recorded in ``scan_runs`` of the
+    database (:func:`~changekind.tasks.persist.latest_source`), with the
+    column names that run was given; column names given now win.
+
+    Raises
+    ------
+    ConfigError
+        No source given and none recorded, or the recorded one had a password
+        (not stored): the message says what to give.
+    """
+    named = dict(columns or {})
+    if given:
+        return ReadingSource(given, named or None)
+    settings = env_settings()
+    if settings.source:
+        return ReadingSource(settings.source, named or None)
+    recorded = None
+    if db_url is not None:
+        try:
+            require_tables(db_url)
+            recorded = persist.latest_source(db_url)
+        except ChangekindError:
+            recorded = None
+        except sa.exc.SQLAlchemyError:  # a database from before runs recorded their source
+            recorded = None
+    if recorded is None:
+        raise ConfigError(
+            "no source given, and no run recorded in the database names one; "
+            "pass --source PATH (or set CHANGEKIND_SOURCE)"
+        )
+    if recorded.masked:
+        raise ConfigError(
+            f"the latest run ({recorded.run_id}) read {recorded.source}, whose password is "
+            "not stored; give --source with the password (or set CHANGEKIND_SOURCE)"
+        )
+    return ReadingSource(recorded.source, {**(recorded.columns or {}), **named} or None, recorded)
+
+
 def record_refusal(kind: str, db: str | None, message: str) -> str | None:
     """Record a fleet command refused on its configuration as a run of its own.
 

@@ -589,3 +589,10 @@ def test_day_files_hold_one_utc_day_each_and_the_whole_fleet_together(tmp_path):
     back = pd.read_parquet(tmp_path).sort_values(key).reset_index(drop=True)
     expected = fleet.data.sort_values(key).reset_index(drop=True)
     pd.testing.assert_frame_equal(back, expected, check_dtype=False)
+
+
+def test_the_scan_records_its_source(scanned):
+    db = f"sqlite:///{scanned['db_file']}"
+    recorded = persist.latest_source(db)
+    assert recorded is not None and recorded.kind == "scan" and recorded.columns is None
+    assert Path(recorded.source).resolve() == Path(scanned["source"]).resolve()
