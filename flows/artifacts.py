@@ -4,9 +4,11 @@ Call :func:`publish_run_artifacts` at the end of a scan, backfill or refit
 flow (inside the flow run, so the artifacts belong to it).  Two keyed
 artifacts are created, so the Prefect UI keeps their history across runs:
 
-- ``changekind-<kind>-summary`` (markdown): series analysed and failed, events
-  new/changed/retracted, new events by type, the strongest events by |t|, and
-  the failures;
+- ``changekind-<kind>-summary`` (markdown): series analysed, up to date and
+  failed (the counts of the run record), events new/changed/retracted, new
+  events by type, the strongest events by |t| marked new, changed or seen, the
+  failures, and the run's notes (the run record's message: refit reasons,
+  "nothing to do: span already done", ...);
 - ``changekind-<kind>-events`` (table): the run's events, strongest first --
   those it wrote or changed (``last_run_id`` is the run) when the database is
   given, else the summary's strongest events.
@@ -33,6 +35,7 @@ MAX_TOP_SHOWN = 10
 MAX_MESSAGE_CHARS = 200
 
 _MD_SPECIAL = re.compile(r"([\\`*_{}\[\]<>()#+!|~])")
+_MD_INLINE = re.compile(r"([\\`*_\[\]<>|~])")
 
 
 def artifact_key(kind: str, what: str) -> str:
@@ -69,6 +72,7 @@ def run_markdown(summary: RunSummary, *, n_table_rows: int | None = None) -> str
         f"| first fit (cold) | {s.cold} |",
         f"| new points only (warm) | {s.warm} |",
         f"| deferred (too little history) | {s.deferred} |",
+        f"| up to date (nothing to analyse) | {s.up_to_date} |",
         f"| failed | {s.series_failed} |",
         "",
         f"**Events:** {s.events_new} new, {s.events_changed} changed, "
@@ -82,12 +86,16 @@ def run_markdown(summary: RunSummary, *, n_table_rows: int | None = None) -> str
     lines += ["", f"## Strongest events (by |t|, at most {MAX_TOP_SHOWN})", ""]
     if s.top_events:
         lines += [
-            "| series | time | type | effect | effect % | t | status |",
-            "|---|---|---|---:|---:|---:|---|",
+            "new: found by this run; changed: type or status changed; seen: stored before, "
+            "unchanged.",
+            "",
+            "| change | series | time | type | effect | effect % | t | status |",
+            "|---|---|---|---|---:|---:|---:|---|",
         ]
-        for e in s.top_events[:MAX_TOP_SHOWN]:
+        changes = s.top_changes or ("",) * len(s.top_events)
+        for e, change in list(zip(s.top_events, changes, strict=True))[:MAX_TOP_SHOWN]:
             lines.append(
-                f"| {_md(e.series_id)} | {_md(e.event_time)} | {e.event_type} | "
+                f"| {change} | {_md(e.series_id)} | {_md(e.event_time)} | {e.event_type} | "
                 f"{number(e.effect, '+.4g')} | {number(e.effect_pct, '+.1f')} | "
                 f"{number(e.t_stat, '+.2f')} | {e.status} |"
             )
@@ -111,6 +119,10 @@ def run_markdown(summary: RunSummary, *, n_table_rows: int | None = None) -> str
             )
     else:
         lines.append("No series failed.")
+    if s.notes:
+        lines += ["", "## Notes", ""]
+        # Inside a list item only emphasis, code, links and HTML need escaping.
+        lines += ["- " + _MD_INLINE.sub(r"\\\1", " ".join(note.split())) for note in s.notes]
     return "\n".join(lines) + "\n"
 
 

@@ -80,6 +80,16 @@ class RunSummary:
     """Prefect events the run emitted (new and grown incidents, newly confirmed events)."""
     labelled: int = 0
     """Series whose labels the run read from the source."""
+    up_to_date: int = 0
+    """Series with nothing new to analyse: no point after their watermark, or
+    already analysed through the run's end (a backfill's span, a scan's
+    ``until``).  Counted in ``series_total`` and ``series_ok``, so the summary's
+    counts are the run record's."""
+
+    @property
+    def nothing_to_do(self) -> bool:
+        """Every series of the run was up to date: the run analysed nothing."""
+        return self.series_total > 0 and self.up_to_date == self.series_total
 
 
 def current_run_id() -> str:
@@ -387,11 +397,17 @@ def summarize(
     batches: int,
     seconds: float,
     timings: Mapping[str, float],
+    *,
+    up_to_date: int = 0,
 ) -> RunSummary:
     """Counts for the run record and the run's summary.
 
     ``before`` maps stored (series_id, event_time) to (type, status) as they
     were before the run, so new, changed and retracted events are told apart.
+    ``up_to_date``: series of the run that were not planned at all (already
+    analysed through the run's end; they have no outcome); they count as done,
+    so ``series_total`` is every series of the run, and they add to the
+    outcomes with no new point (``unchanged``) in ``RunSummary.up_to_date``.
     """
     new = changed = retracted = 0
     by_type = dict.fromkeys(REPORTED_TYPES, 0)
@@ -425,8 +441,8 @@ def summarize(
     return RunSummary(
         run_id=run_id,
         kind=kind,
-        series_total=len(outcomes),
-        series_ok=sum(o.mode in ("cold", "warm", "unchanged") for o in outcomes),
+        series_total=len(outcomes) + up_to_date,
+        series_ok=sum(o.mode in ("cold", "warm", "unchanged") for o in outcomes) + up_to_date,
         series_failed=len(failures),
         deferred=sum(o.mode == "deferred" for o in outcomes),
         events_new=new,
@@ -444,7 +460,19 @@ def summarize(
         notes=notes,
         refits=refits,
         refits_deferred=deferred,
+        up_to_date=up_to_date + sum(o.mode == "unchanged" for o in outcomes),
     )
+
+
+def nothing_to_do(kind: str, n_series: int, end: object) -> str:
+    """The note of a run in which no series had anything new to analyse."""
+    if kind == "backfill":
+        return (
+            f"nothing to do: span already done (all {n_series} series were analysed "
+            f"through {end} before this run)"
+        )
+    before = "" if end is None else f" before {end}"
+    return f"nothing to do: none of the {n_series} series has new points{before}"
 
 
 _REFIT_PREFIXES = (("refit: ", ""), ("coefficients re-estimated: ", "re-estimated after "))

@@ -29,6 +29,7 @@ from changekind.flows.pipeline import (
     RunSummary,
     current_run_id,
     execute,
+    nothing_to_do,
     plan_reach,
     plan_works,
     start_workers,
@@ -87,15 +88,21 @@ def _run(
     # clear): it comes from the environment or a Secret block (settings.py).
     db = resolve_db(db)
 
-    migrate_task(db)
-    spec = open_source(source, columns=_columns(columns), table=table, query=query)
-    labels = check_label_columns(spec, label_columns)  # a wrong name: nothing is run
+    try:
+        migrate_task(db)
+        spec = open_source(source, columns=_columns(columns), table=table, query=query)
+        labels = check_label_columns(spec, label_columns)  # a wrong name: nothing is run
+    except ChangekindError as exc:  # configuration: nothing run, but the run is recorded
+        _record_refusal(db, run_id, kind, exc, logger=logger)
+        raise
     span = (chunks[0][0], chunks[-1][1])
+    # Recorded (password hidden) so that report and drill can read it again.
+    origin = {"source": source, "source_columns": columns or None}
     try:
         lock = RunLock(db, run_id, kind, wait_seconds=options.wait_seconds)
         take_lock_task(lock)
     except RunBusyError as exc:
-        start_run_task(db, run_id, kind, *_span(span))
+        start_run_task(db, run_id, kind, *_span(span), **origin)
         finish_run_task(db, run_id, "failed", message=str(exc))
         raise
     try:
@@ -117,6 +124,7 @@ def _run(
                 refit=refit,
                 report_dir=report_dir,
                 labels=labels,
+                origin=origin,
             )
     finally:
         lock.release()
@@ -140,6 +148,7 @@ def _locked_run(
     refit: bool,
     report_dir: str | None,
     labels: Sequence[str] = (),
+    origin: Mapping[str, object] | None = None,
 ) -> RunSummary:
     """The run, once it holds the database (see :mod:`changekind.tasks.runlock`)."""
     starting = start_workers(options.workers)  # worker imports overlap the planning
@@ -161,7 +170,7 @@ def _locked_run(
             notes.append(extended)
             logger.warning("%s", extended)
     span = (chunks[0][0], chunks[-1][1])
-    start_run_task(db, run_id, kind, *_span(span))
+    start_run_task(db, run_id, kind, *_span(span), **(origin or {}))
     if problems:
         record_source_problems_task(db, run_id, problem_rows(problems))
         for problem in problems:
@@ -174,6 +183,7 @@ def _locked_run(
     timings: dict[str, float] = {"open": time.perf_counter() - t0}
     batches = 0
     before: dict = {}
+    worked: set[str] = set()  # series with work in some chunk
     try:
         for k, (_, chunk_end) in enumerate(chunks, start=1):
             t_plan = time.perf_counter()
@@ -202,6 +212,7 @@ def _locked_run(
                 rewind={sid for sid, r in reach.items() if r.rewind},
             )
             timings["plan"] = timings.get("plan", 0.0) + time.perf_counter() - t_plan
+            worked.update(w.series_id for w in works)
             logger.info(
                 "%s chunk %d/%d: %d of %d series have work",
                 kind,
@@ -239,6 +250,7 @@ def _locked_run(
     finally:
         for future in starting:
             future.wait()
+    idle = sum(sid not in worked for sid in dict.fromkeys(ids))
     summary = replace(
         summarize(
             run_id,
@@ -248,9 +260,14 @@ def _locked_run(
             batches,
             time.perf_counter() - t0,
             timings,
+            up_to_date=idle,
         ),
         problems=tuple(p.describe() for p in dict.fromkeys(problems)),
     )
+    if summary.nothing_to_do:
+        said = nothing_to_do(kind, summary.series_total, span[1])
+        notes.append(said)
+        logger.warning("%s", said)
     notes.extend(summary.notes)
     t_incidents = time.perf_counter()
     incident_changes, notified = _update_incidents(db, run_id, options, logger=logger, notes=notes)
@@ -271,7 +288,7 @@ def _locked_run(
         db,
         run_id,
         "completed",
-        series_total=len(ids),
+        series_total=summary.series_total,
         series_ok=summary.series_ok,
         series_failed=summary.series_failed,
         events_new=summary.events_new,
@@ -298,6 +315,14 @@ def _locked_run(
         summary.events_retracted,
     )
     return summary
+
+
+def _record_refusal(db: str, run_id: str, kind: str, exc: Exception, *, logger) -> None:
+    """Record a run refused on its configuration (never hides the refusal itself)."""
+    try:
+        persist.record_refused_run(db, run_id, kind, f"not run: {exc}")  # type: ignore[arg-type]
+    except Exception as record_exc:  # the database itself is what is wrong
+        logger.warning("could not record the refused run: %s", record_exc)
 
 
 def _store_labels(spec, db: str, run_id: str, labels: Sequence[str], ids, *, logger) -> int:

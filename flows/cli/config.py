@@ -11,7 +11,9 @@ from __future__ import annotations
 
 import inspect
 import os
-from collections.abc import Mapping
+import uuid
+from collections.abc import Iterator, Mapping
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -22,7 +24,7 @@ from pydantic import ValidationError
 from changekind.flows.cli.app import OPTION_NAMES, validation_text
 from changekind.flows.settings import RunOptions, Settings, split_password
 from changekind.tasks import persist
-from changekind.tasks.errors import ConfigError, mask_url
+from changekind.tasks.errors import ChangekindError, ConfigError, mask_url
 from changekind.tasks.fetch import open_source
 from changekind.tasks.labels import check_label_columns
 from changekind.tasks.timeaxis import parse_instant
@@ -261,6 +263,106 @@ def fleet_config(
         sql=sql,
         labels=labels,
     )
+
+
+@dataclass(frozen=True, slots=True)
+class ReadingSource:
+    """The source a reading command (``report``, ``drill``) reads, and where it came from."""
+
+    location: str
+    columns: dict[str, str] | None
+    recorded: persist.RunSource | None = None
+    """The run whose record named it; None when given (--source, CHANGEKIND_SOURCE)."""
+
+    def said(self) -> str | None:
+        """A line for stderr when the source came from a run record."""
+        if self.recorded is None:
+            return None
+        when = self.recorded.started_at.isoformat(timespec="seconds")
+        return (
+            f"changekind: reading {self.location} (the source of the {self.recorded.kind} "
+            f"run {self.recorded.run_id} of {when}; --source reads another)"
+        )
+
+
+def reading_source(
+    given: str | None, db_url: str | None, columns: Mapping[str, str] | None
+) -> ReadingSource:
+    """The source to read: ``--source``, else ``CHANGEKIND_SOURCE``, else the latest run's.
+
+    The latest run's source is the one recorded in ``scan_runs`` of the
+    database (:func:`~changekind.tasks.persist.latest_source`), with the
+    column names that run was given; column names given now win.
+
+    Raises
+    ------
+    ConfigError
+        No source given and none recorded, or the recorded one had a password
+        (not stored): the message says what to give.
+    """
+    named = dict(columns or {})
+    if given:
+        return ReadingSource(given, named or None)
+    settings = env_settings()
+    if settings.source:
+        return ReadingSource(settings.source, named or None)
+    recorded = None
+    if db_url is not None:
+        try:
+            require_tables(db_url)
+            recorded = persist.latest_source(db_url)
+        except ChangekindError:
+            recorded = None
+        except sa.exc.SQLAlchemyError:  # a database from before runs recorded their source
+            recorded = None
+    if recorded is None:
+        raise ConfigError(
+            "no source given, and no run recorded in the database names one; "
+            "pass --source PATH (or set CHANGEKIND_SOURCE)"
+        )
+    if recorded.masked:
+        raise ConfigError(
+            f"the latest run ({recorded.run_id}) read {recorded.source}, whose password is "
+            "not stored; give --source with the password (or set CHANGEKIND_SOURCE)"
+        )
+    return ReadingSource(recorded.source, {**(recorded.columns or {}), **named} or None, recorded)
+
+
+def record_refusal(kind: str, db: str | None, message: str) -> str | None:
+    """Record a fleet command refused on its configuration as a run of its own.
+
+    The row (status ``failed``, the message prefixed ``not run:``) goes to the
+    database the command was given (``--db``, else ``CHANGEKIND_DB_URL``) when
+    that database answers and already holds changekind's tables: a refused
+    command never creates a database or its tables.  Returns the run id
+    recorded, or None when there was nowhere to record it (bad ``--db`` or
+    environment, a database that does not exist yet); the refusal itself is
+    what the person sees either way.
+    """
+    try:
+        url = database_url(db)
+        require_tables(url)
+    except ChangekindError:
+        return None
+    run_id = str(uuid.uuid4())
+    try:
+        persist.record_refused_run(url, run_id, kind, f"not run: {message}")  # type: ignore[arg-type]
+    except (ChangekindError, sa.exc.SQLAlchemyError):  # nowhere to record it
+        return None
+    return run_id
+
+
+@contextmanager
+def refusals_recorded(kind: str, db: str | None) -> Iterator[None]:
+    """A configuration error raised in the block is recorded (:func:`record_refusal`)."""
+    try:
+        yield
+    except ChangekindError as exc:
+        record_refusal(kind, db, str(exc))
+        raise
+    except ValidationError as exc:
+        record_refusal(kind, db, validation_text(exc, OPTION_NAMES))
+        raise
 
 
 def check_time(value: str | None, what: str, time_kind: str) -> str | None:

@@ -1,4 +1,10 @@
-"""``changekind drill``: the raw points behind a windowed event.
+"""``changekind drill``: the raw points behind an event, windowed or raw.
+
+Without ``--window`` the event is looked up in the database (by its series
+and time: the event's key) and its window comes from what is stored: a
+windowed event's own ``window_start``/``window_end``, else the series' stored
+model (its window width, or one grid step for a raw model).  Without
+``--source`` the source is the one the latest run recorded.
 
 matplotlib is imported only for ``--png``, on purpose: it costs a second at
 start-up that the table and CSV outputs do not need.
@@ -7,8 +13,8 @@ start-up that the table and CSV outputs do not need.
 from __future__ import annotations
 
 import math
-import os
 import sys
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Annotated
 
@@ -18,18 +24,21 @@ import typer
 from rich.table import Table
 
 from changekind.flows.cli.app import app, err_console, fail_usage, out_console
-from changekind.flows.cli.config import column_map
+from changekind.flows.cli.config import column_map, database_url, reading_source, require_tables
 from changekind.flows.cli.options import (
+    DbOpt,
     QueryOpt,
+    ReadSourceOpt,
     SeriesColOpt,
-    SourceOpt,
     TableOpt,
     TimeColOpt,
     TimestampUnitOpt,
     ValueColOpt,
 )
-from changekind.tasks.errors import ChangekindError
+from changekind.tasks import persist
+from changekind.tasks.errors import ChangekindError, ConfigError
 from changekind.tasks.fetch import open_source
+from changekind.tasks.timeaxis import parse_instant
 from changekind.tasks.types import format_duration, number
 from changekind.tasks.window.drill import drill
 from changekind.tasks.window.summary import MAD_SCALE, parse_window
@@ -38,6 +47,73 @@ from changekind.tasks.window.summary import MAD_SCALE, parse_window
 
 DEFAULT_AROUND = 2
 """Windows shown either side of the drilled one."""
+RAW_AROUND = 12
+"""Grid steps shown either side of a raw event (its "windows" are single steps)."""
+
+
+@dataclass(frozen=True, slots=True)
+class StoredWindow:
+    """The window of a drill, found in the database."""
+
+    width: pd.Timedelta
+    time: str
+    """The time to drill at: the stored event's time when one was found."""
+    raw: bool
+    """True for a raw (not windowed) analysis: the width is one grid step."""
+    said: str
+    """Where the width came from, in words (for the title)."""
+
+
+def stored_window(db_url: str, series_id: str, event_time: str) -> StoredWindow:
+    """The window to drill from the stored event at ``event_time``, or the series' model.
+
+    The event is the series' stored event whose time is ``event_time`` (the
+    same instant written another way matches too) or, for a windowed event,
+    whose window holds it.  A windowed event gives its own window; otherwise
+    the series' stored model gives its window width, or its grid step when it
+    was fitted on raw points.
+
+    Raises
+    ------
+    ConfigError
+        No database, or neither an event nor a model of the series there (the
+        message says to give ``--window``).
+    """
+    require_tables(db_url)
+    when = parse_instant(event_time, what="event time")
+    if isinstance(when, float):
+        raise ConfigError(
+            f"event time {event_time!r} is a number; drill needs a date-time (ISO 8601)"
+        )
+    events = persist.read_events(db_url, series_ids=[series_id], include_retracted=True)
+    event = None
+    if not events.empty:
+        starts = pd.to_datetime(events["window_start"], utc=True, format="ISO8601")
+        ends = pd.to_datetime(events["window_end"], utc=True, format="ISO8601")
+        hit = (events["event_time"] == event_time) | (events["event_ts"] == when)
+        hit |= (starts <= when) & (when < ends)
+        if hit.any():
+            event = events[hit.to_numpy()].iloc[0]
+    if event is not None and isinstance(event["window_start"], str) and event["window_end"]:
+        width = pd.Timestamp(event["window_end"]) - pd.Timestamp(event["window_start"])
+        return StoredWindow(
+            width, str(event["event_time"]), False, f"the stored {event['event_type']}'s window"
+        )
+    model = persist.load_models(db_url, [series_id]).get(series_id)
+    what = f"the stored {event['event_type']}" if event is not None else None
+    at = str(event["event_time"]) if event is not None else event_time
+    if model is not None and model.window is not None:
+        return StoredWindow(
+            parse_window(model.window), at, False, "the window of the series' stored model"
+        )
+    if model is not None and model.step_seconds:
+        width = pd.Timedelta(seconds=model.step_seconds)
+        said = f"{what}, raw" if what else "raw model"
+        return StoredWindow(width, at, True, f"{said}: one grid step per window")
+    raise ConfigError(
+        f"series {series_id!r} has no stored event at {event_time!r} and no stored model "
+        "with a window or a time grid in the database; give --window (e.g. 1min)"
+    )
 
 
 def _point(x: float) -> str:
@@ -157,19 +233,30 @@ def drill_command(
         ),
     ],
     window: Annotated[
-        str,
+        str | None,
         typer.Option(
             "--window",
             metavar="SPAN",
-            help="Window width used for detection: 250ms, 10s, 1min, 15min, 1h...",
+            help="Window width used for detection: 250ms, 10s, 1min, 15min, 1h...  "
+            "Default: the stored event's window in --db, else its series' stored model's "
+            "(one grid step for a raw model).",
             show_default=False,
         ),
-    ],
-    source: SourceOpt = None,
+    ] = None,
+    source: ReadSourceOpt = None,
+    db: DbOpt = None,
     around: Annotated[
-        int,
-        typer.Option("--around", metavar="K", min=0, max=1000, help="Windows shown either side."),
-    ] = DEFAULT_AROUND,
+        int | None,
+        typer.Option(
+            "--around",
+            metavar="K",
+            min=0,
+            max=1000,
+            help=f"Windows shown either side.  Default: {DEFAULT_AROUND}, or {RAW_AROUND} "
+            "grid steps for a raw event.",
+            show_default=False,
+        ),
+    ] = None,
     as_csv: Annotated[
         bool, typer.Option("--csv", help="Print the raw rows as CSV on stdout.")
     ] = False,
@@ -193,17 +280,30 @@ def drill_command(
         typer.Option("--timezone", metavar="ZONE", help="IANA time zone of naive timestamps."),
     ] = "UTC",
 ) -> None:
-    """Show the raw points of one window (and K windows either side) from the source."""
+    """Show the raw points of one window (and K windows either side) from the source.
 
-    source = source if source is not None else os.environ.get("CHANGEKIND_SOURCE")
-    if not source:
-        raise fail_usage("no source given; pass --source PATH (or set CHANGEKIND_SOURCE)")
+    The event is named by its series and time, as 'changekind events' prints
+    them; without --window its window is found in the database.
+    """
+
     columns = column_map(series_column, timestamp_column, value_column)
+    found = None
     try:
-        width = parse_window(window)
+        db_url = None if db is None and source is not None and window else database_url(db)
+        if window is not None:
+            width = parse_window(window)
+        else:
+            assert db_url is not None
+            found = stored_window(db_url, series_id, event_time)
+            width, event_time = found.width, found.time
+        if around is None:
+            around = RAW_AROUND if found is not None and found.raw else DEFAULT_AROUND
+        where = reading_source(source, db_url, columns)
+        if where.said() is not None:
+            err_console().print(where.said(), markup=False)
         spec = open_source(
-            source,
-            columns=columns or None,
+            where.location,
+            columns=where.columns,
             table=table,
             query=query,
             timestamp_unit=timestamp_unit,
@@ -217,7 +317,8 @@ def drill_command(
     name = format_duration(width.total_seconds())
     title = (
         f"{series_id}: window {focus.isoformat()} to {(focus + width).isoformat()} "
-        f"({name}), {around} window(s) either side, {len(rows)} raw points"
+        f"({name}{'' if found is None else ', from ' + found.said}), {around} window(s) "
+        f"either side, {len(rows)} raw points"
     )
     if png is not None:
         try:

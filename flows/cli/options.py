@@ -20,6 +20,18 @@ SourceOpt = Annotated[
         show_default=False,
     ),
 ]
+ReadSourceOpt = Annotated[
+    str | None,
+    typer.Option(
+        "--source",
+        metavar="PATH",
+        help="Where the series live, in long form (series id, timestamp, value): a Parquet "
+        "file or dataset folder, a CSV file or folder, or a database URL with --table or "
+        "--query.  Default: $CHANGEKIND_SOURCE, else the source (and column names) that "
+        "the latest scan, backfill or refit recorded in --db.",
+        show_default=False,
+    ),
+]
 DbOpt = Annotated[
     str | None,
     typer.Option(

@@ -310,6 +310,7 @@ def summary_record(summary: RunSummary) -> dict[str, Any]:
             "series_ok": summary.series_ok,
             "series_failed": summary.series_failed,
             "deferred": summary.deferred,
+            "up_to_date": summary.up_to_date,
             "cold": summary.cold,
             "warm": summary.warm,
             "events_new": summary.events_new,
@@ -353,10 +354,11 @@ def print_summary(console: Console, summary: RunSummary, *, wall: float | None =
     took = seconds_text(summary.seconds)
     if wall is not None:
         took += f" ({seconds_text(wall)} with Prefect start-up)"
+    idle = f", {summary.up_to_date} up to date" if summary.up_to_date else ""
     console.print(
         f"{summary.kind} {summary.run_id}: {summary.series_total} series "
         f"({summary.cold} cold, {summary.warm} warm, {summary.series_failed} failed, "
-        f"{summary.deferred} deferred) in {summary.batches} "
+        f"{summary.deferred} deferred{idle}) in {summary.batches} "
         f"{'batch' if summary.batches == 1 else 'batches'}, {took}",
         markup=False,
     )

@@ -19,14 +19,14 @@ import typer
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
 
 from changekind.flows.cli.app import EXIT_SERIES_FAILED, app, err_console, fail_usage, out_console
-from changekind.flows.cli.config import column_map, env_settings
+from changekind.flows.cli.config import column_map, env_settings, reading_source
 from changekind.flows.cli.options import (
     DbOpt,
     QueryOpt,
+    ReadSourceOpt,
     SeriesColOpt,
     SeriesOpt,
     SinceOpt,
-    SourceOpt,
     TableOpt,
     TimeColOpt,
     TimestampUnitOpt,
@@ -46,7 +46,7 @@ def report(
         typer.Option("--out", metavar="DIR", help="Folder for index.html and the pictures."),
     ] = Path("changekind-report"),
     db: DbOpt = None,
-    source: SourceOpt = None,
+    source: ReadSourceOpt = None,
     run: Annotated[
         str | None,
         typer.Option(
@@ -92,7 +92,11 @@ def report(
         ),
     ] = None,
 ) -> None:
-    """Write an HTML report of stored events, one picture per event."""
+    """Write an HTML report of stored events, one picture per event.
+
+    The observations come from --source, else $CHANGEKIND_SOURCE, else the
+    source the latest scan, backfill or refit of --db recorded.
+    """
 
     units = parse_units(unit or [])
     try:
@@ -100,18 +104,17 @@ def report(
     except ChangekindError as exc:
         raise fail_usage(str(exc)) from None
     db_url = db or settings.db_url
-    location = source or settings.source
-    if not location:
-        raise fail_usage(
-            "the report needs the source the events came from: give --source PATH "
-            "(or set CHANGEKIND_SOURCE)"
-        )
     try:
         if since is not None:
             parse_instant(since, what="--since")  # ISO 8601 only: '05/03/2030' is refused
+        where = reading_source(
+            source, db_url, column_map(series_column, timestamp_column, value_column)
+        )
+        if where.said() is not None:
+            err_console().print(where.said(), markup=False)
         spec = open_source(
-            location,
-            columns=column_map(series_column, timestamp_column, value_column) or None,
+            where.location,
+            columns=where.columns,
             table=table,
             query=query,
             timestamp_unit=timestamp_unit,

@@ -50,6 +50,7 @@ from changekind.flows.cli.config import (
     flow_arguments,
     path_text,
     prefect_defaults,
+    refusals_recorded,
 )
 from changekind.flows.cli.options import (
     CriticalOpt,
@@ -223,14 +224,15 @@ def scan(
     """
     prefect_defaults()
     with usage_errors():
-        config = fleet_config(**fleet_arguments(locals()))
-        until = check_time(until, "--until", config.time_kind)
-        # Deliberately here: the flows import Prefect (seconds of start-up).
-        from changekind.flows.scan import scan_flow
+        with refusals_recorded("scan", db):
+            config = fleet_config(**fleet_arguments(locals()))
+            until = check_time(until, "--until", config.time_kind)
+            # Deliberately here: the flows import Prefect (seconds of start-up).
+            from changekind.flows.scan import scan_flow
 
-        arguments = flow_arguments(
-            scan_flow, config, until=until, series=series or None, report_dir=path_text(report)
-        )
+            arguments = flow_arguments(
+                scan_flow, config, until=until, series=series or None, report_dir=path_text(report)
+            )
         t0 = time.perf_counter()
         summary = run_fleet_flow(scan_flow, arguments, config, label="scan")
     finish(summary, as_json=as_json, wall=time.perf_counter() - t0)
@@ -294,23 +296,24 @@ def backfill(
     """
     prefect_defaults()
     with usage_errors():
-        config = fleet_config(**fleet_arguments(locals()))
-        check_time(start, "--start", config.time_kind)
-        check_time(end, "--end", config.time_kind)
-        # Deliberately here: the flows import Prefect (seconds of start-up).
-        from changekind.flows.scan import backfill_flow, split_span
+        with refusals_recorded("backfill", db):
+            config = fleet_config(**fleet_arguments(locals()))
+            check_time(start, "--start", config.time_kind)
+            check_time(end, "--end", config.time_kind)
+            # Deliberately here: the flows import Prefect (seconds of start-up).
+            from changekind.flows.scan import backfill_flow, split_span
 
-        split_span(start, end, chunk, warmup)  # a bad span or duration: ConfigError here
-        arguments = flow_arguments(
-            backfill_flow,
-            config,
-            start=start,
-            end=end,
-            chunk=chunk,
-            warmup=warmup,
-            series=series or None,
-            report_dir=path_text(report),
-        )
+            split_span(start, end, chunk, warmup)  # a bad span or duration: ConfigError here
+            arguments = flow_arguments(
+                backfill_flow,
+                config,
+                start=start,
+                end=end,
+                chunk=chunk,
+                warmup=warmup,
+                series=series or None,
+                report_dir=path_text(report),
+            )
         t0 = time.perf_counter()
         summary = run_fleet_flow(backfill_flow, arguments, config, label="backfill")
     finish(summary, as_json=as_json, wall=time.perf_counter() - t0)
@@ -341,11 +344,12 @@ def refit(
     """Estimate the models of all (or the --series given) again on all their history."""
     prefect_defaults()
     with usage_errors():
-        config = fleet_config(**fleet_arguments(locals()))
-        # Deliberately here: the flows import Prefect (seconds of start-up).
-        from changekind.flows.scan import refit_flow
+        with refusals_recorded("refit", db):
+            config = fleet_config(**fleet_arguments(locals()))
+            # Deliberately here: the flows import Prefect (seconds of start-up).
+            from changekind.flows.scan import refit_flow
 
-        arguments = flow_arguments(refit_flow, config, series=series or None)
+            arguments = flow_arguments(refit_flow, config, series=series or None)
         t0 = time.perf_counter()
         summary = run_fleet_flow(refit_flow, arguments, config, label="refit")
     finish(summary, as_json=as_json, wall=time.perf_counter() - t0)

@@ -53,9 +53,12 @@ from changekind.tasks.persist.models import (
     write_batch,
 )
 from changekind.tasks.persist.runs import (
+    RunSource,
     close_stale_runs,
     finish_run,
+    latest_source,
     record_failures,
+    record_refused_run,
     record_source_problems,
     start_run,
 )
@@ -103,6 +106,7 @@ __all__ = [
     "Coverage",
     "Database",
     "RunKind",
+    "RunSource",
     "TriageState",
     "WriteSummary",
     "close_stale_runs",
@@ -112,6 +116,7 @@ __all__ = [
     "event_revisions",
     "finish_run",
     "init_db",
+    "latest_source",
     "load_coverage",
     "load_known_events",
     "load_models",
@@ -122,6 +127,7 @@ __all__ = [
     "read_events",
     "read_triage_history",
     "record_failures",
+    "record_refused_run",
     "record_source_problems",
     "run_locks",
     "save_models",

@@ -2,15 +2,15 @@
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+import json
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
 from datetime import datetime
 from typing import Any, Literal
 
 import sqlalchemy as sa
 
-from changekind.tasks.errors import (
-    ConfigError,
-)
+from changekind.tasks.errors import ConfigError, mask_source
 from changekind.tasks.persist.convert import _as_datetime, _count, _now, _one_of, _text, _upsert
 from changekind.tasks.persist.engines import _engine
 from changekind.tasks.persist.schema import (
@@ -33,6 +33,8 @@ def start_run(
     span_start: datetime | str | None,
     span_end: datetime | str | None,
     *,
+    source: str | None = None,
+    source_columns: Mapping[str, str] | None = None,
     at: datetime | None = None,
 ) -> None:
     """Record that a run started (again, if it is retried under the same id).
@@ -46,6 +48,12 @@ def start_run(
     kind : {'scan', 'backfill', 'refit'}
     span_start, span_end : datetime or ISO text or None
         The time span the run covers.
+    source : str, optional
+        Where the run reads its series (a path or a URL); recorded with any
+        password hidden (:func:`~changekind.tasks.errors.mask_source`).
+    source_columns : mapping, optional
+        The column names given for the source (``series_id``, ``timestamp``,
+        ``value``); None for the default names.
     at : datetime, optional
         ``started_at``; now (UTC) by default.
     """
@@ -64,6 +72,8 @@ def start_run(
         "started_at": _now(at),
         "finished_at": None,
         "seconds": None,
+        "source": None if source is None else mask_source(_text(source, "source")),
+        "source_columns": _columns_text(source_columns),
         "message": None,
     }
     if row["span_start"] and row["span_end"] and row["span_end"] < row["span_start"]:
@@ -132,6 +142,95 @@ def finish_run(
             .values(status=status, finished_at=when, seconds=seconds, message=message, **counts)
         )
     return seconds
+
+
+def _columns_text(columns: Mapping[str, str] | None) -> str | None:
+    if not columns:
+        return None
+    if not all(isinstance(k, str) and isinstance(v, str) for k, v in columns.items()):
+        raise ConfigError(f"source columns must map names to names, got {columns!r}")
+    return json.dumps(dict(columns), sort_keys=True)
+
+
+@dataclass(frozen=True, slots=True)
+class RunSource:
+    """The source a recorded run read: see :func:`latest_source`."""
+
+    run_id: str
+    kind: str
+    started_at: datetime
+    source: str
+    """As recorded: a path, or a URL with its password hidden (``***``)."""
+    columns: dict[str, str] | None
+    """The column names the run was given; None for the default names."""
+
+    @property
+    def masked(self) -> bool:
+        """The recorded source had a password, which was not stored."""
+        return ":***@" in self.source
+
+
+def latest_source(db: Database) -> RunSource | None:
+    """The source of the latest run that recorded one (None: no run did).
+
+    Runs refused on their configuration record no source, so the answer is a
+    source some run did read.
+    """
+    with _engine(db) as engine, engine.connect() as conn:
+        row = conn.execute(
+            sa.select(
+                scan_runs.c.run_id,
+                scan_runs.c.kind,
+                scan_runs.c.started_at,
+                scan_runs.c.source,
+                scan_runs.c.source_columns,
+            )
+            .where(scan_runs.c.source.is_not(None))
+            .order_by(scan_runs.c.started_at.desc(), scan_runs.c.run_id)
+            .limit(1)
+        ).one_or_none()
+    if row is None:
+        return None
+    columns = json.loads(row.source_columns) if row.source_columns else None
+    return RunSource(row.run_id, row.kind, row.started_at, row.source, columns)
+
+
+def record_refused_run(
+    db: Database,
+    run_id: str,
+    kind: RunKind,
+    message: str,
+    *,
+    at: datetime | None = None,
+) -> None:
+    """Record a run that never started: its configuration was refused.
+
+    One row, status ``failed``, started and finished ``at`` (now by default),
+    no series, ``message`` saying what was wrong.  Only the columns the
+    database's ``scan_runs`` has are written, so an older schema (not yet
+    migrated by a run) takes the record too.
+    """
+    when = _now(at)
+    row = {
+        "run_id": _text(run_id, "run_id"),
+        "kind": _one_of(kind, RUN_KINDS, "run kind"),
+        "span_start": None,
+        "span_end": None,
+        "status": "failed",
+        "series_total": 0,
+        "series_ok": 0,
+        "series_failed": 0,
+        "events_new": 0,
+        "events_changed": 0,
+        "events_retracted": 0,
+        "started_at": when,
+        "finished_at": when,
+        "seconds": 0.0,
+        "message": _text(message, "message"),
+    }
+    with _engine(db) as engine, engine.begin() as conn:
+        present = {c["name"] for c in sa.inspect(conn).get_columns(scan_runs.name)}
+        conn.execute(sa.insert(scan_runs).values({k: v for k, v in row.items() if k in present}))
 
 
 def record_source_problems(

@@ -249,12 +249,16 @@ scan_runs = sa.Table(
     sa.Column("started_at", UtcDateTime, nullable=False),
     sa.Column("finished_at", UtcDateTime, nullable=True),
     sa.Column("seconds", sa.Float, nullable=True),
+    # Where the run read its series: a path, or a URL with its password hidden,
+    # and the column names given (JSON; NULL: the default names).
+    sa.Column("source", sa.Text, nullable=True),
+    sa.Column("source_columns", sa.Text, nullable=True),
     sa.Column("message", sa.Text, nullable=True),
     sa.CheckConstraint(_in("kind", RUN_KINDS), name="kind"),
     sa.CheckConstraint(_in("status", RUN_STATUSES), name="status"),
     sa.Index("ix_scan_runs_started_at", "started_at"),
 )
-"""One row per flow run."""
+"""One row per flow run (and per fleet command refused on its configuration)."""
 
 series_failures = sa.Table(
     "series_failures",

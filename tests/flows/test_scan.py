@@ -322,3 +322,20 @@ def test_merged_duplicate_timestamps_are_counted_in_the_run_summary(prefect_serv
     assert note.startswith("3 duplicate timestamp(s) in 1 series") and "shelf-0/disk-1" in note
     runs = persist.table_snapshot(f"sqlite:///{tmp_path / 'dups.db'}")["scan_runs"]
     assert "3 duplicate timestamp(s)" in runs[0][-1]  # the run record says so too
+
+
+def test_a_flow_refused_on_its_configuration_records_the_run(prefect_server, tmp_path):
+    # A deployment's run does not pass the CLI's checks: a source that is gone
+    # is found inside the flow, and its run still gets a record saying why.
+    from changekind.tasks.errors import SourceError
+
+    db = f"sqlite:///{tmp_path / 'refused.db'}"
+    gone = tmp_path / "gone"
+    with pytest.raises(SourceError) as raised:
+        scan_flow(str(gone), db, OPTIONS)
+    runs = persist.table_snapshot(db)["scan_runs"]
+    assert len(runs) == 1
+    run_id, kind, status, message = runs[0][0], runs[0][1], runs[0][4], runs[0][-1]
+    assert (kind, status) == ("scan", "failed")
+    assert message == f"not run: {raised.value}" and str(gone) in message
+    assert len(run_id) == 36  # the flow run's id (a UUID)

@@ -59,11 +59,24 @@ RECORD_FIELDS = [  # README, "Usage: changekind detect": one record of --json ou
     "window_start",
     "window_end",
 ]
+ERROR = "changekind: error: "
 FIRST_SCAN_UNTIL = "2026-06-19"  # the small fleet runs 2026-06-01 .. 2026-06-21
 
 
 def _invoke(*args: str):
     return runner.invoke(app, list(args))
+
+
+def _artifacts_of(flow_run_id: str) -> dict[str, object]:
+    """The artifacts of one flow run, by key, read back from the Prefect API."""
+    from prefect.client.orchestration import get_client
+    from prefect.client.schemas.filters import ArtifactFilter, ArtifactFilterFlowRunId
+
+    with get_client(sync_client=True) as client:
+        found = client.read_artifacts(
+            artifact_filter=ArtifactFilter(flow_run_id=ArtifactFilterFlowRunId(any_=[flow_run_id]))
+        )
+    return {a.key: a for a in found}
 
 
 def _found(events: pd.DataFrame, truth: pd.DataFrame, tolerance: str = "2h") -> int:
@@ -303,6 +316,23 @@ def test_backfill_then_refit(prefect_server, small_fleet, tmp_path):
     inside = truth[(truth.event_time >= "2026-06-05") & (truth.event_time < "2026-06-15")]
     assert _found(stored, inside) >= len(inside) - 1
 
+    # The same span again: nothing to do, and the summary, the run record and the
+    # run's artifact say so with the same counts.
+    again = _invoke("backfill", "--source", str(source), "--db", db, *span, "--json")
+    assert again.exit_code == 0, again.stderr
+    repeat = json.loads(again.stdout)
+    said = "nothing to do: span already done (all 6 series were analysed through 2026-06-15"
+    assert [n for n in repeat["notes"] if n.startswith(said)], repeat["notes"]
+    assert (repeat["series_total"], repeat["series_ok"], repeat["up_to_date"]) == (6, 6, 6)
+    assert (repeat["cold"], repeat["warm"], repeat["events_new"]) == (0, 0, 0)
+    record = next(r for r in persist.table_snapshot(db)["scan_runs"] if r[0] == repeat["run_id"])
+    assert (record[4], record[5], record[6]) == ("completed", 6, 6)  # status, total, ok
+    assert said in record[-1]
+    markdown = _artifacts_of(repeat["run_id"])["changekind-backfill-summary"].data
+    assert "| total | 6 |" in markdown and "| up to date (nothing to analyse) | 6 |" in markdown
+    assert said in markdown
+    assert persist.read_events(db).equals(stored)  # and nothing changed
+
     models = persist.load_models(db)
     one = sorted(models)[0]
     refit = _invoke("refit", "--source", str(source), "--db", db, "--series", one, "--json")
@@ -352,6 +382,7 @@ def _bad_cases(good: Path, tmp: Path) -> list[tuple[list[str], str]]:
         (["refit", *src, "--table", "metrics"], "SQL sources"),
         (["events", "--db", db, "--json", "--csv"], "not both"),
         (["events", "--db", f"sqlite:///{tmp / 'never.db'}"], "no database"),
+        (["scan", "--source", str(tmp / "gone"), "--db", f"sqlite:///{tmp / 'never.db'}"], "gone"),
         (["events", "--db", db, "--since", "last week"], "'last week'"),
     ]
 
@@ -359,9 +390,13 @@ def _bad_cases(good: Path, tmp: Path) -> list[tuple[list[str], str]]:
 def test_bad_configuration_gets_one_line_and_exit_2(good_source, tmp_path, monkeypatch):
     monkeypatch.delenv("CHANGEKIND_SOURCE", raising=False)
     monkeypatch.delenv("CHANGEKIND_DB_URL", raising=False)
-    persist.migrate(f"sqlite:///{tmp_path / 'x.db'}")  # so the events cases reach their check
+    db = f"sqlite:///{tmp_path / 'x.db'}"
+    persist.migrate(db)  # so the events cases reach their check
+    refused = []  # (kind, message) of the fleet commands given the database x.db
     for args, named in _bad_cases(good_source, tmp_path):
         result = _invoke(*args)
+        if args[0] in ("scan", "backfill", "refit") and db in args:
+            refused.append((args[0], "not run: " + result.stderr.removeprefix(ERROR).strip()))
         shown = (
             f"{args}: exit {result.exit_code}, stdout {result.stdout!r}, stderr {result.stderr!r}"
         )
@@ -372,7 +407,13 @@ def test_bad_configuration_gets_one_line_and_exit_2(good_source, tmp_path, monke
         )
         assert named in result.stderr, shown
         assert "Traceback" not in result.stderr, shown
-    assert not (tmp_path / "never.db").exists()  # a read never creates a database
+    assert not (tmp_path / "never.db").exists()  # a read, or a refused run, never creates one
+    # Every refused fleet command has its run record, with what the person was told.
+    # Reference: the stderr line of each command above.
+    runs = persist.table_snapshot(db)["scan_runs"]
+    assert len(refused) == 13
+    assert sorted((r[1], r[-1]) for r in runs) == sorted(refused)
+    assert {r[4] for r in runs} == {"failed"}
 
 
 def test_scan_reads_a_database_table(prefect_server, good_source, tmp_path):
@@ -548,3 +589,10 @@ def test_day_files_hold_one_utc_day_each_and_the_whole_fleet_together(tmp_path):
     back = pd.read_parquet(tmp_path).sort_values(key).reset_index(drop=True)
     expected = fleet.data.sort_values(key).reset_index(drop=True)
     pd.testing.assert_frame_equal(back, expected, check_dtype=False)
+
+
+def test_the_scan_records_its_source(scanned):
+    db = f"sqlite:///{scanned['db_file']}"
+    recorded = persist.latest_source(db)
+    assert recorded is not None and recorded.kind == "scan" and recorded.columns is None
+    assert Path(recorded.source).resolve() == Path(scanned["source"]).resolve()

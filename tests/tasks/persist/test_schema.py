@@ -217,3 +217,35 @@ def test_views_sql_builds_the_same_views_as_the_migrations(engine: sa.Engine) ->
         rebuilt = view_definitions(conn)
     assert set(migrated) == VIEW_NAMES
     assert rebuilt == migrated
+
+
+def test_migration_0010_adds_the_run_source_and_keeps_runs(url: str) -> None:
+    """0009 -> 0010: earlier runs kept with no source; downgrade drops only the columns."""
+    engine = persist.connect(url)
+    try:
+        migrate(engine, revision="0009")
+        with engine.begin() as conn:
+            conn.execute(
+                sa.text(
+                    "INSERT INTO scan_runs (run_id, kind, status, series_total, series_ok, "
+                    "series_failed, events_new, events_changed, events_retracted, started_at, "
+                    "message) VALUES ('old', 'scan', 'completed', 3, 3, 0, 1, 0, 0, :t, 'm')"
+                ),
+                {"t": T0},
+            )
+        migrate(engine)
+        assert persist.latest_source(engine) is None  # the old run recorded none
+        persist.start_run(engine, "new", "scan", None, None, source="/data/fleet", at=T0)
+        latest = persist.latest_source(engine)
+        assert latest is not None and (latest.run_id, latest.source) == ("new", "/data/fleet")
+        _alembic(engine, "downgrade", "0009")
+        with engine.connect() as conn:
+            columns = {c["name"] for c in sa.inspect(conn).get_columns("scan_runs")}
+            rows = conn.execute(
+                sa.text("SELECT run_id, series_total, message FROM scan_runs ORDER BY run_id")
+            ).all()
+            assert set(sa.inspect(conn).get_view_names()) == VIEW_NAMES
+        assert "source" not in columns and "source_columns" not in columns
+        assert [tuple(r) for r in rows] == [("new", 0, None), ("old", 3, "m")]
+    finally:
+        engine.dispose()
