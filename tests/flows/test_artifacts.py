@@ -205,7 +205,6 @@ def test_report_selects_one_runs_events_and_series(scanned, tmp_path):
 def test_report_says_what_is_wrong_with_its_options(tmp_path, scanned):
     cases = [
         (["--db", f"sqlite:///{tmp_path / 'none.db'}", "--source", "x"], "does not exist"),
-        (["--db", scanned["db"]], "give --source PATH"),
         (["--db", scanned["db"], "--source", str(tmp_path / "nope")], "does not exist"),
         (
             ["--db", scanned["db"], "--source", str(scanned["source"]), "--since", "soon"],
@@ -217,6 +216,10 @@ def test_report_says_what_is_wrong_with_its_options(tmp_path, scanned):
         assert result.exit_code == 2, (args, result.output)
         assert message in result.output and "Traceback" not in result.output
     assert not (tmp_path / "none.db").exists()  # a report never creates a database
+    # Without --source the report reads the source the latest run recorded.
+    result = runner.invoke(app, ["report", "--out", str(tmp_path / "r"), "--db", scanned["db"]])
+    assert result.exit_code == 0, result.output
+    assert "Report of" in result.output
 
 
 def test_report_of_a_series_missing_from_the_source_says_so(scanned, tmp_path):
