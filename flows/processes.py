@@ -17,9 +17,12 @@ guards:
   ``GRACE_SECONDS``.  It covers children started by libraries (Prefect's
   server), which no initializer reaches.
 
-And one server for all: :func:`shared_prefect_server` starts the throw-away
-API server once in the run's process and points the run's settings at it, so
-worker processes use it instead of each starting a server of its own.
+And one server for all: :func:`shared_prefect_server` uses the Prefect server
+that is configured (``PREFECT_API_URL``) or already running on this machine
+(:func:`local_prefect_server`: 127.0.0.1:4200 only, asked with a short
+timeout), else starts the throw-away API server once in the run's process;
+either way the run's settings point at it, so worker processes use it
+instead of each starting a server of its own.
 """
 
 from __future__ import annotations
@@ -30,12 +33,21 @@ import os
 import signal
 import subprocess
 import sys
-from collections.abc import Iterator
+import urllib.error
+import urllib.request
+from collections.abc import Callable, Iterator
 
 WATCH_SECONDS = 0.5
 """How often the watchdog notes the run's descendants."""
 GRACE_SECONDS = 3.0
 """How long the watchdog waits after SIGTERM before SIGKILL."""
+
+LOCAL_PREFECT_API = "http://127.0.0.1:4200/api"
+"""Where ``prefect server start`` listens by default; the only address probed."""
+PROBE_SECONDS = 0.5
+"""How long the probe waits for a local Prefect server's health answer."""
+PROBE_ENV = "CHANGEKIND_LOCAL_PREFECT"
+"""Set to ``false`` (or ``0``/``no``/``off``) to never look for a local Prefect server."""
 
 _PR_SET_PDEATHSIG = 1
 
@@ -143,24 +155,64 @@ def stop_children_with_this_process() -> Iterator[None]:
             watchdog.wait()
 
 
+def local_prefect_server(
+    *, url: str = LOCAL_PREFECT_API, timeout: float = PROBE_SECONDS
+) -> str | None:
+    """The API URL of a Prefect server answering on this machine, or None.
+
+    Asks ``url``'s health endpoint (``/health`` under the API, which answers
+    ``true``) directly, never through a proxy, waiting at most ``timeout``
+    seconds.  Nothing is asked when :data:`PROBE_ENV` says ``false``.
+    """
+    if os.environ.get(PROBE_ENV, "").strip().lower() in ("false", "0", "no", "off"):
+        return None
+    direct = urllib.request.build_opener(urllib.request.ProxyHandler({}))
+    try:
+        with direct.open(url.rstrip("/") + "/health", timeout=timeout) as answer:
+            body = answer.read(64).decode("ascii", "replace").strip()
+    except (OSError, urllib.error.URLError, ValueError):
+        return None
+    return url if body == "true" else None
+
+
+Say = Callable[[str], None]
+
+
 @contextlib.contextmanager
-def shared_prefect_server() -> Iterator[str | None]:
+def shared_prefect_server(say: Say | None = None) -> Iterator[str | None]:
     """One Prefect API for the run's process and its workers; yields its URL.
 
-    With ``PREFECT_API_URL`` set (a real server, or the test harness) nothing
-    changes.  Otherwise Prefect's throw-away server is started here once and
-    the run's settings point at it: worker processes get the settings in
-    their environment and use this server instead of each starting their own.
+    1. With ``PREFECT_API_URL`` set (a real server, or the test harness)
+       nothing changes.
+    2. Else a Prefect server already running on this machine
+       (:func:`local_prefect_server`) is used for the run.
+    3. Else Prefect's throw-away server is started here once.
+
+    In cases 2 and 3 the run's settings point at the server: worker
+    processes get the settings in their environment and use this server
+    instead of each starting their own.  ``say`` is told, in a few words,
+    what the run is waiting for (the CLI shows it on a terminal).
     """
     # Deliberately here: the CLI imports this module and loads Prefect only for a run.
     from prefect.settings import PREFECT_API_URL, get_current_settings, temporary_settings
 
-    if get_current_settings().api.url:
-        yield get_current_settings().api.url
+    tell = say or (lambda _: None)
+    configured = get_current_settings().api.url
+    if configured:
+        tell(f"connecting to the Prefect server at {configured}")
+        yield configured
+        return
+    found = local_prefect_server()
+    if found is not None:
+        tell(f"using the Prefect server running at {found}")
+        with temporary_settings(updates={PREFECT_API_URL: found}):
+            yield found
         return
     from prefect.server.api.server import SubprocessASGIServer
 
+    tell("starting a Prefect server for this run…")
     server = SubprocessASGIServer()
     server.start()
+    tell("starting the flow")
     with temporary_settings(updates={PREFECT_API_URL: server.api_url}):
         yield server.api_url

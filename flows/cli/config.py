@@ -35,6 +35,9 @@ RUNNERS: tuple[str, ...] = ("threads", "processes", "dask")
 PREFECT_DEFAULTS: dict[str, str] = {
     # Offline machines: no telemetry (it also logs a harmless "database is locked").
     "PREFECT_SERVER_ANALYTICS_ENABLED": "false",
+    # The client's telemetry, and its notice on a terminal's first run (Prefect 3.9's
+    # opt-out is this generic variable).
+    "DO_NOT_TRACK": "1",
     # Per-task INFO logging costs 20-35 % of the orchestration time (PREFECT-NOTES).
     "PREFECT_LOGGING_LEVEL": "WARNING",
     # The ephemeral server's default 20 s start-up timeout was seen to expire under load.
@@ -184,7 +187,8 @@ def fleet_config(
     -----
     1. Environment settings.  2. Runner and Dask address.  3. Analysis options.
     4. The source (opened and its columns checked).  5. The database (connected).
-    6. A Dask runner needs a Prefect server.
+    6. A Dask runner needs a Prefect server: configured, or running on this
+       machine (:func:`~changekind.flows.processes.local_prefect_server`).
     """
 
     # Step 1: environment settings.
@@ -245,7 +249,13 @@ def fleet_config(
         # Deliberately here: Prefect is loaded for a Dask run only (seconds of start-up).
         from prefect.settings import get_current_settings
 
-        if not get_current_settings().api.url:
+        # Deliberately here: the probe (urllib.request) is needed by Dask runs only.
+        from changekind.flows.processes import local_prefect_server
+
+        local = None if get_current_settings().api.url else local_prefect_server()
+        if local is not None:  # the cluster's workers, started later, inherit it
+            os.environ["PREFECT_API_URL"] = local
+        elif not get_current_settings().api.url:
             raise ConfigError(
                 "--runner dask needs a Prefect server that its worker processes can share; "
                 "start one with 'prefect server start' and set "

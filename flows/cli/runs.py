@@ -12,7 +12,8 @@ import os
 import sys
 import time
 import traceback
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping
+from contextlib import contextmanager
 from typing import TYPE_CHECKING, Annotated, Any
 
 import typer
@@ -86,12 +87,15 @@ class ProgressBar:
     """The ``progress_hook`` of a run: a spinner until work is planned, then a bar.
 
     Drawn on stderr when it is a terminal; a backfill's chunks each restart the bar.
+    Until the work is planned the spinner says what the command waits for
+    (:meth:`say`): the configuration's checks, Prefect's import, its server.
     """
 
     def __init__(self, label: str, console: Console) -> None:
         self.label = label
         self.chunk = 0
         self.complete = True  # the previous chunk's work is done (none at the start)
+        self.running = False
         self.progress = Progress(
             SpinnerColumn(),
             TextColumn("{task.description}"),
@@ -103,6 +107,21 @@ class ProgressBar:
         )
         self.task = self.progress.add_task(f"{label}: starting", total=None)
 
+    def start(self) -> None:
+        if not self.running:
+            self.progress.start()
+            self.running = True
+
+    def stop(self) -> None:
+        """Take the spinner off the terminal (before an error line is printed)."""
+        if self.running:
+            self.progress.stop()
+            self.running = False
+
+    def say(self, what: str) -> None:
+        """Show what the command is waiting for, beside the spinner."""
+        self.progress.update(self.task, description=f"{self.label}: {what}")
+
     def __call__(self, done: int, total: int, what: str) -> None:
         if self.complete:
             self.chunk += 1
@@ -113,14 +132,38 @@ class ProgressBar:
         )
 
 
+@contextmanager
+def waiting(label: str) -> Iterator[ProgressBar | None]:
+    """A spinner on stderr, when it is a terminal, for the command's whole wait.
+
+    Taken off the terminal when the block ends, before any error is printed
+    (``usage_errors`` outside this block prints it).  Nothing is drawn when
+    stderr is not a terminal, and nothing ever goes to stdout (``--json``).
+    """
+    err = err_console()
+    bar = ProgressBar(label, err) if err.is_terminal else None
+    if bar is not None:
+        bar.say("checking the source and the database")
+        bar.start()
+    try:
+        yield bar
+    finally:
+        if bar is not None:
+            bar.stop()
+
+
 def run_fleet_flow(
     flow: Any,
     arguments: Mapping[str, Any],
     config: FleetConfig,
     *,
     label: str,
+    bar: ProgressBar | None = None,
 ) -> RunSummary:
     """Run one fleet flow with the configured task runner, drawing a progress bar.
+
+    ``bar`` (from :func:`waiting`) is drawn on; without it, one is made when
+    stderr is a terminal.
 
     Raises
     ------
@@ -139,18 +182,21 @@ def run_fleet_flow(
     )
     configured = flow.with_options(task_runner=task_runner)
     err = err_console()
-    bar = ProgressBar(label, err) if err.is_terminal else None
+    if bar is None and err.is_terminal:
+        bar = ProgressBar(label, err)
     token = progress_hook.set(bar)
     try:
         if bar is not None:
-            bar.progress.start()
+            bar.start()
         with (
             stop_children_with_this_process(),
-            shared_prefect_server(),
+            shared_prefect_server(say=None if bar is None else bar.say),
             console_without_tracebacks(),
         ):
             return configured(**arguments)
     except KeyboardInterrupt:
+        if bar is not None:
+            bar.stop()
         err_console().print(
             f"changekind: {label} interrupted; run it again to continue from where each "
             "series stopped",
@@ -158,6 +204,8 @@ def run_fleet_flow(
         )
         raise typer.Exit(EXIT_INTERRUPTED) from None
     except Exception as exc:
+        if bar is not None:
+            bar.stop()
         cause = known_cause(exc)
         if isinstance(cause, RunBusyError):
             err_console().print(f"changekind: {label} not run: {cause}", markup=False)
@@ -179,7 +227,7 @@ def run_fleet_flow(
     finally:
         progress_hook.reset(token)
         if bar is not None:
-            bar.progress.stop()
+            bar.stop()
 
 
 # --------------------------------------------------------------------------- scan, backfill, refit
@@ -223,10 +271,11 @@ def scan(
     in it is reported.  Events, models and the run's record go to --db.
     """
     prefect_defaults()
-    with usage_errors():
+    with usage_errors(), waiting("scan") as bar:
         with refusals_recorded("scan", db):
             config = fleet_config(**fleet_arguments(locals()))
             until = check_time(until, "--until", config.time_kind)
+            _say(bar, "loading Prefect")
             # Deliberately here: the flows import Prefect (seconds of start-up).
             from changekind.flows.scan import scan_flow
 
@@ -234,7 +283,7 @@ def scan(
                 scan_flow, config, until=until, series=series or None, report_dir=path_text(report)
             )
         t0 = time.perf_counter()
-        summary = run_fleet_flow(scan_flow, arguments, config, label="scan")
+        summary = run_fleet_flow(scan_flow, arguments, config, label="scan", bar=bar)
     finish(summary, as_json=as_json, wall=time.perf_counter() - t0)
 
 
@@ -295,11 +344,12 @@ def backfill(
     7D or 6h; sources with numeric timestamps take numbers for all four.
     """
     prefect_defaults()
-    with usage_errors():
+    with usage_errors(), waiting("backfill") as bar:
         with refusals_recorded("backfill", db):
             config = fleet_config(**fleet_arguments(locals()))
             check_time(start, "--start", config.time_kind)
             check_time(end, "--end", config.time_kind)
+            _say(bar, "loading Prefect")
             # Deliberately here: the flows import Prefect (seconds of start-up).
             from changekind.flows.scan import backfill_flow, split_span
 
@@ -315,7 +365,7 @@ def backfill(
                 report_dir=path_text(report),
             )
         t0 = time.perf_counter()
-        summary = run_fleet_flow(backfill_flow, arguments, config, label="backfill")
+        summary = run_fleet_flow(backfill_flow, arguments, config, label="backfill", bar=bar)
     finish(summary, as_json=as_json, wall=time.perf_counter() - t0)
 
 
@@ -343,16 +393,22 @@ def refit(
 ) -> None:
     """Estimate the models of all (or the --series given) again on all their history."""
     prefect_defaults()
-    with usage_errors():
+    with usage_errors(), waiting("refit") as bar:
         with refusals_recorded("refit", db):
             config = fleet_config(**fleet_arguments(locals()))
+            _say(bar, "loading Prefect")
             # Deliberately here: the flows import Prefect (seconds of start-up).
             from changekind.flows.scan import refit_flow
 
             arguments = flow_arguments(refit_flow, config, series=series or None)
         t0 = time.perf_counter()
-        summary = run_fleet_flow(refit_flow, arguments, config, label="refit")
+        summary = run_fleet_flow(refit_flow, arguments, config, label="refit", bar=bar)
     finish(summary, as_json=as_json, wall=time.perf_counter() - t0)
+
+
+def _say(bar: ProgressBar | None, what: str) -> None:
+    if bar is not None:
+        bar.say(what)
 
 
 def finish(summary: RunSummary, *, as_json: bool, wall: float) -> None:

@@ -9,11 +9,14 @@ An invented hourly fleet (tests/flows/fleet.py) is written as Parquet; a first
 new points, is timed end to end as a fresh process (interpreter, imports,
 Prefect, the flow) ``--repeat`` times in two settings:
 
-* ephemeral: no ``PREFECT_API_URL`` -- each command starts its own temporary
-  Prefect server;
-* local server: ``prefect server start`` on 127.0.0.1 (started here, stopped
-  at the end) and ``PREFECT_API_URL`` pointing at it, as README advises for
-  people who scan by hand all day.
+* ephemeral: no ``PREFECT_API_URL`` and no server on 127.0.0.1:4200 looked
+  for (``CHANGEKIND_LOCAL_PREFECT=false``) -- each command starts its own
+  temporary Prefect server;
+* local server (PREFECT_API_URL): ``prefect server start`` on 127.0.0.1
+  (started here, stopped at the end) and ``PREFECT_API_URL`` pointing at it;
+* local server (found on :4200): the same server on port 4200 and no
+  ``PREFECT_API_URL``: the command finds it by itself, as README describes for
+  people who scan by hand all day (measured only when port 4200 is free).
 
 Prints the best and the median wall time of each.  Figures only; nothing is
 asserted.  Timings under other load on the machine are pessimistic.
@@ -23,6 +26,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import socket
 import statistics
 import subprocess
 import sys
@@ -61,21 +65,43 @@ def main() -> None:
         command = [changekind, "scan", "--source", str(source), "--db", db]
         env = {k: v for k, v in os.environ.items() if not k.startswith("PREFECT_")}
         env["PREFECT_HOME"] = str(root / "prefect-home")
+        env["CHANGEKIND_LOCAL_PREFECT"] = "false"
         cold = scan(command, env)
         print(f"cold scan of {options.series} series (ephemeral Prefect): {cold:.1f} s")
         results: dict[str, list[float]] = {"ephemeral": []}
         for _ in range(options.repeat):
             results["ephemeral"].append(scan(command, env))
-        proc, url = start_server(root / "server-home", root / "server.log", None)
+        on_4200 = _port_free(4200)
+        proc, url = start_server(
+            root / "server-home", root / "server.log", None, port=4200 if on_4200 else None
+        )
         try:
             with_server = {**env, "PREFECT_API_URL": url}
             scan(command, with_server)  # first contact: the server creates the flow
-            results["local server"] = [scan(command, with_server) for _ in range(options.repeat)]
+            results["local server (PREFECT_API_URL)"] = [
+                scan(command, with_server) for _ in range(options.repeat)
+            ]
+            if on_4200:
+                found = {k: v for k, v in env.items() if k != "CHANGEKIND_LOCAL_PREFECT"}
+                results["local server (found on :4200)"] = [
+                    scan(command, found) for _ in range(options.repeat)
+                ]
+            else:
+                print("port 4200 is in use: the server found by probing was not measured")
         finally:
             stop_server(proc)
-        print(f"{'warm scan, nothing new':28s} {'best s':>8s} {'median s':>9s}")
+        print(f"{'warm scan, nothing new':32s} {'best s':>8s} {'median s':>9s}")
         for name, times in results.items():
-            print(f"{name:28s} {min(times):8.1f} {statistics.median(times):9.1f}")
+            print(f"{name:32s} {min(times):8.1f} {statistics.median(times):9.1f}")
+
+
+def _port_free(port: int) -> bool:
+    with socket.socket() as s:
+        try:
+            s.bind(("127.0.0.1", port))
+        except OSError:
+            return False
+    return True
 
 
 if __name__ == "__main__":

@@ -318,8 +318,10 @@ def free_port() -> int:
         return s.getsockname()[1]
 
 
-def start_server(home: Path, log: Path, database: str | None) -> tuple[subprocess.Popen, str]:
-    port = free_port()
+def start_server(
+    home: Path, log: Path, database: str | None, *, port: int | None = None
+) -> tuple[subprocess.Popen, str]:
+    port = free_port() if port is None else port
     url = f"http://127.0.0.1:{port}/api"
     env = child_env(None, home)
     env.pop("PREFECT_API_URL", None)

@@ -200,9 +200,11 @@ def problems(db: str) -> list[dict]:
 
 def subprocess_env(home) -> dict[str, str]:
     """The environment of a run in its own process: its own Prefect home, no server URL
-    (an ephemeral server of its own), quiet logs."""
+    (an ephemeral server of its own, even when a Prefect server runs on 127.0.0.1:4200),
+    quiet logs."""
     env = {
         **os.environ,
+        "CHANGEKIND_LOCAL_PREFECT": "false",
         "PREFECT_HOME": str(home),
         "PREFECT_SERVER_ANALYTICS_ENABLED": "false",
         "PREFECT_LOGGING_LEVEL": "WARNING",

@@ -202,9 +202,13 @@ def test_report_selects_one_runs_events_and_series(scanned, tmp_path):
     assert all(one in str(i["alt"]) for i in page.images)
 
 
-def test_report_says_what_is_wrong_with_its_options(tmp_path, scanned):
+def test_report_says_what_is_wrong_with_its_options(tmp_path, scanned, monkeypatch):
+    monkeypatch.delenv("CHANGEKIND_SOURCE", raising=False)
+    no_runs = f"sqlite:///{tmp_path / 'no-runs.db'}"
+    persist.migrate(no_runs)  # tables, but no run has recorded a source
     cases = [
         (["--db", f"sqlite:///{tmp_path / 'none.db'}", "--source", "x"], "does not exist"),
+        (["--db", no_runs], "no run recorded in the database names one; pass --source PATH"),
         (["--db", scanned["db"], "--source", str(tmp_path / "nope")], "does not exist"),
         (
             ["--db", scanned["db"], "--source", str(scanned["source"]), "--since", "soon"],

@@ -2,7 +2,7 @@
 
 Revision ID: 0010
 Revises: 0009
-Create Date: 2026-12-06 00:00:00
+Create Date: 2026-12-05 00:00:03
 
 A scan, backfill or refit records where it read the series from (a path, or
 a URL with its password hidden) and the column names it was given

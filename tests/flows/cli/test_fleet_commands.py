@@ -481,6 +481,7 @@ def test_bad_environment_setting_is_named(good_source, tmp_path, monkeypatch):
 def test_dask_runner_without_a_prefect_server_says_how_to_start_one(good_source, tmp_path):
     env = {k: v for k, v in os.environ.items() if k != "PREFECT_API_URL"}
     env["PREFECT_HOME"] = str(tmp_path / "prefect-home")  # no profile with a server URL
+    env["CHANGEKIND_LOCAL_PREFECT"] = "false"  # nor one found running on 127.0.0.1:4200
     db = f"sqlite:///{tmp_path / 'x.db'}"
     done = subprocess.run(
         [
