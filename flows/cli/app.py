@@ -78,6 +78,41 @@ class LazyCommands(typer.core.TyperGroup):
                     )
         return super().get_command(ctx, cmd_name)
 
+    def invoke(self, ctx: click.Context) -> object:
+        """Run the command; a fleet command refused by its own parsing gets a run record.
+
+        ``scan --workers abc`` fails in click's parsing, before the command's
+        body (which records the refusals it finds itself) runs: the refusal is
+        recorded here, in the database the arguments or the environment name,
+        then click prints its usage error as usual (exit 2).
+        """
+        args = [*getattr(ctx, "_protected_args", ()), *ctx.args]
+        try:
+            return super().invoke(ctx)
+        except typer.TyperException as exc:
+            # Typer carries its own copy of click: its UsageError (exit code 2)
+            # is reached through the public base class.
+            usage = getattr(exc, "exit_code", None) == EXIT_USAGE and hasattr(exc, "format_message")
+            if usage and args and args[0] in FLEET_COMMANDS:
+                from changekind.flows.cli.config import record_refusal
+
+                record_refusal(args[0], _option_value(args, "--db"), exc.format_message())
+            raise
+
+
+FLEET_COMMANDS = frozenset({"scan", "backfill", "refit"})
+"""The commands that record every run, refused ones included, in ``scan_runs``."""
+
+
+def _option_value(args: list[str], name: str) -> str | None:
+    """The value given to option ``name`` in raw arguments (``--db URL`` or ``--db=URL``)."""
+    for i, arg in enumerate(args):
+        if arg == name and i + 1 < len(args) and not args[i + 1].startswith("--"):
+            return args[i + 1]
+        if arg.startswith(name + "="):
+            return arg.split("=", 1)[1]
+    return None
+
 
 app = typer.Typer(
     cls=LazyCommands,

@@ -416,6 +416,38 @@ def test_bad_configuration_gets_one_line_and_exit_2(good_source, tmp_path, monke
     assert {r[4] for r in runs} == {"failed"}
 
 
+def test_fleet_commands_refused_by_parsing_are_recorded(tmp_path, monkeypatch):
+    # A fleet command whose options click itself rejects (a bad number, an
+    # unknown option, an option without its value) never reaches its body,
+    # yet its run record is written like any other refusal; read-only commands
+    # write none.  Reference: click's own usage message, printed as usual.
+    db = f"sqlite:///{tmp_path / 'x.db'}"
+    persist.migrate(db)
+    monkeypatch.delenv("CHANGEKIND_DB_URL", raising=False)
+    cases = [
+        (["scan", "--source", str(tmp_path), "--db", db, "--workers", "abc"], "'--workers'"),
+        (["backfill", f"--db={db}", "--bogus"], "--bogus"),
+        (["events", "--db", db, "--bogus"], "--bogus"),
+    ]
+    for args, named in cases:
+        result = _invoke(*args)
+        assert result.exit_code == 2, (args, result.output)
+        assert named in result.output, (args, result.output)
+    monkeypatch.setenv("CHANGEKIND_DB_URL", db)
+    assert _invoke("refit", "--db").exit_code == 2  # the database from the environment
+    runs = persist.table_snapshot(db)["scan_runs"]
+    recorded = sorted((r[1], r[4], r[-1]) for r in runs)
+    assert [(kind, status) for kind, status, _ in recorded] == [
+        ("backfill", "failed"),
+        ("refit", "failed"),
+        ("scan", "failed"),
+    ]
+    messages = dict((kind, message) for kind, _, message in recorded)
+    assert messages["backfill"] == "not run: No such option: --bogus"
+    assert messages["refit"] == "not run: Option '--db' requires an argument."
+    assert messages["scan"].startswith("not run: Invalid value for '--workers'")
+
+
 def test_scan_reads_a_database_table(prefect_server, good_source, tmp_path):
     # The same fleet from a SQL table (SQLite here) gives the same events as
     # from Parquet.
