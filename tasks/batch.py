@@ -423,6 +423,7 @@ def _cold(
             options.window,
             critical=options.critical,
             periods=options.periods,
+            false_budget=options.false_budget,
         )
         found_events, model = windowed.events, windowed_model(windowed)
         watermark, points = last_window_label(windowed.summary), windowed.summary.n_windows
@@ -480,7 +481,12 @@ def _warm(
 
         def screen(start: int, fixed: list[Event]):
             return screen_windowed(
-                model, summary, index[start], known=fixed, critical=options.critical
+                model,
+                summary,
+                index[start],
+                known=fixed,
+                critical=options.critical,
+                false_budget=options.false_budget,
             )
 
     after = _after_watermark(index, work.watermark)

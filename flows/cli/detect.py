@@ -60,16 +60,26 @@ class SeriesOutcome:
 
 
 def analyse_one(
-    item: SeriesInput, periods: tuple[int, ...] | None, critical: float | None
+    item: SeriesInput,
+    periods: tuple[int, ...] | None,
+    critical: float | None,
+    *,
+    false_budget: float | None = None,
 ) -> SeriesOutcome:
     """Run the engine on one series; a bad series becomes a problem, not an exception.
 
     Runs in a worker process, so it takes and returns picklable values only.
+    ``false_budget``: as for :func:`~changekind.tasks.detect.analyse_series`.
     """
 
     def run() -> DetectionResult:
         result = analyse_series(
-            item.series_id, item.timestamps, item.values, periods=periods, critical=critical
+            item.series_id,
+            item.timestamps,
+            item.values,
+            periods=periods,
+            critical=critical,
+            false_budget=false_budget,
         )
         # Duplicate timestamps are merged by their median: say how many.
         merged = regularize(item.series_id, item.timestamps, item.values).n_duplicates
@@ -85,6 +95,8 @@ def analyse_windowed_one(
     window: str,
     periods: tuple[int, ...] | None,
     critical: float | None,
+    *,
+    false_budget: float | None = None,
 ) -> SeriesOutcome:
     """:func:`analyse_one` for windowed mode: one series, problems as text, picklable.
 
@@ -101,6 +113,7 @@ def analyse_windowed_one(
             window,
             critical=critical,
             periods=periods,
+            false_budget=false_budget,
         ).as_detection()
 
     return _outcome(item.series_id, run)
@@ -272,6 +285,18 @@ def detect(
             show_default=False,
         ),
     ] = None,
+    false_budget: Annotated[
+        float | None,
+        typer.Option(
+            "--false-budget",
+            metavar="B",
+            help="Expected false events per clean series per 30 days of data: the "
+            "critical value then comes from the spacing, as in scan.  Default: from "
+            "the series length (about 0.2 false events per analysis).  --critical "
+            "overrides it.",
+            show_default=False,
+        ),
+    ] = None,
     as_json: Annotated[
         bool,
         typer.Option("--json", help="Print only a JSON array of events on stdout."),
@@ -292,13 +317,17 @@ def detect(
     # One validation of each option: the same model as the fleet runs' options.
     try:
         options = RunOptions(
-            critical=critical, periods=tuple(season) if season else None, window=window
+            critical=critical,
+            periods=tuple(season) if season else None,
+            window=window,
+            **({} if false_budget is None else {"false_budget": false_budget}),
         )
     except ValidationError as exc:
         raise fail_usage(validation_text(exc, OPTION_NAMES)) from None
-    worker = None
+    budget = None if false_budget is None else options.false_budget  # given, checked
+    worker = functools.partial(analyse_one, false_budget=budget)
     if options.window is not None:
-        worker = functools.partial(_windowed_worker, window=options.window)
+        worker = functools.partial(_windowed_worker, window=options.window, false_budget=budget)
     problems: list[SourceProblem] = []
     try:
         items = read_series_file(input, problems=problems)
@@ -328,9 +357,14 @@ def detect(
 
 
 def _windowed_worker(
-    item: SeriesInput, periods: tuple[int, ...] | None, critical: float | None, *, window: str
+    item: SeriesInput,
+    periods: tuple[int, ...] | None,
+    critical: float | None,
+    *,
+    window: str,
+    false_budget: float | None = None,
 ) -> SeriesOutcome:
-    return analyse_windowed_one(item, window, periods, critical)
+    return analyse_windowed_one(item, window, periods, critical, false_budget=false_budget)
 
 
 def windowed_records(

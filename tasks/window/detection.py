@@ -108,6 +108,25 @@ class WindowedResult:
         )
 
 
+WINDOW_FAMILIES = 3
+"""Families of tests in windowed mode: window medians, log spreads, extremes."""
+
+
+def family_budget(false_budget: float | None) -> float | None:
+    """One family's share of a windowed series' false-alarm budget: a third.
+
+    Never below the smallest budget accepted (``BUDGET_RANGE``), so the
+    smallest budgets are spent up to three times over; a budget outside the
+    accepted range raises ValueError naming it.
+    """
+    from changekind.tasks.critical import BUDGET_RANGE, check_budget
+
+    budget = check_budget(false_budget)
+    if budget is None:
+        return None
+    return max(budget / WINDOW_FAMILIES, BUDGET_RANGE[0])
+
+
 def detect_windowed(
     series_id: str,
     timestamps,
@@ -116,6 +135,7 @@ def detect_windowed(
     *,
     critical: float | None = None,
     periods: Sequence[int] | None = None,
+    false_budget: float | None = None,
 ) -> WindowedResult:
     """Detect level events and variance changes on window summaries.
 
@@ -132,6 +152,12 @@ def detect_windowed(
     periods : sequence of int, optional
         Seasonal periods in windows for both series (None: the engine chooses
         from the window width).
+    false_budget : float, optional
+        Expected false events per clean series per 30 days of data, shared by
+        the three families tested (:func:`family_budget`): the window medians,
+        the log window spreads and the window extremes each take a third, and
+        their critical values come from the spacing, not the length, as the
+        raw engine's do.  Ignored with ``critical``.
 
     Returns
     -------
@@ -190,8 +216,11 @@ def detect_windowed(
     of the way: it may come out as two level shifts in consecutive windows
     whose effects add up to the shift.
 
-    Multiplicity: two series are tested, so false events per clean series are
-    about twice the engine's target for one series of that length.
+    Multiplicity: three families are tested (medians, spreads, extremes).
+    With a false-alarm budget each spends a third of it, so a clean series
+    stays within the budget; with the length's default each family has the
+    engine's target for its length, so false events per clean series are up
+    to three times that target.
 
     References
     ----------
@@ -218,7 +247,12 @@ def detect_windowed(
     else:
         try:
             spread = analyse_series(
-                series_id, summary.index, log_spread, periods=periods, critical=critical
+                series_id,
+                summary.index,
+                log_spread,
+                periods=periods,
+                critical=critical,
+                false_budget=family_budget(false_budget),
             )
         except SeriesError as exc:
             notes.append(f"variance changes not tested: {exc.problem}")
@@ -259,7 +293,12 @@ def detect_windowed(
             "the level model's sigma is in units of the first variance regime"
         )
     level = analyse_series(
-        series_id, summary.index, level_input, periods=periods, critical=critical
+        series_id,
+        summary.index,
+        level_input,
+        periods=periods,
+        critical=critical,
+        false_budget=family_budget(false_budget),
     )
     events = [
         _windowed(_rescaled(ev, scale[ev.position], summary.median), width) for ev in level.events
@@ -268,7 +307,13 @@ def detect_windowed(
 
     # Step 3b: spikes inside windows (their extremes).
     taken = {ev.position for ev in level.events}
-    spikes = extreme_windows(summary, critical=critical, skip=taken, model=level.model.spec())
+    spikes = extreme_windows(
+        summary,
+        critical=critical,
+        skip=taken,
+        model=level.model.spec(),
+        false_budget=family_budget(false_budget),
+    )
     events += [_windowed(ev, width) for ev in spikes]
     if spikes:
         notes.append(
@@ -295,6 +340,7 @@ def extreme_windows(
     critical: float | None = None,
     skip: set[int] | frozenset[int] = frozenset(),
     model: str = "",
+    false_budget: float | None = None,
 ) -> list[Event]:
     """Windows whose extreme point the window's median and spread cannot explain.
 
@@ -309,6 +355,11 @@ def extreme_windows(
         Window positions already named by an event.
     model : str
         Text for the events' ``model`` field.
+    false_budget : float, optional
+        Expected false extremes per clean series per 30 days: the critical
+        value then spends ``false_budget`` over the raw points of 30 days
+        (the mean count of a usable window times the windows in 30 days)
+        instead of over the points tested.  Ignored with ``critical``.
 
     Returns
     -------
@@ -327,13 +378,24 @@ def extreme_windows(
     independent given its median (autocorrelated points make the test
     conservative for a spike and anticonservative for a slow swing).
     """
-    from changekind.tasks.critical import check_critical, critical_value
+    from changekind.tasks.critical import (
+        BUDGET_DAYS,
+        SECONDS_PER_DAY,
+        check_budget,
+        check_critical,
+        critical_value,
+    )
 
     ok = (summary.count >= MIN_SPREAD_POINTS) & (summary.spread > 0)
     if not ok.any():
         return []
     crit = check_critical(critical)
-    if crit is None:
+    budget = check_budget(false_budget)
+    if crit is None and budget is not None:
+        windows = BUDGET_DAYS * SECONDS_PER_DAY / summary.window.total_seconds()
+        points = float(summary.count[ok].mean()) * windows
+        crit = critical_value(points, min(budget, 0.5 * points))
+    elif crit is None:
         crit = critical_value(float(summary.count[ok].sum()))
     up = summary.max - summary.median
     down = summary.min - summary.median
@@ -392,6 +454,7 @@ def screen_windowed(
     *,
     known: Sequence[Event] = (),
     critical: float | None = None,
+    false_budget: float | None = None,
 ) -> DetectionResult:
     """Test the newest windows of a series against its cached windowed model.
 
@@ -412,6 +475,8 @@ def screen_windowed(
         Stored events of the series (level events and variance changes); their
         effects are removed first.
     critical : float, optional
+    false_budget : float, optional
+        As for :func:`detect_windowed`: each family tested spends a third.
 
     Returns
     -------
@@ -453,6 +518,7 @@ def screen_windowed(
         n_new,
         known=[e for e in known if e.event_type != "VC"],
         critical=critical,
+        false_budget=family_budget(false_budget),
     )
     events = [_windowed(ev, width) for ev in level.events]
     usable = (summary.count >= MIN_SPREAD_POINTS) & (summary.spread > 0)
@@ -467,7 +533,12 @@ def screen_windowed(
         ]
         if n_spread:
             spread = screen_new_points(
-                model.spread, spread_series, n_spread, known=steps, critical=critical
+                model.spread,
+                spread_series,
+                n_spread,
+                known=steps,
+                critical=critical,
+                false_budget=family_budget(false_budget),
             )
             events += [
                 _windowed(_as_variance_change(ev), width)
@@ -475,7 +546,13 @@ def screen_windowed(
                 if ev.event_type == "LS"
             ]
     old = set(np.flatnonzero(~new).tolist())
-    spikes = extreme_windows(summary, critical=critical, skip=old, model=model.spec())
+    spikes = extreme_windows(
+        summary,
+        critical=critical,
+        skip=old,
+        model=model.spec(),
+        false_budget=family_budget(false_budget),
+    )
     events += [_windowed(ev, width) for ev in spikes]  # after level events: they win a window
     return replace(level, events=_one_per_window(events))
 

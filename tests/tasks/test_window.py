@@ -609,3 +609,39 @@ def test_window_summaries_refuse_values_too_large_to_analyse():
     y[5] = 1e200
     with pytest.raises(NonFiniteError, match=r"1 value\(s\) are beyond 1e\+150 .*first: 1e\+200"):
         summarize_windows("s1", stamps, y, "1min")
+
+
+def test_false_budget_in_windowed_mode_is_shared_by_the_three_families():
+    # A day of 1 s AR(1) points with spikes of several sizes.  Without a
+    # budget the window extremes are tested at the line of the points tested
+    # (one day); with a budget B each family spends B / 3 over the raw points
+    # of 30 days, a higher line: the extremes kept are exactly those of the
+    # first run above it.  Reference for the line: scipy's normal quantile of
+    # the Bonferroni allowance.  The window medians' critical value is the
+    # engine's budget value at the window's spacing for B / 3.
+    from scipy.stats import norm
+
+    from changekind.tasks.detect import analyse_series
+    from changekind.tasks.window.detection import extreme_windows
+
+    rng = np.random.default_rng(5)
+    n = 86_400
+    stamps = pd.date_range("2026-03-01", periods=n, freq="s")
+    y = 50 + lfilter([1.0], [1.0, -0.5], rng.normal(size=n))
+    sd = 1 / np.sqrt(1 - 0.25)
+    for i, size in enumerate((4.8, 5.2, 5.6, 6.0, 6.4, 9.0)):
+        y[5_000 + 13_000 * i] += size * sd
+    summary = summarize_windows("s", stamps, y, "1min")
+    loose = extreme_windows(summary)
+    strict = extreme_windows(summary, false_budget=0.5)
+    line = norm.isf(0.5 / (2 * 60 * 30 * 1440))  # 60 points a window, 30 days of windows
+    assert 5.1 < line < 5.3
+    assert 4 <= len(loose) <= 6
+    assert [e.event_time for e in strict] == [
+        e.event_time for e in loose if abs(e.t_stat) >= line
+    ]
+    assert 0 < len(strict) < len(loose)
+    result = detect_windowed("s", stamps, y, "1min", false_budget=1.5)
+    alone = analyse_series("s", summary.index, summary.median, false_budget=0.5)
+    assert result.level.critical == pytest.approx(alone.critical)
+    assert result.level.critical > detect_windowed("s", stamps, y, "1min").level.critical

@@ -473,3 +473,35 @@ def test_human_output_fits_80_columns_and_cuts_no_cell(tmp_path):
         assert f"{rec['effect']:+.4g}" in row
         assert f"{rec['t_stat']:+.2f}" in row
     assert "…" not in result.stdout.replace(sid, "")  # nothing but the long id shortened
+
+
+def test_false_budget_sets_the_critical_value_from_the_spacing(tmp_path):
+    # Two days of minute points, AR(1), one spike of 5 innovation sds (|t|
+    # about 4.8).  By the length (2,880 points, 4 types tested, 0.2 false
+    # events an analysis) the line is about 4.30 and the spike is an event;
+    # a budget of 0.05 false events per 30 days at minute spacing puts it at
+    # about 5.13 and the spike is not.  Reference for both lines: scipy's
+    # normal quantile of the Bonferroni allowance (Gaussian residuals here).
+    from scipy.stats import norm
+
+    rng = np.random.default_rng(11)
+    n = 2880
+    values = 20 + lfilter([1.0], [1.0, -0.5], rng.normal(size=n))
+    values[2000] += 5.0
+    stamps = pd.date_range("2026-03-01", periods=n, freq="min")
+    path = tmp_path / "minute.csv"
+    pd.DataFrame({"timestamp": stamps.strftime("%Y-%m-%dT%H:%M:%S"), "value": values}).to_csv(
+        path, index=False
+    )
+    by_length = norm.isf(0.2 / (2 * 4 * n))
+    by_budget = norm.isf(0.05 / (2 * 4 * 30 * 1440))
+    assert 4.2 < by_length < 4.4 and 5.0 < by_budget < 5.3
+    result, default = run_json(path)
+    assert result.exit_code == 0, result.stderr
+    assert [(r["event_type"], r["event_time"]) for r in default] == [("AO", "2026-03-02T09:20:00")]
+    assert by_length < abs(default[0]["t_stat"]) < by_budget
+    result, strict = run_json(path, "--false-budget", "0.05")
+    assert result.exit_code == 0, result.stderr
+    assert strict == []
+    refused = runner.invoke(app, ["detect", str(path), "--false-budget", "0"])
+    assert refused.exit_code == 2 and "--false-budget" in refused.stderr
