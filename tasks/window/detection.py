@@ -348,9 +348,10 @@ def extreme_windows(
     ----------
     summary : WindowSummary
     critical : float, optional
-        Critical |z|; default :func:`~changekind.tasks.critical.critical_value`
-        of the raw points in windows tested (one test a point: the extreme is
-        the largest of the window's deviations).
+        Critical |z|; default :func:`~changekind.tasks.critical.extremes_critical`
+        of the windows tested (one test a raw point: the extreme is the
+        largest of the window's deviations; heavy-tailed points raise it to
+        the extremes' own tail).
     skip : set of int
         Window positions already named by an event.
     model : str
@@ -379,11 +380,12 @@ def extreme_windows(
     conservative for a spike and anticonservative for a slow swing).
     """
     from changekind.tasks.critical import (
+        ALLOWANCE,
         BUDGET_DAYS,
         SECONDS_PER_DAY,
         check_budget,
         check_critical,
-        critical_value,
+        extremes_critical,
     )
 
     ok = (summary.count >= MIN_SPREAD_POINTS) & (summary.spread > 0)
@@ -391,12 +393,6 @@ def extreme_windows(
         return []
     crit = check_critical(critical)
     budget = check_budget(false_budget)
-    if crit is None and budget is not None:
-        windows = BUDGET_DAYS * SECONDS_PER_DAY / summary.window.total_seconds()
-        points = float(summary.count[ok].mean()) * windows
-        crit = critical_value(points, min(budget, 0.5 * points))
-    elif crit is None:
-        crit = critical_value(float(summary.count[ok].sum()))
     up = summary.max - summary.median
     down = summary.min - summary.median
     dev = np.where(np.abs(up) >= np.abs(down), up, down)
@@ -407,6 +403,14 @@ def extreme_windows(
     local = usable.rolling(LEVEL_WINDOWS + 1, center=True, min_periods=1).median().to_numpy()
     ok &= np.isfinite(local) & (local > 0)
     z = np.where(ok, dev / np.where(ok, local, 1.0), 0.0)
+    if crit is None:
+        count = float(summary.count[ok].mean())
+        if budget is not None:
+            windows = BUDGET_DAYS * SECONDS_PER_DAY / summary.window.total_seconds()
+            allowance = min(budget, 0.5 * windows * count)
+        else:
+            windows, allowance = float(np.count_nonzero(ok)), ALLOWANCE
+        crit = extremes_critical(z[ok], count, windows, allowance)
     weights = tuple((k, 1.0 if k == "AO" else 0.0) for k in SEARCHED)
     out = []
     for pos in np.flatnonzero(np.abs(z) >= crit):

@@ -185,8 +185,11 @@ def test_summary_of_shuffled_zoned_text_matches_resample():
 def test_window_larger_than_the_data_is_refused_with_the_count():
     stamps = pd.date_range(START, periods=3 * DAY // 60, freq="min")
     y = np.random.default_rng(1).normal(size=stamps.size)
-    with pytest.raises(TooShortError, match=rf"'s1'.*window of 1 d gives only 3 window\(s\).*"
-                       rf"at least {MIN_WINDOWS} are needed: choose a window of at most about 3 h"):
+    with pytest.raises(
+        TooShortError,
+        match=rf"'s1'.*window of 1 d gives only 3 window\(s\).*"
+        rf"at least {MIN_WINDOWS} are needed: choose a window of at most about 3 h",
+    ):
         summarize_windows("s1", stamps, y, "1D")
 
 
@@ -400,8 +403,9 @@ def test_drill_reads_a_database_table_with_its_own_column_names(sqlite_url, raw)
     finally:
         engine.dispose()
     spec = open_source(
-        sqlite_url, table="write_latency", columns={"series_id": "array", "timestamp": "at",
-                                                    "value": "ms"}
+        sqlite_url,
+        table="write_latency",
+        columns={"series_id": "array", "timestamp": "at", "value": "ms"},
     )
     got = drill(spec, SID, "2026-03-02T01:00:05", "10s", around=1)
     # Oracle: pandas filtering of the rows written.
@@ -444,18 +448,39 @@ def test_drill_of_a_zoned_time_aligns_in_utc(sources):
 @pytest.mark.parametrize(
     ("series_id", "when", "kwargs", "error", "message"),
     [
-        ("array-99/none", "2026-03-03T08:00:00", {}, SourceError,
-         r"series 'array-99/none' is not in parquet file .* it holds 2 series"),
-        (SID, "2027-01-01T00:00:00", {}, ConfigError,
-         r"series '.*' has no points in the window 2027-01-01T00:00:00 to 2027-01-01T00:01:00 "
-         r".*its points run from 2026-03-02 00:00:00 to 2026-03-04 23:59:59"),
-        (SID, GAP[0].isoformat(), {}, ConfigError,
-         r"has no points in the window 2026-03-02T05:00:00 to 2026-03-02T05:01:00 .*: it falls in "
-         r"a gap of the series, between points at 2026-03-02 04:59:59 and 2026-03-02 05:04:30"),
+        (
+            "array-99/none",
+            "2026-03-03T08:00:00",
+            {},
+            SourceError,
+            r"series 'array-99/none' is not in parquet file .* it holds 2 series",
+        ),
+        (
+            SID,
+            "2027-01-01T00:00:00",
+            {},
+            ConfigError,
+            r"series '.*' has no points in the window 2027-01-01T00:00:00 to 2027-01-01T00:01:00 "
+            r".*its points run from 2026-03-02 00:00:00 to 2026-03-04 23:59:59",
+        ),
+        (
+            SID,
+            GAP[0].isoformat(),
+            {},
+            ConfigError,
+            r"has no points in the window 2026-03-02T05:00:00 to 2026-03-02T05:01:00 .*: "
+            r"it falls in "
+            r"a gap of the series, between points at 2026-03-02 04:59:59 and 2026-03-02 05:04:30",
+        ),
         (SID, "last tuesday", {}, ConfigError, r"event time 'last tuesday' is not a date/time"),
         (SID, "2026-03-03T08:00:00", {"around": -1}, ConfigError, r"around=-1 must be between"),
-        (SID, "2026-03-03T08:00:00", {"window": "1 fortnight"}, ConfigError,
-         r"window '1 fortnight' is not a duration"),
+        (
+            SID,
+            "2026-03-03T08:00:00",
+            {"window": "1 fortnight"},
+            ConfigError,
+            r"window '1 fortnight' is not a duration",
+        ),
     ],
 )
 def test_bad_drills_get_one_clear_message(sources, series_id, when, kwargs, error, message):
@@ -471,8 +496,18 @@ def test_drill_command_csv_matches_the_source(sources):
     start = pd.Timestamp("2026-03-03T08:00:00")
     result = runner.invoke(
         app,
-        ["drill", "--source", str(sources["folder"] / "latency.csv"), SID, start.isoformat(),
-         "--window", "1min", "--around", "1", "--csv"],
+        [
+            "drill",
+            "--source",
+            str(sources["folder"] / "latency.csv"),
+            SID,
+            start.isoformat(),
+            "--window",
+            "1min",
+            "--around",
+            "1",
+            "--csv",
+        ],
     )
     assert result.exit_code == 0, result.stderr
     from io import StringIO
@@ -500,8 +535,18 @@ def test_drill_command_table_and_png(sources, tmp_path):
 
     png = tmp_path / "drill.png"
     made = runner.invoke(
-        app, ["drill", "--source", source, SID, start.isoformat(), "--window", "1min",
-              "--png", str(png)]
+        app,
+        [
+            "drill",
+            "--source",
+            source,
+            SID,
+            start.isoformat(),
+            "--window",
+            "1min",
+            "--png",
+            str(png),
+        ],
     )
     assert made.exit_code == 0, made.stderr
     import matplotlib.image
@@ -542,8 +587,10 @@ def test_drill_command_without_a_source_says_how_to_give_one(monkeypatch):
 def test_detect_helpers_for_the_command_line(raw):
     from changekind.tasks.fetch.inputs import SeriesInput
 
-    day = raw[(raw["timestamp"] >= START + pd.Timedelta(days=1))
-              & (raw["timestamp"] < START + pd.Timedelta(days=1, hours=16))]
+    day = raw[
+        (raw["timestamp"] >= START + pd.Timedelta(days=1))
+        & (raw["timestamp"] < START + pd.Timedelta(days=1, hours=16))
+    ]
     item = SeriesInput(SID, pd.Index(day["timestamp"]), day["value"].to_numpy())
     outcome = cli_window.analyse_windowed_one(item, "1min", None, None)
     assert outcome.ok and outcome.result.nobs == 16 * 60
@@ -637,11 +684,50 @@ def test_false_budget_in_windowed_mode_is_shared_by_the_three_families():
     line = norm.isf(0.5 / (2 * 60 * 30 * 1440))  # 60 points a window, 30 days of windows
     assert 5.1 < line < 5.3
     assert 4 <= len(loose) <= 6
-    assert [e.event_time for e in strict] == [
-        e.event_time for e in loose if abs(e.t_stat) >= line
-    ]
+    assert [e.event_time for e in strict] == [e.event_time for e in loose if abs(e.t_stat) >= line]
     assert 0 < len(strict) < len(loose)
     result = detect_windowed("s", stamps, y, "1min", false_budget=1.5)
     alone = analyse_series("s", summary.index, summary.median, false_budget=0.5)
     assert result.level.critical == pytest.approx(alone.critical)
     assert result.level.critical > detect_windowed("s", stamps, y, "1min").level.critical
+
+
+def test_window_extremes_follow_the_points_own_tail():
+    # A day of 1 s AR(1) points whose innovations are Student t(3) (scaled to
+    # unit variance, as latency metrics have): the window extremes are the
+    # block maxima of heavy-tailed points, and the Gaussian line (about 4.9)
+    # would report hundreds of windows a day.  Their own tail (Hill index of
+    # the largest extremes, Weissman's extrapolation) puts the line far out:
+    # no window of the clean day is reported, with or without a budget.
+    # Gaussian points keep the Gaussian line exactly.  References: scipy's
+    # normal quantile for the Gaussian line; the t(3) draws of numpy.
+    from scipy.stats import norm
+
+    from changekind.tasks.critical import critical_value, extremes_critical
+    from changekind.tasks.window.detection import extreme_windows
+
+    rng = np.random.default_rng(7)
+    n = 86_400
+    stamps = pd.date_range("2026-03-01", periods=n, freq="s")
+    heavy = 50 + lfilter([1.0], [1.0, -0.5], rng.standard_t(3, size=n) / np.sqrt(3))
+    gauss = 50 + lfilter([1.0], [1.0, -0.5], rng.normal(size=n))
+    summary = summarize_windows("s", stamps, heavy, "1min")
+    gaussian_line = norm.isf(0.2 / (2 * 1440 * 60))
+    assert critical_value(1440 * 60.0) == pytest.approx(gaussian_line)
+
+    def standardized_extremes(windows):
+        farthest = np.maximum(windows.max - windows.median, windows.median - windows.min)
+        return farthest / windows.spread
+
+    z = standardized_extremes(summary)
+    assert int(np.count_nonzero(z > gaussian_line)) > 100  # what the Gaussian line would report
+    line = extremes_critical(z, 60.0, 1440.0)
+    assert line > 3 * gaussian_line
+    assert extreme_windows(summary) == []
+    assert extreme_windows(summary, false_budget=0.5) == []
+    gauss_summary = summarize_windows("s", stamps, gauss, "1min")
+    assert extremes_critical(standardized_extremes(gauss_summary), 60.0, 1440.0) == pytest.approx(
+        gaussian_line
+    )
+    # Too few windows to read a tail from: the Gaussian line.
+    assert extremes_critical(z[:50], 60.0, 50.0) == pytest.approx(critical_value(50 * 60.0))
