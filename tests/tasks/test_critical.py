@@ -154,3 +154,24 @@ def test_a_lone_large_residual_near_the_end_is_not_a_level_shift_under_heavy_tai
         assert not [
             e for e in result.events if e.event_type in ("LS", "TC") and abs(e.position - 470) <= 2
         ]
+
+
+def test_many_real_spikes_are_not_taken_for_a_heavy_tail():
+    # Simulated (numpy default_rng, fixed seed): hourly AR(1), phi = 0.5,
+    # Gaussian innovations, 80 additive outliers of 6 to 8 innovation sds at
+    # distinct positions at least 8 apart among 3,000 points.  The largest
+    # residuals are then the spikes' and look like a heavy tail (measured
+    # before the shoulder check: tail index 2.05, pulse critical value 160-173,
+    # no spike reported); the residuals without them are Gaussian.
+    rng = np.random.default_rng(100)
+    n, k = 3000, 80
+    y = lfilter([1.0], [1.0, -0.5], rng.normal(size=n))
+    spots = np.sort(rng.choice(np.arange(10, n - 10)[::8], k, replace=False))
+    y[spots] += rng.uniform(6, 8, k) * rng.choice([-1, 1], k)
+    stamps = pd.date_range("2026-01-01", periods=n, freq="h")
+    result = analyse_series("spikes", stamps, y + 100)
+    assert result.model.tail is not None and result.model.tail.gaussian
+    assert result.pulse_critical is None
+    found = {e.position for e in result.events}
+    assert len(found & set(spots.tolist())) >= 78  # measured: 80 of 80 at this seed
+    assert len(found - set(spots.tolist())) <= 2  # measured: 0

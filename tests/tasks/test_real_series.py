@@ -49,8 +49,10 @@ def test_elecequip_drop_in_the_financial_crisis_at_the_default_critical_value():
     assert result.critical == pytest.approx(3.66, abs=0.01)
     shifts = [e for e in result.events if e.event_type == "LS"]
     assert len(shifts) == 1
-    assert pd.Timestamp("2008-11-01") <= pd.Timestamp(shifts[0].event_time) <= pd.Timestamp(
-        "2009-01-01"
+    assert (
+        pd.Timestamp("2008-11-01")
+        <= pd.Timestamp(shifts[0].event_time)
+        <= pd.Timestamp("2009-01-01")
     )
     assert shifts[0].effect < 0
     assert abs(shifts[0].t_stat) > result.critical
