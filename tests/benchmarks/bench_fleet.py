@@ -500,7 +500,8 @@ def engine_profile(db: str, source: Path, sample: int) -> None:
     Planned from the database as it was after the cold scan; batches of 200
     through :func:`changekind.tasks.batch.run_batch`, one process, serially.
     """
-    from changekind.flows.pipeline import plan_works, stored_state
+    from changekind.flows.pipeline import plan_works
+    from changekind.flows.records import stored_state
     from changekind.flows.settings import RunOptions
     from changekind.tasks.batch import run_batch
     from changekind.tasks.fetch import list_series, open_source
