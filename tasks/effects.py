@@ -32,7 +32,6 @@ from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.signal import lfilter
 
 TC_DECAY = 0.7
 """Decay of a temporary change when none was estimated (Chen and Liu 1993 use
@@ -42,6 +41,13 @@ stored event without one)."""
 
 def _decay(delta: float | None) -> float:
     return TC_DECAY if delta is None else float(delta)
+
+
+def _tc_residual(pi: np.ndarray, delta: float | None) -> np.ndarray:
+    """pi(B) / (1 - delta B): a temporary change's pattern in the residuals."""
+    from scipy.signal import lfilter  # here: start-up of commands that filter nothing
+
+    return lfilter([1.0], [1.0, -_decay(delta)], pi)
 
 
 def _pulse(length: int) -> np.ndarray:
@@ -109,7 +115,7 @@ EFFECTS: dict[str, Effect] = {
         "TC",
         "temporary change",
         lambda n, d, psi: _decay(d) ** np.arange(n),
-        lambda pi, d: lfilter([1.0], [1.0, -_decay(d)], pi),
+        _tc_residual,
         decays=True,
     ),
     "IO": Effect(

@@ -15,8 +15,6 @@ from collections.abc import Sequence
 from dataclasses import dataclass, replace
 
 import numpy as np
-from scipy.optimize import minimize
-from scipy.signal import lfilter
 
 from changekind.tasks.arma import (
     Order,
@@ -159,6 +157,8 @@ def _exact_fit(
         # The likelihood maximized directly (scipy's L-BFGS-B over statsmodels'
         # unconstrained parameters) rather than by ``model.fit``: fit warns on
         # most calls, and silencing warnings is not safe in threads.
+        from scipy.optimize import minimize  # here: start-up of commands that fit nothing
+
         found = minimize(
             lambda x: -model.loglike(x, transformed=False),
             model.untransform_params(start),
@@ -272,6 +272,8 @@ def conditional_fit(
     if not np.all(np.isfinite(coef)):
         raise EstimationError("non-finite estimate")
     ar, ma = _arma_polys(dict(named), order, seasonal_order)
+    from scipy.signal import lfilter  # here: start-up of commands that fit nothing
+
     e = lfilter(ar, ma, z)[p + s * P :]
     sigma2 = float(np.mean(e * e)) if e.size else 0.0
     if not sigma2 > 0:

@@ -22,7 +22,6 @@ from collections.abc import Sequence
 from dataclasses import dataclass, replace
 
 import numpy as np
-from scipy.fft import irfft, next_fast_len, rfft
 from scipy.special import ndtr
 
 from changekind.tasks.critical import CLIP, SPREAD_TYPES, Thresholds
@@ -150,6 +149,8 @@ def _fft_sums(
     x: np.ndarray, w: np.ndarray, H: np.ndarray, cache: dict | None = None
 ) -> tuple[np.ndarray, np.ndarray]:
     """sum_k h[k] x[T+k] and sum_k h[k]^2 w[T+k] for every T and column h of H."""
+    from scipy.fft import irfft, next_fast_len, rfft  # here: start-up of commands that test nothing
+
     n = x.size
     if cache is not None and "HF" in cache:
         size, HF, den = cache["size"], cache["HF"], cache["den"]

@@ -12,13 +12,10 @@ from __future__ import annotations
 import textwrap
 from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
-from matplotlib import dates as mdates
-from matplotlib.axes import Axes
-from matplotlib.figure import Figure
 
 from changekind.tasks.errors import SeriesError
 from changekind.tasks.report.axis import (
@@ -44,6 +41,10 @@ from changekind.tasks.report.style import (
 from changekind.tasks.report.views import Verdict
 from changekind.tasks.report.words import axis_label, describe_event, type_name, verdict_line
 from changekind.tasks.types import EVENT_TYPES, Event, FittedModel
+
+if TYPE_CHECKING:  # matplotlib is imported where a figure is drawn (0.4 s of start-up)
+    from matplotlib.axes import Axes
+    from matplotlib.figure import Figure
 
 __all__ = ["FIGURE_DPI", "FIGURE_SIZE", "PANELS", "event_figure"]
 
@@ -131,6 +132,8 @@ def event_figure(
     4. The facts in words.  5. The type weights.
     """
     placed = _place(event, timestamps, values, model)  # Step 1
+
+    from matplotlib.figure import Figure
 
     fig = Figure(figsize=FIGURE_SIZE, dpi=dpi, layout="constrained", facecolor=PAPER)
     grid = fig.add_gridspec(2, 2, width_ratios=(2.3, 1.0), height_ratios=(2.2, 1.0))
@@ -301,6 +304,8 @@ def _draw_effect(ax: Axes, event: Event, placed: _Placed, unit: str | None) -> N
 
 def _format_time_axis(ax: Axes, kind: TimeKind, event: Event) -> None:
     if kind == "datetime":
+        from matplotlib import dates as mdates
+
         # minticks 3: with the default 5, some spans (3 points over 5 days) warn.
         locator = mdates.AutoDateLocator(minticks=3, maxticks=8)
         ax.xaxis.set_major_locator(locator)
