@@ -142,7 +142,7 @@ def test_json_records_follow_the_contract(tmp_path):
         else:
             assert r["decay"] is None
         assert isinstance(r["model"], str) and r["model"].startswith("ARIMA(")
-    # Series in input order, then time.
+    # Series in id order, then time.
     order = [(r["series_id"], stamps().index(r["event_time"])) for r in records]
     assert order == sorted(order)
 
@@ -180,6 +180,8 @@ def test_parallel_run_keeps_input_order_and_matches_in_process(tmp_path):
         path, index=False
     )
     items = read_series_file(path)
+    assert [i.series_id for i in items] == sorted(names)  # the fleet reader's id order
+    items = [next(i for i in items if i.series_id == name) for name in names]
     parallel = analyse_inputs(items, max_workers=2)
     serial = analyse_inputs(items, max_workers=1)
     assert [o.series_id for o in parallel] == names
@@ -188,7 +190,7 @@ def test_parallel_run_keeps_input_order_and_matches_in_process(tmp_path):
         assert [e.to_record() for e in a.result.events] == [e.to_record() for e in b.result.events]
     _, records = run_json(path)
     seen = list(dict.fromkeys(r["series_id"] for r in records))
-    assert seen == names
+    assert seen == sorted(names)
     for name in names:
         assert the_shift(records, name)["event_type"] == "LS"
 
@@ -250,8 +252,10 @@ def test_non_numeric_values_name_their_series(tmp_path):
     frame.loc[frame.index[-5], "value"] = "n/a?"
     frame.to_csv(path, index=False)
     result, records = run_json(path)
+    # The cell is skipped and named (series, time, text), as scan records it; exit 1.
     assert result.exit_code == 1
-    assert "'junk'" in result.stderr and "not numbers" in result.stderr
+    assert "'junk'" in result.stderr and "'n/a?'" in result.stderr
+    assert "not a number" in result.stderr
     assert the_shift(records, "good")["event_type"] == "LS"
 
 
@@ -277,7 +281,7 @@ def test_missing_file_is_one_clear_message(tmp_path):
         ("cols.csv", "time,val\n2030-01-01,1\n", "wrong columns"),
         ("empty.csv", "", "empty"),
         ("header.csv", "series_id,timestamp,value\n", "no data rows"),
-        ("noid.csv", "series_id,timestamp,value\n,2030-01-01,1\n", "no series_id"),
+        ("noid.csv", "series_id,timestamp,value\n,2030-01-01,1\n", "without a series id"),
         ("data.txt", "timestamp,value\n", "unknown file type"),
         ("bad.parquet", "this is not parquet", "not readable as Parquet"),
     ],
