@@ -66,7 +66,8 @@ class Effect:
     signature (lag 0 first) under a model with pi weights ``pi``.
     ``decays`` says whether the type carries a decay rate (TC); ``lasting``
     whether it leaves the series somewhere else for good (a cached model then
-    describes a series that is no longer there).
+    describes a series that is no longer there); ``needs_psi`` whether its path
+    is the model's psi weights (IO).
     """
 
     kind: str
@@ -76,6 +77,7 @@ class Effect:
     decays: bool = False
     lasting: bool = False
     pulse_like: bool = False
+    needs_psi: bool = False
 
     def path(
         self, length: int, *, delta: float | None = None, psi: np.ndarray | None = None
@@ -118,6 +120,7 @@ EFFECTS: dict[str, Effect] = {
         _io_path,
         lambda pi, d: _pulse(pi.size),
         pulse_like=True,
+        needs_psi=True,
     ),
     "VC": Effect(
         "VC",

@@ -91,11 +91,7 @@ def child(mode: str, days: int, seed: int, window: str) -> dict:
     when_all = list(injected(days).values())
     for kind, when in injected(days).items():
         home = when.floor(tolerance) if mode != "raw" else when
-        near = [
-            e.event_type
-            for e in events
-            if abs(pd.Timestamp(e.event_time) - home) <= tolerance
-        ]
+        near = [e.event_type for e in events if abs(pd.Timestamp(e.event_time) - home) <= tolerance]
         found_types[kind] = near
     extra = sum(
         all(abs(pd.Timestamp(e.event_time) - w.floor(tolerance)) > tolerance for w in when_all)
@@ -119,8 +115,17 @@ def child(mode: str, days: int, seed: int, window: str) -> dict:
 
 def run(mode: str, days: int, seed: int, window: str, timeout: float) -> dict:
     cmd = [
-        sys.executable, "-m", "tests.benchmarks.bench_window", "--child", mode,
-        "--days", str(days), "--seed", str(seed), "--window", window,
+        sys.executable,
+        "-m",
+        "tests.benchmarks.bench_window",
+        "--child",
+        mode,
+        "--days",
+        str(days),
+        "--seed",
+        str(seed),
+        "--window",
+        window,
     ]
     try:
         done = subprocess.run(cmd, capture_output=True, text=True, timeout=timeout, check=False)
@@ -156,17 +161,26 @@ def main() -> None:
     for mode, days in plan:
         print(f"running {mode} on {days} day(s)...", file=sys.stderr, flush=True)
         rows.append(run(mode, days, args.seed, args.window, args.timeout))
-    print(f"\nSeries of 1 s samples; window {args.window}; seed {args.seed}; "
-          f"{os.cpu_count()} core(s); each run in a fresh process.\n")
-    print("| mode | days | raw points | points modelled | wall (s) | CPU (s) | peak RSS (MB) | "
-          "RSS growth in call (MB) | events | away from the injected | LS | TC | VC |")
+    print(
+        f"\nSeries of 1 s samples; window {args.window}; seed {args.seed}; "
+        f"{os.cpu_count()} core(s); each run in a fresh process.\n"
+    )
+    print(
+        "| mode | days | raw points | points modelled | wall (s) | CPU (s) | peak RSS (MB) | "
+        "RSS growth in call (MB) | events | away from the injected | LS | TC | VC |"
+    )
     print("|---|---|---|---|---|---|---|---|---|---|---|---|---|")
     for row in rows:
         if "timeout" in row or "error" in row:
-            what = (f"stopped after {row['timeout']:.0f} s" if "timeout" in row
-                    else f"failed: {row['error']}")
-            print(f"| {row['mode']} | {row['days']} | {row['days'] * DAY} | - | {what} "
-                  "| - | - | - | - | - | - | - | - |")
+            what = (
+                f"stopped after {row['timeout']:.0f} s"
+                if "timeout" in row
+                else f"failed: {row['error']}"
+            )
+            print(
+                f"| {row['mode']} | {row['days']} | {row['days'] * DAY} | - | {what} "
+                "| - | - | - | - | - | - | - | - |"
+            )
             continue
         types = ", ".join(f"{k} {v}" for k, v in sorted(row["by_type"].items())) or "none"
         print(

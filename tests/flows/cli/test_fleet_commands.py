@@ -607,7 +607,8 @@ def test_demo_runs_the_pipeline_and_scores_the_stored_events(prefect_server, tmp
 
 
 def test_day_files_hold_one_utc_day_each_and_the_whole_fleet_together(tmp_path):
-    from changekind.flows.demo import make_demo_fleet, write_day_files
+    from changekind.flows.demo import write_day_files
+    from changekind.tasks.simulate import make_demo_fleet
 
     fleet = make_demo_fleet(np.random.default_rng(0), n_controllers=2, days=4, step="1h")
     early = write_day_files(fleet.data, tmp_path, last=3)
