@@ -496,23 +496,23 @@ def _daily_shape(phase: np.ndarray) -> np.ndarray:
     )
 
 
+_PROCESS_RANGES: dict[str, tuple[tuple[float, float] | None, ...]] = {
+    # level, daily amplitude and innovation sd (shares of the level), AR, MA (None: 0)
+    "write-latency-ms": ((1.5, 4.0), (0.10, 0.20), (0.03, 0.05), (0.30, 0.60), None),
+    "queue-depth": ((12.0, 40.0), (0.15, 0.30), (0.04, 0.06), (0.45, 0.70), (0.15, 0.35)),
+}
+
+
 def _process(metric: str, rng: np.random.Generator) -> _Process:
-    if metric == "write-latency-ms":
-        level = rng.uniform(1.5, 4.0)
-        return _Process(
-            level=level,
-            amplitude=level * rng.uniform(0.10, 0.20),
-            sigma=level * rng.uniform(0.03, 0.05),
-            ar=rng.uniform(0.30, 0.60),
-            ma=0.0,
-        )
-    level = rng.uniform(12.0, 40.0)
+    """A series' process, drawn in the order level, amplitude, sd, AR, MA."""
+    level_r, amplitude_r, sigma_r, ar_r, ma_r = _PROCESS_RANGES[metric]
+    level = rng.uniform(*level_r)
     return _Process(
         level=level,
-        amplitude=level * rng.uniform(0.15, 0.30),
-        sigma=level * rng.uniform(0.04, 0.06),
-        ar=rng.uniform(0.45, 0.70),
-        ma=rng.uniform(0.15, 0.35),
+        amplitude=level * rng.uniform(*amplitude_r),
+        sigma=level * rng.uniform(*sigma_r),
+        ar=rng.uniform(*ar_r),
+        ma=0.0 if ma_r is None else rng.uniform(*ma_r),
     )
 
 
@@ -637,12 +637,13 @@ def make_demo_fleet(
 
             adds = np.zeros(n)
             for t0, kind, note in events:
-                sign = 1.0 if kind != "AO" else float(rng.choice([-1.0, 1.0]))
+                effect = EFFECTS[kind]
+                sign = float(rng.choice([-1.0, 1.0])) if effect.single_point else 1.0
                 omega = sign * proc.sigma * rng.uniform(*EFFECT_SIGMAS)
                 truth_rows.append((series_id, stamps[t0], kind, float(omega), note))
                 if not inject:
                     continue
-                if kind == "IO":  # an innovation: the process's psi(B) carries it
+                if effect.needs_psi:  # an innovation: the process's psi(B) carries it
                     shocks[burn + t0] += omega
                 else:  # AO, LS, TC: the registry's paths
                     adds[t0:] += omega * EFFECTS[kind].path(n - t0, delta=DEMO_TC_DECAY)

@@ -20,6 +20,7 @@ from matplotlib import dates as mdates
 from matplotlib.axes import Axes
 from matplotlib.figure import Figure
 
+from changekind.tasks.effects import EFFECTS, UNKNOWN
 from changekind.tasks.errors import SeriesError
 from changekind.tasks.report.axis import (
     TimeKind,
@@ -186,7 +187,7 @@ def _observed_words(event: Event) -> str:
     """What the top line shows: the raw series, or the window series a windowed event is in."""
     if event.window_start is None:
         return "observed"
-    return "window spread" if event.event_type == "VC" else "window median"
+    return "window spread" if EFFECTS.get(event.event_type, UNKNOWN).in_spread else "window median"
 
 
 def _draw_series(
