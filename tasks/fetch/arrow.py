@@ -29,6 +29,7 @@ from changekind.tasks.fetch.values import (
     SourceProblem,
     SourceSpec,
     TimeKind,
+    missing_column,
 )
 
 # ---------------------------------------------------------------------------
@@ -75,10 +76,7 @@ class _ArrowReader:
                         f"{cols.timestamp}, {cols.value} (one series, named after the file), "
                         "or pass --series-column, --timestamp-column, --value-column to name them"
                     )
-                raise SourceError(
-                    f"{spec.describe} has no column {name!r} (columns: {', '.join(names)}); "
-                    f"pass {_OPTION[role]} to name the {role.replace('_', ' ')} column"
-                )
+                raise missing_column(spec.describe, name, role, names)
         self.types = {
             role: self.dataset.schema.field(getattr(cols, role)).type for role in self._roles()
         }
