@@ -18,6 +18,17 @@ def make_fleet(
     return fleet.data, fleet.truth[["series_id", "event_time", "event_type"]]
 
 
+def found_in(events: pd.DataFrame, truth: pd.DataFrame, tolerance: str = "2h") -> int:
+    """Injected events (``truth``) with a stored event of the same type within the tolerance."""
+    hits = 0
+    for row in truth.itertuples():
+        mine = events[events.series_id == row.series_id]
+        times = pd.to_datetime(mine.event_time)
+        near = mine[(times - row.event_time).abs() <= pd.Timedelta(tolerance)]
+        hits += int((near.event_type == row.event_type).any())
+    return hits
+
+
 def write_source(data: pd.DataFrame, root: Path, *, until: str | None = None) -> Path:
     """Write the rows before ``until`` as a Parquet dataset directory."""
     root.mkdir(parents=True, exist_ok=True)
