@@ -5,7 +5,8 @@ References
 - The injected truth: the series written to each file (values and times) is
   what both readers must hand on, and the level shift injected into it is the
   event a scan of a one-series file must find (AR(1), phi 0.5, shift of 8
-  innovation sds at the middle; simulated with a seeded generator).
+  innovation sds at the middle; simulated by changekind.tasks.simulate with a
+  seeded generator).
 - pandas' own writers (``to_csv``, ``to_parquet``) make the files: CSV,
   gzip-compressed CSV, Parquet under its three suffixes, a folder of files.
 """
@@ -17,13 +18,13 @@ import json
 import numpy as np
 import pandas as pd
 import pytest
-from scipy.signal import lfilter
 from typer.testing import CliRunner
 
 from changekind.flows.cli import app
 from changekind.tasks import persist
 from changekind.tasks.fetch import SeriesWindow, open_source, read_windows, survey_source
 from changekind.tasks.fetch.inputs import read_series_file
+from changekind.tasks.simulate import arma_filter, injected
 
 runner = CliRunner()
 N = 240
@@ -33,9 +34,8 @@ SHIFT_AT, SHIFT = N // 2, 8.0
 def shifted(seed: int) -> np.ndarray:
     """AR(1) around 30 with a level shift of SHIFT from SHIFT_AT on (the injected truth)."""
     rng = np.random.default_rng(seed)
-    y = 30.0 + lfilter([1.0], [1.0, -0.5], rng.normal(size=N + 100))[100:]
-    y[SHIFT_AT:] += SHIFT
-    return y
+    y = 30.0 + arma_filter(rng.normal(size=N + 100), ar=(0.5,))[100:]
+    return y + injected(N, SHIFT_AT, "LS", SHIFT)
 
 
 STAMPS = pd.date_range("2031-02-02", periods=N, freq="h")

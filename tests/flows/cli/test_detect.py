@@ -19,7 +19,6 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
-from scipy.signal import lfilter
 from statsmodels.tsa.arima.model import ARIMA
 from typer.testing import CliRunner
 
@@ -27,6 +26,7 @@ from changekind.flows.cli import app
 from changekind.flows.cli.detect import analyse_inputs
 from changekind.tasks.fetch import open_source, read_series
 from changekind.tasks.fetch.inputs import SeriesInput, read_series_file
+from changekind.tasks.simulate import arma_filter, injected, innovations
 from changekind.tasks.types import EVENT_TYPES
 from tests.fresh import run_python
 
@@ -58,10 +58,9 @@ runner = CliRunner()
 def ar1_with_shift(seed: int, *, n: int = N, t_shift: int | None = T_SHIFT) -> np.ndarray:
     """AR(1), phi = 0.5, unit innovations, mean 20, plus SHIFT from t_shift on."""
     rng = np.random.default_rng(seed)
-    e = rng.normal(0.0, 1.0, n + 100)
-    y = 20.0 + lfilter([1.0], [1.0, -PHI], e)[100:]
+    y = 20.0 + arma_filter(innovations("gauss", n + 100, rng), ar=(PHI,))[100:]
     if t_shift is not None:
-        y[t_shift:] += SHIFT
+        y = y + injected(n, t_shift, "LS", SHIFT)
     return y
 
 
@@ -371,14 +370,7 @@ def test_series_input_keeps_the_given_text(tmp_path):
 def _shifted_series(n: int = 300, seed: int = 12) -> np.ndarray:
     """AR(1), phi 0.5, with a level shift of 8 at n // 2 (the injected truth)."""
     rng = np.random.default_rng(seed)
-    e = rng.normal(size=n)
-    y = np.empty(n)
-    y[0] = e[0]
-    for t in range(1, n):
-        y[t] = 0.5 * y[t - 1] + e[t]
-    y += 20.0
-    y[n // 2 :] += 8.0
-    return y
+    return 20.0 + arma_filter(rng.normal(size=n), ar=(0.5,)) + injected(n, n // 2, "LS", 8.0)
 
 
 @pytest.mark.parametrize(
@@ -490,8 +482,7 @@ def test_false_budget_sets_the_critical_value_from_the_spacing(tmp_path):
 
     rng = np.random.default_rng(11)
     n = 2880
-    values = 20 + lfilter([1.0], [1.0, -0.5], rng.normal(size=n))
-    values[2000] += 5.0
+    values = 20 + arma_filter(rng.normal(size=n), ar=(0.5,)) + injected(n, 2000, "AO", 5.0)
     stamps = pd.date_range("2026-03-01", periods=n, freq="min")
     path = tmp_path / "minute.csv"
     pd.DataFrame({"timestamp": stamps.strftime("%Y-%m-%dT%H:%M:%S"), "value": values}).to_csv(
