@@ -35,7 +35,8 @@ import time
 
 import numpy as np
 import pandas as pd
-from scipy.signal import lfilter
+
+from changekind.tasks.simulate import arma_filter
 
 DAY = 86_400
 START = pd.Timestamp("2026-03-02")
@@ -58,7 +59,7 @@ def make_series(seed: int, days: int) -> tuple[pd.DatetimeIndex, np.ndarray]:
     when = injected(days)
     shocks = rng.normal(size=n + 200)
     shocks[200:] *= np.where(stamps >= when["VC"], 2.0, 1.0)
-    y = 50.0 + lfilter([1.0], [1.0, -0.5], shocks)[200:]
+    y = 50.0 + arma_filter(shocks, ar=(0.5,))[200:]
     y[stamps >= when["LS"]] += 3.0
     after = stamps >= when["TC"]
     y[after] += 6.0 * 0.5 ** (np.arange(after.sum()) / 300.0)
