@@ -130,6 +130,18 @@ def start_workers(workers: int) -> list:
     return [start_worker_task.submit() for _ in range(max(1, workers))]
 
 
+def small_run(expected_seconds: float, batch_seconds: float) -> bool:
+    """Whether work expected to take ``expected_seconds`` runs in the flow's own process.
+
+    Work of at most one batch (``batch_seconds``) gains nothing from the task
+    runner: a worker process spends 3-7 s on its imports and each submitted
+    batch 0.2-0.4 s of orchestration (measured, /work/shared/PREFECT-NOTES.md),
+    against 8 ms per warm series.  Its batches are then called as tasks in the
+    flow's process, one after the other (same retries, same records).
+    """
+    return expected_seconds <= batch_seconds
+
+
 def plan_works(
     series_ids: Sequence[str],
     *,
@@ -291,6 +303,7 @@ def execute(
     workers: int,
     reach: Mapping[str, Reach] | None = None,
     batch_seconds: float = 10.0,
+    small_in_process: bool = False,
     logger=None,
     before_write: Callable[[], None] | None = None,
     problems: list[SourceProblem] | None = None,
@@ -304,7 +317,8 @@ def execute(
     transient database errors (``flows/steps.py``); ``before_write`` is called
     first (the run lock's check).  Parts of the
     source the batches could not read are recorded with their batch and
-    appended to ``problems``.
+    appended to ``problems``.  With ``small_in_process``, work of at most one
+    batch (:func:`small_run`) is called as tasks in this process instead.
     """
     reach = reach or {}
     groups: dict[str | None, list[SeriesWork]] = {}
@@ -316,6 +330,8 @@ def execute(
         for report_from, group in groups.items()
         for batch in plan_batches(group, target_seconds=batch_seconds, workers=workers)
     ]
+    expected = sum(w.expected_seconds for w in works)
+    in_process = small_in_process and small_run(expected, batch_seconds)
     hook = progress_hook.get()
     total = len(works)
     done = 0
@@ -325,11 +341,11 @@ def execute(
     queue = list(batches)
     limit = max(2, 2 * workers)
 
-    def finish(future, batch: list[SeriesWork]) -> None:
+    def finish(result: Callable[[], BatchOutcome], batch: list[SeriesWork]) -> None:
         nonlocal done
         found: tuple[SourceProblem, ...] = ()
         try:
-            outcome: BatchOutcome = future.result()
+            outcome: BatchOutcome = result()
             outs = list(outcome.outcomes)
             found = outcome.problems
             timings["read"] += outcome.read_seconds
@@ -360,13 +376,18 @@ def execute(
         if hook is not None:
             hook(done, total, "series")
 
+    if in_process:
+        for batch_options, batch in queue:
+            args = (spec, WorkBatch(batch), batch_options)
+            finish(lambda args=args: run_batch_task(*args), batch)
+        queue = []
     while queue or pending:
         while queue and len(pending) < limit:
             batch_options, batch = queue.pop(0)
             # One opaque value: Prefect need not walk a thousand works looking for futures.
             pending[run_batch_task.submit(spec, WorkBatch(batch), batch_options)] = batch
         future = next(as_completed(list(pending)))
-        finish(future, pending.pop(future))
+        finish(future.result, pending.pop(future))
     return results, timings, len(batches)
 
 

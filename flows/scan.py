@@ -32,6 +32,7 @@ from changekind.flows.pipeline import (
     nothing_to_do,
     plan_reach,
     plan_works,
+    small_run,
     start_workers,
     summarize,
 )
@@ -52,6 +53,7 @@ from changekind.flows.steps import (
     write_report_task,
 )
 from changekind.tasks import persist
+from changekind.tasks.batch import WARM_SECONDS
 from changekind.tasks.errors import ChangekindError, ConfigError, RunBusyError
 from changekind.tasks.fetch import ColumnMap, SourceProblem, open_source, survey_source
 from changekind.tasks.labels import check_label_columns, read_labels
@@ -151,12 +153,16 @@ def _locked_run(
     origin: Mapping[str, object] | None = None,
 ) -> RunSummary:
     """The run, once it holds the database (see :mod:`changekind.tasks.runlock`)."""
-    starting = start_workers(options.workers)  # worker imports overlap the planning
     closed = close_stale_runs_task(db, run_id)
     for stale in closed:
         logger.warning("run %s had been left 'running' (killed?); recorded as abandoned", stale)
     survey = survey_source(spec)
     ids = list(series) if series else survey.series_ids
+    # Worker imports overlap the planning, unless a scan's fleet is small even if
+    # every series is warm (pipeline.small_run): then no worker is started at all.
+    # Backfills and refits, long runs of cold fits, always use the task runner.
+    in_process = kind == "scan" and small_run(len(ids) * WARM_SECONDS, options.batch_seconds)
+    starting = [] if in_process else start_workers(options.workers)
     problems: list[SourceProblem] = list(survey.problems)
     notes: list[str] = []
     if closed:
@@ -230,6 +236,7 @@ def _locked_run(
                 reach=reach,
                 workers=options.workers,
                 batch_seconds=options.batch_seconds,
+                small_in_process=kind == "scan",
                 logger=logger,
                 before_write=lock.check,
                 problems=problems,

@@ -13,7 +13,6 @@ from __future__ import annotations
 from collections.abc import Sequence
 
 import numpy as np
-from scipy.signal import lfilter
 
 from changekind.tasks.types import FittedModel
 
@@ -66,6 +65,10 @@ def linear_filter(b: np.ndarray, a: np.ndarray, x: np.ndarray) -> np.ndarray:
     takes a slow general route."""
     if len(a) == 1:
         return np.convolve(x, np.asarray(b, dtype=float) / a[0])[: len(x)]
+    # Imported here, as everywhere in tasks/: scipy.signal costs about 0.7 s of
+    # start-up that a command which filters nothing (a scan with nothing new) skips.
+    from scipy.signal import lfilter
+
     return lfilter(b, a, x)
 
 
@@ -82,6 +85,8 @@ def psi_weights(model: FittedModel, n: int) -> np.ndarray:
     ar, ma = polynomials(model)
     impulse = np.zeros(n)
     impulse[0] = 1.0
+    from scipy.signal import lfilter  # here: see linear_filter
+
     return lfilter(ma, ar, impulse)
 
 

@@ -33,6 +33,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.special import ndtri
 
+from changekind.tasks.effects import EFFECTS
 from changekind.tasks.types import ResidualTail
 
 ALLOWANCE = 0.2
@@ -243,7 +244,7 @@ residuals clipped at this many sigma (Huber's clipping of residuals, common
 practice in robust regression): one huge residual then cannot pass for a shift,
 while a real shift, which moves many residuals by a few sigma, loses little."""
 
-SPREAD_TYPES = ("LS", "TC")
+SPREAD_TYPES = tuple(kind for kind, effect in EFFECTS.items() if effect.clipped)
 """The effect types tested on clipped residuals when the tails are heavy."""
 
 

@@ -15,8 +15,6 @@ from collections.abc import Sequence
 from dataclasses import dataclass, replace
 
 import numpy as np
-from scipy.optimize import minimize
-from scipy.signal import lfilter
 
 from changekind.tasks.arma import (
     Order,
@@ -101,16 +99,9 @@ def estimate(
     """
     y = np.asarray(y, dtype=float)
     values = y if values is None else values
-    if exact:
-        named, sigma2, llf, n_iter, converged = _exact_fit(
-            y, order, seasonal_order, trend=trend, start_params=start_params
-        )
-    else:
-        named, sigma2, llf = conditional_fit(y, order, seasonal_order, trend=trend)
-        n_iter, converged = 0, True
-    nobs = int(np.sum(~np.isnan(y)))
-    k = len(named)
-    aicc = -2 * llf + 2 * k + (2 * k * (k + 1) / max(nobs - k - 1, 1))
+    named, sigma2, llf, n_iter, converged, nobs, aicc = _fit_orders(
+        y, order, seasonal_order, trend=trend, exact=exact, start_params=start_params
+    )
     model = _to_model(
         decomp,
         order=tuple(order),  # type: ignore[arg-type]
@@ -125,6 +116,32 @@ def estimate(
         values=values,
     )
     return Estimate(model=model, llf=float(llf), n_iter=n_iter, exact=exact, n_fits=int(exact))
+
+
+def _fit_orders(
+    y: np.ndarray,
+    order: Order,
+    seasonal_order: SeasonalOrder,
+    *,
+    trend: str,
+    exact: bool,
+    start_params,
+):
+    """One estimate of given orders, exact or Hannan-Rissanen, with its AICc.
+
+    Returns ``(named params, sigma2, llf, n_iter, converged, nobs, aicc)``.
+    """
+    if exact:
+        named, sigma2, llf, n_iter, converged = _exact_fit(
+            y, order, seasonal_order, trend=trend, start_params=start_params
+        )
+    else:
+        named, sigma2, llf = conditional_fit(y, order, seasonal_order, trend=trend)
+        n_iter, converged = 0, True
+    nobs = int(np.sum(~np.isnan(y)))
+    k = len(named)
+    aicc = -2 * llf + 2 * k + (2 * k * (k + 1) / max(nobs - k - 1, 1))
+    return named, sigma2, llf, n_iter, converged, nobs, aicc
 
 
 def _exact_fit(
@@ -159,6 +176,8 @@ def _exact_fit(
         # The likelihood maximized directly (scipy's L-BFGS-B over statsmodels'
         # unconstrained parameters) rather than by ``model.fit``: fit warns on
         # most calls, and silencing warnings is not safe in threads.
+        from scipy.optimize import minimize  # here: start-up of commands that fit nothing
+
         found = minimize(
             lambda x: -model.loglike(x, transformed=False),
             model.untransform_params(start),
@@ -272,6 +291,8 @@ def conditional_fit(
     if not np.all(np.isfinite(coef)):
         raise EstimationError("non-finite estimate")
     ar, ma = _arma_polys(dict(named), order, seasonal_order)
+    from scipy.signal import lfilter  # here: start-up of commands that fit nothing
+
     e = lfilter(ar, ma, z)[p + s * P :]
     sigma2 = float(np.mean(e * e)) if e.size else 0.0
     if not sigma2 > 0:
@@ -319,18 +340,14 @@ def refit(y: np.ndarray, model: FittedModel, *, exact: bool) -> Estimate:
     """
     y = np.asarray(y, dtype=float)
     arma = [v for k, v in model.params if k not in ("const", "sigma2")]
-    if exact:
-        named, sigma2, llf, n_iter, converged = _exact_fit(
-            y, model.order, model.seasonal_order, trend=model.trend, start_params=arma or None
-        )
-    else:
-        named, sigma2, llf = conditional_fit(
-            y, model.order, model.seasonal_order, trend=model.trend
-        )
-        n_iter, converged = 0, True
-    nobs = int(np.sum(~np.isnan(y)))
-    k = len(named)
-    aicc = -2 * llf + 2 * k + (2 * k * (k + 1) / max(nobs - k - 1, 1))
+    named, sigma2, llf, n_iter, converged, nobs, aicc = _fit_orders(
+        y,
+        model.order,
+        model.seasonal_order,
+        trend=model.trend,
+        exact=exact,
+        start_params=arma or None,
+    )
     new = replace(
         model,
         params=tuple((k, round_sig(v)) for k, v in named),

@@ -22,7 +22,6 @@ from collections.abc import Sequence
 from dataclasses import dataclass, replace
 
 import numpy as np
-from scipy.fft import irfft, next_fast_len, rfft
 from scipy.special import ndtr
 
 from changekind.tasks.critical import CLIP, SPREAD_TYPES, Thresholds
@@ -150,6 +149,8 @@ def _fft_sums(
     x: np.ndarray, w: np.ndarray, H: np.ndarray, cache: dict | None = None
 ) -> tuple[np.ndarray, np.ndarray]:
     """sum_k h[k] x[T+k] and sum_k h[k]^2 w[T+k] for every T and column h of H."""
+    from scipy.fft import irfft, next_fast_len, rfft  # here: start-up of commands that test nothing
+
     n = x.size
     if cache is not None and "HF" in cache:
         size, HF, den = cache["size"], cache["HF"], cache["den"]
@@ -200,7 +201,7 @@ def _scores(taus: dict, where: np.ndarray | int) -> dict[str, np.ndarray]:
     out = {}
     for kind in EVENT_TYPES:
         t = _zero_nan(taus[kind][1][where])
-        out[kind] = 0.5 * t * t - (TC_PENALTY if kind == "TC" else 0.0)
+        out[kind] = 0.5 * t * t - (TC_PENALTY if EFFECTS[kind].decays else 0.0)
     return out
 
 
@@ -259,8 +260,9 @@ def inner_loop(
             if stacked[EVENT_TYPES.index(kind), T] < 1.0:  # won on score, not above its value
                 kind = EVENT_TYPES[int(np.argmax(stacked[:, T]))]
             omega = float(taus[kind][0][T])
-            delta = float(taus["TC"][2][T]) if kind == "TC" else None
-            h = EFFECTS["TC"].pattern(pi[: n - T], delta=delta) if kind == "TC" else pats[kind]
+            decays = EFFECTS[kind].decays
+            delta = float(taus[kind][2][T]) if decays else None
+            h = EFFECTS[kind].pattern(pi[: n - T], delta=delta) if decays else pats[kind]
             e[T:] -= omega * h[: n - T] * w[T:]
             found.append(Candidate(T, kind, delta, omega, float(taus[kind][1][T])))
             allowed[T] = False
@@ -367,14 +369,14 @@ def _bounds(limits: Thresholds, pats: dict, n: int):
     """``bound(kind, taus)``: each time's critical |t| for the type (a float when Gaussian)."""
     if not limits.heavy:
         return lambda kind, taus: limits.gaussian
-    fixed = {kind: limits.along(pats[kind], n) for kind in ("AO", "IO")}
+    fixed = {kind: limits.along(pats[kind], n) for kind in SEARCHED if not EFFECTS[kind].clipped}
     fixed["LS"] = limits.spread_along(pats["LS"], n)
     grid = np.fromiter(pats["TC"], dtype=float)
     tc = np.column_stack([limits.spread_along(pats["TC"][d], n) for d in grid])
     rows = np.arange(n)
 
     def bound(kind: str, taus: dict) -> np.ndarray:
-        if kind != "TC":
+        if not EFFECTS[kind].decays:
             return fixed[kind]
         delta = np.nan_to_num(taus["TC"][2], nan=float(grid[0]))
         return tc[rows, np.clip(np.searchsorted(grid, delta), 0, grid.size - 1)]
@@ -468,7 +470,9 @@ def weights_at(
     else:
         delta = max(DELTA_GRID, key=lambda d: abs(tc_tau(d)))
     taus["TC"] = tc_tau(delta)
-    scores = {k: 0.5 * taus[k] ** 2 - (TC_PENALTY if k == "TC" else 0.0) for k in EVENT_TYPES}
+    scores = {
+        k: 0.5 * taus[k] ** 2 - (TC_PENALTY if EFFECTS[k].decays else 0.0) for k in EVENT_TYPES
+    }
     top = max(scores.values())
     raw = {k: math.exp(v - top) for k, v in scores.items()}
     total = sum(raw.values())

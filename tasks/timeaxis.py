@@ -53,6 +53,7 @@ refused, because ``05/03/2030`` is the 5th of March in some places and the
 
 from __future__ import annotations
 
+import functools
 import math
 import re
 from dataclasses import dataclass
@@ -108,20 +109,37 @@ def _read_one(value: Any) -> Instant | str:
         number = float(value)
         return number if math.isfinite(number) else "is not a finite number"
     if isinstance(value, str):
-        text = value.strip()
-        if text.lower() in _MISSING_TEXT:
-            return "is missing"
-        if _NUMBER.match(text):
-            return float(text)
-        try:
-            stamp = pd.to_datetime([text], format="ISO8601", utc=True)[0]
-        except (ValueError, OverflowError):
-            hint = " (day and month order is ambiguous)" if _SLASHED.match(text) else ""
-            return f"is not {ISO_EXAMPLE}{hint}"
-    elif isinstance(value, datetime | date | np.datetime64):
+        return _read_text(value)
+    if isinstance(value, datetime | date | np.datetime64):
         stamp = pd.Timestamp(value)
     else:
         return f"is a {type(value).__name__}, not a time"
+    return _utc_ns(stamp)
+
+
+@functools.lru_cache(maxsize=4096)
+def _read_text(value: str) -> Instant | str:
+    """One time given as text (see :func:`_read_one`), remembered.
+
+    A warm scan reads the same watermarks and event times again for every
+    series (some 10,000 per scan); pandas' parser takes about 0.4 ms each.
+    The results (floats, Timestamps, phrases) are immutable, so sharing them
+    is safe.
+    """
+    text = value.strip()
+    if text.lower() in _MISSING_TEXT:
+        return "is missing"
+    if _NUMBER.match(text):
+        return float(text)
+    try:
+        stamp = pd.to_datetime([text], format="ISO8601", utc=True)[0]
+    except (ValueError, OverflowError):
+        hint = " (day and month order is ambiguous)" if _SLASHED.match(text) else ""
+        return f"is not {ISO_EXAMPLE}{hint}"
+    return _utc_ns(stamp)
+
+
+def _utc_ns(stamp: pd.Timestamp) -> Instant | str:
     if stamp is pd.NaT:
         return "is missing"
     stamp = stamp.tz_localize("UTC") if stamp.tzinfo is None else stamp.tz_convert("UTC")
@@ -516,6 +534,10 @@ def parse_times(
         raise ConfigError(f"epoch unit {epoch_unit!r} is not one of {list(EPOCH_UNITS)}")
     if naive_zone is not None:
         check_zone(naive_zone)
+    if epoch_unit is None and naive_zone is None:
+        fast = _naive_datetimes(series_id, values)
+        if fast is not None:
+            return fast
     raw = pd.Series(values).reset_index(drop=True)
 
     # Step 1: missing stamps.
@@ -575,6 +597,39 @@ def parse_times(
     elif naive_zone is not None and texts is not None:
         parsed, texts = _declare_zone(series_id, text, naive_zone)
     return _stamps(series_id, parsed, texts)
+
+
+_NS_PER = {"s": 10**9, "ms": 10**6, "us": 10**3, "ns": 1}
+
+
+def _naive_datetimes(series_id: str, values: Any) -> Stamps | None:
+    """Naive datetime64 stamps without a missing one, as the steps below would make
+    them (UTC, no labels), without their pandas round trips; None for anything else.
+
+    What every warm read of a Parquet or database source holds: 0.05 ms a series
+    instead of 0.6 ms (10,000 series a scan).
+    """
+    if isinstance(values, pd.Series | pd.Index):
+        if not isinstance(values.dtype, np.dtype) or values.dtype.kind != "M":
+            return None
+        array = values.to_numpy()
+    elif isinstance(values, np.ndarray) and values.dtype.kind == "M":
+        array = values
+    else:
+        return None
+    if np.isnat(array).any():
+        return None  # refused below, with the message
+    unit, count = np.datetime_data(array.dtype)
+    if unit not in _NS_PER or count != 1:
+        return None
+    ticks, factor = array.view("i8"), _NS_PER[unit]
+    if factor > 1:
+        # Nanoseconds hold +-(2**63 - 1); nearer the edge, the steps below decide.
+        edge = (2**63 - 1) // factor
+        if ticks.size and (int(ticks.min()) <= -edge or int(ticks.max()) >= edge):
+            return None
+        return Stamps(TimeAxis(series_id, "datetime", None), ticks * factor, None)
+    return Stamps(TimeAxis(series_id, "datetime", None), ticks.copy(), None)
 
 
 def _stamps(series_id: str, parsed: pd.Series, texts: tuple[str, ...] | None) -> Stamps:

@@ -11,8 +11,6 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from scipy.sparse import coo_matrix
-from scipy.sparse.csgraph import connected_components
 from scipy.special import gammainc
 
 from changekind.tasks.errors import ConfigError
@@ -261,6 +259,10 @@ def _groups(
     core = (n_near >= rule.min_series - 1) & (tail <= rule.core_alpha)
     # Step 3c: components of core events.
     both = core[i] & core[j]
+    # Imported here: scipy.sparse is start-up that a run with no events to group skips.
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+
     graph = coo_matrix((np.ones(int(both.sum())), (i[both], j[both])), shape=(n, n))
     _, component = connected_components(graph, directed=False)
     group = np.where(core, component, -1)

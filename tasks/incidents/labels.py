@@ -10,7 +10,6 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from scipy.stats import hypergeom
 
 from changekind.tasks.errors import ConfigError
 from changekind.tasks.incidents.inputs import fleet_labels
@@ -96,6 +95,8 @@ def label_shares(
     if not tested:
         return ()
     k_, n_, K_, N_ = (np.array([t[i] for t in tested], dtype=np.int64) for i in (2, 3, 4, 5))
+    from scipy.stats import hypergeom  # here: scipy.stats is seconds of start-up
+
     p = np.clip(hypergeom.sf(k_ - 1, N_, K_, n_), 0.0, 1.0)
     # Step 3
     m = p.size

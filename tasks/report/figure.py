@@ -12,14 +12,12 @@ from __future__ import annotations
 import textwrap
 from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
-from matplotlib import dates as mdates
-from matplotlib.axes import Axes
-from matplotlib.figure import Figure
 
+from changekind.tasks.effects import EFFECTS, UNKNOWN
 from changekind.tasks.errors import SeriesError
 from changekind.tasks.report.axis import (
     TimeKind,
@@ -44,6 +42,10 @@ from changekind.tasks.report.style import (
 from changekind.tasks.report.views import Verdict
 from changekind.tasks.report.words import axis_label, describe_event, type_name, verdict_line
 from changekind.tasks.types import EVENT_TYPES, Event, FittedModel
+
+if TYPE_CHECKING:  # matplotlib is imported where a figure is drawn (0.4 s of start-up)
+    from matplotlib.axes import Axes
+    from matplotlib.figure import Figure
 
 __all__ = ["FIGURE_DPI", "FIGURE_SIZE", "PANELS", "event_figure"]
 
@@ -132,6 +134,8 @@ def event_figure(
     """
     placed = _place(event, timestamps, values, model)  # Step 1
 
+    from matplotlib.figure import Figure
+
     fig = Figure(figsize=FIGURE_SIZE, dpi=dpi, layout="constrained", facecolor=PAPER)
     grid = fig.add_gridspec(2, 2, width_ratios=(2.3, 1.0), height_ratios=(2.2, 1.0))
     ax_obs = fig.add_subplot(grid[0, 0], label=PANELS[0])
@@ -186,7 +190,7 @@ def _observed_words(event: Event) -> str:
     """What the top line shows: the raw series, or the window series a windowed event is in."""
     if event.window_start is None:
         return "observed"
-    return "window spread" if event.event_type == "VC" else "window median"
+    return "window spread" if EFFECTS.get(event.event_type, UNKNOWN).in_spread else "window median"
 
 
 def _draw_series(
@@ -301,6 +305,8 @@ def _draw_effect(ax: Axes, event: Event, placed: _Placed, unit: str | None) -> N
 
 def _format_time_axis(ax: Axes, kind: TimeKind, event: Event) -> None:
     if kind == "datetime":
+        from matplotlib import dates as mdates
+
         # minticks 3: with the default 5, some spans (3 points over 5 days) warn.
         locator = mdates.AutoDateLocator(minticks=3, maxticks=8)
         ax.xaxis.set_major_locator(locator)

@@ -47,6 +47,7 @@ import resource
 import shutil
 import signal
 import socket
+import statistics
 import subprocess
 import sys
 import tempfile
@@ -59,7 +60,8 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
-from scipy.signal import lfilter
+
+from changekind.tasks.simulate import arma_filter
 
 MINUTE_START = pd.Timestamp("2031-03-01 00:00")
 BACKFILL_START = pd.Timestamp("2031-05-01 00:00")
@@ -85,7 +87,7 @@ def fleet_values(
     noise = rng.normal(size=(n, points + 200))
     y = np.empty((n, points + 200))
     for i in range(n):  # lfilter per row: each series has its own phi
-        y[i] = lfilter([1.0], [1.0, -phi[i]], noise[i])
+        y[i] = arma_filter(noise[i], ar=(phi[i],))
     y = y[:, 200:] + rng.uniform(20.0, 100.0, size=(n, 1))
     last = points if events_before is None else events_before
     lo, hi = last // 5, last - max(5, last // 20)
@@ -265,7 +267,7 @@ def run_child(
 ) -> dict:
     out = Path(tempfile.mkstemp(suffix=".json", dir=args.workdir)[1])
     cmd = [
-        sys.executable,
+        args.python,
         "-m",
         "tests.benchmarks.bench_fleet",
         "run-flow",
@@ -286,7 +288,7 @@ def run_child(
     server_cpu0, busy0 = _tree_cpu(args.server_pid), _machine_busy()
     t0 = time.perf_counter()
     # The child imports this module as tests.benchmarks.bench_fleet: run it from the root.
-    proc = subprocess.Popen(cmd, env=env, cwd=ROOT, start_new_session=True)
+    proc = subprocess.Popen(cmd, env=env, cwd=code_root(args.python), start_new_session=True)
     sampler = Sampler(proc.pid)
     try:
         code = proc.wait(timeout=args.run_timeout)
@@ -310,6 +312,13 @@ def run_child(
         machine_cpu_avail_s=wall * (os.cpu_count() or 1),
     )
     return report
+
+
+def code_root(python: str) -> Path:
+    """The checkout whose code an interpreter runs: ROOT, or the parent of its .venv."""
+    if python == sys.executable:
+        return ROOT
+    return Path(python).absolute().parents[2]
 
 
 def free_port() -> int:
@@ -425,34 +434,63 @@ def part_warm(args: argparse.Namespace, env: dict[str, str], rng: np.random.Gene
     n, hist, new = args.series, args.history, args.new
     root = args.workdir / "warm"
     source = root / "source"
-    source.mkdir(parents=True)
-    ids = series_ids(n)
-    t0 = time.perf_counter()
-    # One AR(1) path per series: the history, then the new hour that continues it.
-    values = fleet_values(rng, n, hist + new, events_before=hist)
-    inject_new_events(rng, values, new)
-    stamps = pd.date_range(MINUTE_START, periods=hist + new, freq="min")
-    rows = write_part(source / "part-0.parquet", ids, stamps[:hist], values[:, :hist])
-    print(
-        f"\nwarm-scan data: {n} series x {hist} minute points = {rows:,} rows "
-        f"({time.perf_counter() - t0:.1f} s to build)"
-    )
     base_db = root / "after-cold.db"
-    cold = run_child("scan", source, f"sqlite:///{base_db}", args.cold_runner, args, env)
-    print_run(f"cold scan: {n} series x {hist} points", cold, n, args.workers)
-
-    # The new hour arrives as one more file, as an hourly export job writes it.
-    write_part(source / "part-1.parquet", ids, stamps[hist:], values[:, hist:])
-    del values
-    warm_runs = {}
-    for runner in args.runners:
-        db = root / f"warm-{runner}.db"
-        shutil.copyfile(base_db, db)
-        warm_runs[runner] = run_child("scan", source, f"sqlite:///{db}", runner, args, env)
-        print_run(
-            f"warm scan: {n} series, {new} new points each", warm_runs[runner], n, args.workers
+    stamp = root / "prepared.json"
+    shape = {"series": n, "history": hist, "new": new, "seed": args.seed}
+    cold = None
+    if args.reuse and stamp.exists() and json.loads(stamp.read_text()) == shape:
+        # --reuse: the data and the after-cold database of an earlier run with
+        # the same shape; only the warm scans run again.
+        print(f"\nwarm-scan data and after-cold database reused from {root} ({shape})")
+    else:
+        if root.exists():
+            shutil.rmtree(root)
+        source.mkdir(parents=True)
+        ids = series_ids(n)
+        t0 = time.perf_counter()
+        # One AR(1) path per series: the history, then the new hour that continues it.
+        values = fleet_values(rng, n, hist + new, events_before=hist)
+        inject_new_events(rng, values, new)
+        stamps = pd.date_range(MINUTE_START, periods=hist + new, freq="min")
+        rows = write_part(source / "part-0.parquet", ids, stamps[:hist], values[:, :hist])
+        print(
+            f"\nwarm-scan data: {n} series x {hist} minute points = {rows:,} rows "
+            f"({time.perf_counter() - t0:.1f} s to build)"
         )
-    args.results["warm"] = {"cold": cold, **warm_runs}
+        cold = run_child("scan", source, f"sqlite:///{base_db}", args.cold_runner, args, env)
+        print_run(f"cold scan: {n} series x {hist} points", cold, n, args.workers)
+
+        # The new hour arrives as one more file, as an hourly export job writes it.
+        write_part(source / "part-1.parquet", ids, stamps[hist:], values[:, hist:])
+        del values
+        stamp.write_text(json.dumps(shape))
+    warm_runs = {}
+    walls: dict[str, list[float]] = {}
+    reps: dict[str, list[dict]] = {}
+    for i in range(1, args.repeat + 1):
+        for runner in args.runners:
+            db = root / f"warm-{runner}.db"
+            shutil.copyfile(base_db, db)
+            rep = run_child("scan", source, f"sqlite:///{db}", runner, args, env)
+            walls.setdefault(runner, []).append(rep["process_wall_s"])
+            reps.setdefault(runner, []).append(rep)
+            print_run(
+                f"warm scan {i}/{args.repeat}: {n} series, {new} new points each",
+                rep,
+                n,
+                args.workers,
+            )
+    for runner, runs in reps.items():
+        # The run of median wall time (upper median) stands for the runner below.
+        warm_runs[runner] = sorted(runs, key=lambda r: r["process_wall_s"])[len(runs) // 2]
+    if args.repeat > 1:
+        print(f"\n### warm scan wall times ({args.python})\n")
+        print("| runner | runs (s) | median (s) | best (s) |")
+        print("|---|---|---|---|")
+        for runner, times in walls.items():
+            runs = ", ".join(f"{t:.1f}" for t in times)
+            print(f"| {runner} | {runs} | {statistics.median(times):.1f} | {min(times):.1f} |")
+    args.results["warm"] = {**({"cold": cold} if cold else {}), **warm_runs}
     if args.profile_sample:
         engine_profile(f"sqlite:///{base_db}", source, args.profile_sample)
 
@@ -463,7 +501,8 @@ def engine_profile(db: str, source: Path, sample: int) -> None:
     Planned from the database as it was after the cold scan; batches of 200
     through :func:`changekind.tasks.batch.run_batch`, one process, serially.
     """
-    from changekind.flows.pipeline import plan_works, stored_state
+    from changekind.flows.pipeline import plan_works
+    from changekind.flows.records import stored_state
     from changekind.flows.settings import RunOptions
     from changekind.tasks.batch import run_batch
     from changekind.tasks.fetch import list_series, open_source
@@ -699,6 +738,7 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--chunk", default="7D")
     parser.add_argument("--warmup", default="7D")
     parser.add_argument("--workers", type=int, default=os.cpu_count() or 1)
+    parser.add_argument("--repeat", type=int, default=1, help="warm scan: runs per runner")
     parser.add_argument("--run-timeout", type=float, default=5400, help="seconds per flow run")
     parser.add_argument("--api-url", help="an existing Prefect API (default: start one here)")
     parser.add_argument(
@@ -707,6 +747,18 @@ def main(argv: list[str] | None = None) -> None:
         "postgresql+asyncpg://postgres@127.0.0.1:5432/prefect (default: SQLite in the work dir)",
     )
     parser.add_argument("--workdir", type=Path, help="keep data here (default: a temp dir)")
+    parser.add_argument(
+        "--reuse",
+        action="store_true",
+        help="warm scan: reuse the data and after-cold database kept in --workdir by an "
+        "earlier run of the same --series/--history/--new/--seed (skips the cold scan)",
+    )
+    parser.add_argument(
+        "--python",
+        default=sys.executable,
+        help="interpreter that runs the flows (e.g. another checkout's .venv/bin/python, "
+        "to compare old and new code in one sitting)",
+    )
     parser.add_argument("--seed", type=int, default=2031)
     parser.add_argument("--json", type=Path, help="also write every figure here as JSON")
     args = parser.parse_args(argv)

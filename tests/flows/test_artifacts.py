@@ -32,7 +32,7 @@ from changekind.flows.scan import scan_flow
 from changekind.flows.settings import RunOptions
 from changekind.tasks import persist
 from changekind.tasks.types import EVENT_NAMES, EVENT_TYPES
-from tests.flows.fleet import make_fleet, write_source
+from tests.flows.fleet import found_in, make_fleet, write_source
 from tests.tasks.test_report import check_page, png_size
 
 runner = CliRunner()
@@ -86,12 +86,9 @@ def scanned(prefect_server, tmp_path_factory):
 
 
 def _matches(rows: pd.DataFrame, truth: pd.DataFrame) -> int:
-    hits = 0
-    for t in truth.itertuples():
-        mine = rows[rows["series"] == t.series_id]
-        near = (pd.to_datetime(mine["time"]) - t.event_time).abs() <= pd.Timedelta("2h")
-        hits += int((mine[near]["type"] == t.event_type).any())
-    return hits
+    """:func:`found_in` over an artifact's table (columns series, time, type)."""
+    names = {"series": "series_id", "time": "event_time", "type": "event_type"}
+    return found_in(rows.rename(columns=names), truth)
 
 
 # --------------------------------------------------------------------------- artifacts

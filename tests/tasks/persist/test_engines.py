@@ -87,3 +87,42 @@ def test_aware_times_in_other_zones_are_stored_as_utc(engine: sa.Engine) -> None
     plus_two = timezone(timedelta(hours=2))
     write_events(engine, "run-1", [make_event()], at=datetime(2024, 3, 1, 14, 0, tzinfo=plus_two))
     assert event_row(engine, "edge-latency", "2024-03-01T10:00:00Z")["first_seen"] == T0
+
+
+def test_script_head_is_alembics_head() -> None:
+    """The head read from the scripts' text is the one Alembic's script directory finds
+    (Alembic itself is the reference)."""
+    from alembic.script import ScriptDirectory
+
+    from changekind.tasks.persist.engines import _alembic_config, script_head
+
+    assert script_head() == ScriptDirectory.from_config(_alembic_config()).get_current_head()
+
+
+def test_a_database_at_head_is_not_migrated_again_without_alembic(tmp_path: Path) -> None:
+    """Upgrading a database already at head imports no Alembic (0.4 s of start-up);
+    one a revision behind is upgraded by Alembic as before."""
+    from tests.fresh import run_python
+
+    url = f"sqlite:///{tmp_path / 'head.db'}"
+    persist.migrate(url)
+    code = (
+        "import sys\n"
+        "from changekind.tasks import persist\n"
+        f"persist.migrate({url!r})\n"
+        "print('alembic' in sys.modules)\n"
+    )
+    done = run_python(code)
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.strip() == "False"
+
+    behind = f"sqlite:///{tmp_path / 'behind.db'}"
+    persist.migrate(behind, revision="0009")
+    with persist.connect(behind).connect() as conn:
+        assert conn.exec_driver_sql("SELECT version_num FROM changekind_schema_version").all() == [
+            ("0009",)
+        ]
+    persist.migrate(behind)
+    with persist.connect(behind).connect() as conn:
+        stored = conn.exec_driver_sql("SELECT version_num FROM changekind_schema_version").all()
+    assert stored == [(persist.engines.script_head(),)]
