@@ -70,7 +70,6 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from scipy.signal import lfilter
 
 from changekind.tasks.effects import EFFECTS, SEARCHED
 from changekind.tasks.errors import ConfigError
@@ -99,6 +98,8 @@ def arma_filter(
     Coefficients as statsmodels reports them (``ar.L1``, ``ma.L1``); the
     process starts from rest, so callers drop a burn-in.
     """
+    from scipy.signal import lfilter  # here: importing the demo's names costs no scipy.signal
+
     return lfilter(
         np.r_[1.0, np.asarray(ma, dtype=float)], np.r_[1.0, -np.asarray(ar, dtype=float)], shocks
     )
@@ -174,7 +175,7 @@ class ModelSpec:
         """The first ``n`` MA(infinity) weights ``psi_0 = 1, psi_1, ...`` (integration included)."""
         pulse = np.zeros(n)
         pulse[0] = 1.0
-        return lfilter(self.ma_poly, self.ar_poly, pulse)
+        return arma_filter(pulse, ar=-self.ar_poly[1:], ma=self.ma_poly[1:])
 
 
 def _daily_profile() -> tuple[float, ...]:

@@ -33,6 +33,7 @@ from changekind.flows.settings import RunOptions
 from changekind.tasks import persist
 from changekind.tasks.types import EVENT_NAMES, EVENT_TYPES
 from tests.flows.fleet import found_in, make_fleet, write_source
+from tests.flows.prefect_api import artifacts_of
 from tests.tasks.test_report import check_page, png_size
 
 runner = CliRunner()
@@ -49,17 +50,6 @@ def _publish_in_a_flow(summary, db):
         return str(flow_run.id)
 
     return publish()
-
-
-def _artifacts_of(flow_run_id: str) -> dict[str, object]:
-    from prefect.client.orchestration import get_client
-    from prefect.client.schemas.filters import ArtifactFilter, ArtifactFilterFlowRunId
-
-    with get_client(sync_client=True) as client:
-        found = client.read_artifacts(
-            artifact_filter=ArtifactFilter(flow_run_id=ArtifactFilterFlowRunId(any_=[flow_run_id]))
-        )
-    return {a.key: a for a in found}
 
 
 @pytest.fixture(scope="module")
@@ -109,7 +99,7 @@ def test_artifact_keys_follow_prefects_rule():
 def test_scan_artifacts_hold_the_counts_and_the_runs_events(scanned):
     db = scanned["db"]
     for summary, publish_id, events_then in scanned["runs"]:
-        artifacts = _artifacts_of(publish_id)
+        artifacts = artifacts_of(publish_id)
         assert set(artifacts) == {"changekind-scan-summary", "changekind-scan-events"}
         markdown = artifacts["changekind-scan-summary"].data
         assert markdown == run_markdown(
@@ -150,7 +140,7 @@ def test_scan_artifacts_hold_the_counts_and_the_runs_events(scanned):
         assert (rows["t"].abs().diff().dropna() <= 0).all()  # strongest first
     # The first scan's table holds the injected events (reference: the truth).
     first_rows = pd.DataFrame(
-        json.loads(_artifacts_of(scanned["runs"][0][1])["changekind-scan-events"].data)
+        json.loads(artifacts_of(scanned["runs"][0][1])["changekind-scan-events"].data)
     )
     assert _matches(first_rows, scanned["truth"]) >= len(scanned["truth"]) - 1
 

@@ -36,6 +36,7 @@ from changekind.flows.demo import score_against_truth
 from changekind.tasks import persist
 from changekind.tasks.report import picture_name
 from tests.flows.fleet import found_in, make_fleet, write_source
+from tests.flows.prefect_api import artifacts_of
 from tests.tasks.test_report import check_page, png_size
 
 runner = CliRunner()
@@ -65,18 +66,6 @@ FIRST_SCAN_UNTIL = "2026-06-19"  # the small fleet runs 2026-06-01 .. 2026-06-21
 
 def _invoke(*args: str):
     return runner.invoke(app, list(args))
-
-
-def _artifacts_of(flow_run_id: str) -> dict[str, object]:
-    """The artifacts of one flow run, by key, read back from the Prefect API."""
-    from prefect.client.orchestration import get_client
-    from prefect.client.schemas.filters import ArtifactFilter, ArtifactFilterFlowRunId
-
-    with get_client(sync_client=True) as client:
-        found = client.read_artifacts(
-            artifact_filter=ArtifactFilter(flow_run_id=ArtifactFilterFlowRunId(any_=[flow_run_id]))
-        )
-    return {a.key: a for a in found}
 
 
 @pytest.fixture(scope="module")
@@ -317,7 +306,7 @@ def test_backfill_then_refit(prefect_server, small_fleet, tmp_path):
     record = next(r for r in persist.table_snapshot(db)["scan_runs"] if r[0] == repeat["run_id"])
     assert (record[4], record[5], record[6]) == ("completed", 6, 6)  # status, total, ok
     assert said in record[-1]
-    markdown = _artifacts_of(repeat["run_id"])["changekind-backfill-summary"].data
+    markdown = artifacts_of(repeat["run_id"])["changekind-backfill-summary"].data
     assert "| total | 6 |" in markdown and "| up to date (nothing to analyse) | 6 |" in markdown
     assert said in markdown
     assert persist.read_events(db).equals(stored)  # and nothing changed
