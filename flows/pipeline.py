@@ -32,7 +32,7 @@ from changekind.tasks.batch import (
     SeriesWork,
     WorkBatch,
     plan_batches,
-    warm_context,
+    warm_contexts,
 )
 from changekind.tasks.fetch import SourceProblem, SourceSpec
 from changekind.tasks.types import REPORTED_TYPES, Event, FittedModel
@@ -174,6 +174,13 @@ def plan_works(
     """
     works = []
     end_bound = time_key(end, time_kind)
+    # Each warm series' filter memory, computed for all of them at once.
+    filters = {
+        sid: models[sid]
+        for sid in series_ids
+        if sid in models and sid not in rewind and watermarks.get(sid) is not None
+    }
+    contexts = dict(zip(filters, warm_contexts(list(filters.values()), options), strict=True))
     for sid in series_ids:
         model = models.get(sid)
         mark = watermarks.get(sid)
@@ -198,7 +205,7 @@ def plan_works(
                     if e.status == "provisional"
                 ]
             )
-            lags = warm_context(model, options) - 1
+            lags = contexts[sid] - 1
             if time_kind == "numeric":
                 start = first - lags * (model.step_seconds or 1.0)
             else:
