@@ -245,7 +245,9 @@ def detect_events(
             clean = e - design(found, pi, n) @ np.array([c.omega for c in found]) * w
             # Pulses found at the Gaussian value may be the tail itself; shifts are not.
             pulses = sum(1 for c in found if not EFFECTS[c.kind].lasting)
-            tail = fit_tail(clean[w > 0], sigma, raw=e[w > 0], removed=pulses)
+            tail = fit_tail(
+                clean[w > 0], sigma, raw=e[w > 0], removed=pulses, searched=crit.gaussian
+            )
             if given is None:
                 crit = default(tail)
         spikes = [c.position for c in found if EFFECTS[c.kind].pulse_like]

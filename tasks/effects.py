@@ -72,7 +72,15 @@ class Effect:
     signature (lag 0 first) under a model with pi weights ``pi``.
     ``decays`` says whether the type carries a decay rate (TC); ``lasting``
     whether it leaves the series somewhere else for good (a cached model then
-    describes a series that is no longer there).
+    describes a series that is no longer there); ``pulse_like`` whether it is a
+    one-time shock (AO, IO); ``needs_psi`` whether its path is the model's psi
+    weights (IO); ``single_point`` whether it touches one point only (AO: an
+    extreme window is one, a pulse before the series start is gone);
+    ``clipped`` whether, spread over many points, it is tested on clipped
+    residuals with the spread critical value when the tails are heavy (LS,
+    TC); ``in_spread`` whether it lives in the window spreads, not the series
+    (VC, windowed mode only); ``spread_twin`` the type this one is reported as
+    when found in the window spreads (an LS of the log spread is a VC).
     """
 
     kind: str
@@ -82,6 +90,11 @@ class Effect:
     decays: bool = False
     lasting: bool = False
     pulse_like: bool = False
+    needs_psi: bool = False
+    single_point: bool = False
+    clipped: bool = False
+    in_spread: bool = False
+    spread_twin: str | None = None
 
     def path(
         self, length: int, *, delta: float | None = None, psi: np.ndarray | None = None
@@ -103,6 +116,7 @@ EFFECTS: dict[str, Effect] = {
         lambda n, d, psi: _pulse(n),
         lambda pi, d: pi,
         pulse_like=True,
+        single_point=True,
     ),
     "LS": Effect(
         "LS",
@@ -110,6 +124,8 @@ EFFECTS: dict[str, Effect] = {
         lambda n, d, psi: np.ones(n),
         lambda pi, d: np.cumsum(pi),
         lasting=True,
+        clipped=True,
+        spread_twin="VC",
     ),
     "TC": Effect(
         "TC",
@@ -117,6 +133,7 @@ EFFECTS: dict[str, Effect] = {
         lambda n, d, psi: _decay(d) ** np.arange(n),
         _tc_residual,
         decays=True,
+        clipped=True,
     ),
     "IO": Effect(
         "IO",
@@ -124,6 +141,7 @@ EFFECTS: dict[str, Effect] = {
         _io_path,
         lambda pi, d: _pulse(pi.size),
         pulse_like=True,
+        needs_psi=True,
     ),
     "VC": Effect(
         "VC",
@@ -131,9 +149,14 @@ EFFECTS: dict[str, Effect] = {
         lambda n, d, psi: np.ones(n),  # drawn as a step in the window spreads
         None,
         lasting=True,
+        in_spread=True,
     ),
 }
 """Every effect type by its code."""
+
+UNKNOWN = Effect("?", "unknown type", lambda n, d, psi: np.zeros(n), None)
+"""Stands in for a type the registry does not know (a stored event of a newer
+version): every flag False, so a step asking about one treats it as plain."""
 
 SEARCHED: tuple[str, ...] = ("AO", "LS", "TC", "IO")
 """The types the residual search estimates at every time point."""

@@ -99,16 +99,9 @@ def estimate(
     """
     y = np.asarray(y, dtype=float)
     values = y if values is None else values
-    if exact:
-        named, sigma2, llf, n_iter, converged = _exact_fit(
-            y, order, seasonal_order, trend=trend, start_params=start_params
-        )
-    else:
-        named, sigma2, llf = conditional_fit(y, order, seasonal_order, trend=trend)
-        n_iter, converged = 0, True
-    nobs = int(np.sum(~np.isnan(y)))
-    k = len(named)
-    aicc = -2 * llf + 2 * k + (2 * k * (k + 1) / max(nobs - k - 1, 1))
+    named, sigma2, llf, n_iter, converged, nobs, aicc = _fit_orders(
+        y, order, seasonal_order, trend=trend, exact=exact, start_params=start_params
+    )
     model = _to_model(
         decomp,
         order=tuple(order),  # type: ignore[arg-type]
@@ -123,6 +116,32 @@ def estimate(
         values=values,
     )
     return Estimate(model=model, llf=float(llf), n_iter=n_iter, exact=exact, n_fits=int(exact))
+
+
+def _fit_orders(
+    y: np.ndarray,
+    order: Order,
+    seasonal_order: SeasonalOrder,
+    *,
+    trend: str,
+    exact: bool,
+    start_params,
+):
+    """One estimate of given orders, exact or Hannan-Rissanen, with its AICc.
+
+    Returns ``(named params, sigma2, llf, n_iter, converged, nobs, aicc)``.
+    """
+    if exact:
+        named, sigma2, llf, n_iter, converged = _exact_fit(
+            y, order, seasonal_order, trend=trend, start_params=start_params
+        )
+    else:
+        named, sigma2, llf = conditional_fit(y, order, seasonal_order, trend=trend)
+        n_iter, converged = 0, True
+    nobs = int(np.sum(~np.isnan(y)))
+    k = len(named)
+    aicc = -2 * llf + 2 * k + (2 * k * (k + 1) / max(nobs - k - 1, 1))
+    return named, sigma2, llf, n_iter, converged, nobs, aicc
 
 
 def _exact_fit(
@@ -321,18 +340,14 @@ def refit(y: np.ndarray, model: FittedModel, *, exact: bool) -> Estimate:
     """
     y = np.asarray(y, dtype=float)
     arma = [v for k, v in model.params if k not in ("const", "sigma2")]
-    if exact:
-        named, sigma2, llf, n_iter, converged = _exact_fit(
-            y, model.order, model.seasonal_order, trend=model.trend, start_params=arma or None
-        )
-    else:
-        named, sigma2, llf = conditional_fit(
-            y, model.order, model.seasonal_order, trend=model.trend
-        )
-        n_iter, converged = 0, True
-    nobs = int(np.sum(~np.isnan(y)))
-    k = len(named)
-    aicc = -2 * llf + 2 * k + (2 * k * (k + 1) / max(nobs - k - 1, 1))
+    named, sigma2, llf, n_iter, converged, nobs, aicc = _fit_orders(
+        y,
+        model.order,
+        model.seasonal_order,
+        trend=model.trend,
+        exact=exact,
+        start_params=arma or None,
+    )
     new = replace(
         model,
         params=tuple((k, round_sig(v)) for k, v in named),

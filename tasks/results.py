@@ -57,9 +57,10 @@ TC_GONE = 0.05
 
 def _duration(series: RegularSeries, kind: str, after: int, delta: float | None) -> float | None:
     """How long an LS has lasted (to the last analysed point) or a TC lasts (to 5 %)."""
-    if kind == "LS":
+    effect = EFFECTS[kind]
+    if effect.lasting:
         steps = float(after + 1)
-    elif kind == "TC" and delta is not None and 0 < delta < 1:
+    elif effect.decays and delta is not None and 0 < delta < 1:
         steps = math.log(TC_GONE) / math.log(delta)
     else:
         return None

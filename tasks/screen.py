@@ -192,9 +192,9 @@ def known_effects(model: FittedModel, series: RegularSeries, known: Sequence[Eve
             continue
         lags = np.arange(first + k, n + k)
         effect = EFFECTS[ev.event_type]
-        if ev.event_type == "AO" and lags[0] > 0:
+        if effect.single_point and lags[0] > 0:
             continue  # a pulse before the series starts
-        if ev.event_type == "IO" and (psi is None or lags.max() >= psi.size):
+        if effect.needs_psi and (psi is None or lags.max() >= psi.size):
             psi = psi_weights(model, int(max(lags.max() + 1, n)))
         shape = effect.path(int(lags.max()) + 1, delta=ev.decay, psi=psi)[lags]
         total[first:] += ev.effect * shape

@@ -8,7 +8,8 @@ the outcomes as the flow's writes do (models, watermarks, events by time,
 retracted provisional events removed).  Nothing is stored but what a run
 would store.
 
-The fleet: AR(1) minute series (phi 0.6) around a level of 50 with Gaussian
+The fleet (:func:`changekind.tasks.simulate.ar1_fleet`): AR(1) minute series (phi 0.6)
+around a level of 50 with Gaussian
 innovations or Student-t(3) innovations scaled to unit variance (t_3 / sqrt(3)),
 the heavy tails of latency metrics; ``shifts`` adds one level shift of a given
 size (in innovation sigma, the engine's noise sigma) to some series at a
@@ -23,17 +24,15 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
-from scipy.signal import lfilter
 
 from changekind.flows.pipeline import plan_works
 from changekind.tasks.batch import AnalysisOptions, run_batch
 from changekind.tasks.fetch import open_source
+from changekind.tasks.simulate import AR1_FLEET_START, AR1_FLEET_STEP, ar1_fleet, probe_id
 from changekind.tasks.types import Event
 
-START = pd.Timestamp("2031-05-04")
-PHI = 0.6
-LEVEL = 50.0
-STEP = pd.Timedelta(minutes=1)
+START = AR1_FLEET_START
+STEP = AR1_FLEET_STEP
 
 
 def simulate_fleet(
@@ -46,30 +45,13 @@ def simulate_fleet(
     shifts: dict[int, tuple[int, float]] | None = None,
     rng: np.random.Generator,
 ) -> pd.DataFrame:
-    """Long frame (series_id, timestamp, value): ``history`` points then ``scans`` hours.
-
-    ``heavy[i]`` gives series i Student-t(3) innovations scaled to unit
-    variance (else Gaussian); ``shifts`` maps a series number to (position,
-    size in innovation sigma) of a level shift.
-    """
+    """Long frame (series_id, timestamp, value): ``history`` points then ``scans`` hours
+    (:func:`changekind.tasks.simulate.ar1_fleet`)."""
     n = history + scans * per_scan
-    stamps = pd.date_range(START, periods=n, freq=STEP)
-    parts = []
-    for i in range(n_series):
-        if heavy is not None and heavy[i]:
-            shocks = rng.standard_t(3, size=n + 200) / np.sqrt(3.0)
-        else:
-            shocks = rng.normal(size=n + 200)
-        y = LEVEL + lfilter([1.0], [1.0, -PHI], shocks)[200:]
-        if shifts and i in shifts:
-            at, size = shifts[i]
-            y[at:] += size
-        parts.append(pd.DataFrame({"series_id": sid(i), "timestamp": stamps, "value": y}))
-    return pd.concat(parts, ignore_index=True)
+    return ar1_fleet(n_series, n=n, heavy=heavy, shifts=shifts, rng=rng).data
 
 
-def sid(i: int) -> str:
-    return f"rack-{i // 50:02d}/probe-{i % 50:02d}"
+sid = probe_id
 
 
 @dataclass

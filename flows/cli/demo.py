@@ -34,8 +34,6 @@ from changekind.flows.cli.report import write_stored_report
 from changekind.flows.cli.runs import run_fleet_flow
 from changekind.flows.demo import (
     DAY_FILE_GLOB,
-    LABEL_COLUMNS,
-    make_demo_fleet,
     score_against_truth,
     score_rollout_incident,
     write_day_files,
@@ -44,6 +42,7 @@ from changekind.flows.settings import RunOptions
 from changekind.tasks import incident_store, persist
 from changekind.tasks.errors import ConfigError
 from changekind.tasks.fetch import open_source
+from changekind.tasks.simulate import LABEL_COLUMNS, make_demo_fleet
 from changekind.tasks.types import EVENT_TYPES, REPORTED_TYPES, format_duration
 
 if TYPE_CHECKING:

@@ -260,8 +260,9 @@ def detect(
         Path,
         typer.Argument(
             metavar="INPUT",
-            help="CSV or Parquet: columns series_id,timestamp,value (many series) or "
-            "timestamp,value (one series, named after the file).",
+            help="CSV or Parquet file, or a folder of them, as scan --source reads it: "
+            "columns series_id,timestamp,value (many series) or timestamp,value (one "
+            "series, named after the file).",
             show_default=False,
         ),
     ],
@@ -334,7 +335,7 @@ def detect(
     except SourceError as exc:
         raise fail_usage(str(exc)) from None
     err = err_console()
-    for problem in problems:  # skipped files and rows of a folder, as scan records them
+    for problem in problems:  # skipped files, rows and cells, as scan records them
         err.print(f"changekind: {problem.describe()}", markup=False)
     outcomes = _run_with_progress(
         items, periods=options.periods, critical=options.critical, label="analysing", worker=worker
@@ -352,7 +353,7 @@ def detect(
         for outcome in outcomes:
             if outcome.result is not None:
                 print_result(console, outcome.result)
-    if report_problems(outcomes):
+    if report_problems(outcomes) or problems:
         raise typer.Exit(EXIT_SERIES_FAILED)
 
 

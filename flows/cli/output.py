@@ -19,6 +19,7 @@ from rich.measure import Measurement
 from rich.table import Table
 
 from changekind.flows.cli.app import err_console
+from changekind.tasks.effects import EFFECTS, UNKNOWN
 from changekind.tasks.persist import EVENT_COLUMNS, EVENT_EXTRA_COLUMNS
 from changekind.tasks.types import DetectionResult, Event, format_duration, number
 
@@ -350,7 +351,9 @@ def seconds_text(value: float) -> str:
 def print_summary(console: Console, summary: RunSummary, *, wall: float | None = None) -> None:
     """A run's summary for people: counts, new events by type, strongest events, failures."""
     # Variance changes come from windowed runs only: shown when there are some.
-    by_type = ", ".join(f"{k} {n}" for k, n in summary.by_type if k != "VC" or n)
+    by_type = ", ".join(
+        f"{k} {n}" for k, n in summary.by_type if not EFFECTS.get(k, UNKNOWN).in_spread or n
+    )
     took = seconds_text(summary.seconds)
     if wall is not None:
         took += f" ({seconds_text(wall)} with Prefect start-up)"

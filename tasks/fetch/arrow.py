@@ -17,7 +17,7 @@ import pyarrow.dataset as ds
 import pyarrow.parquet as pq
 
 from changekind.tasks.errors import SourceError
-from changekind.tasks.fetch.files import _data_files
+from changekind.tasks.fetch.files import _data_files, series_name
 from changekind.tasks.fetch.times import _Axis, _Group, _time_kind_of_text
 from changekind.tasks.fetch.values import (
     _OPTION,
@@ -29,6 +29,7 @@ from changekind.tasks.fetch.values import (
     SourceProblem,
     SourceSpec,
     TimeKind,
+    missing_column,
 )
 
 # ---------------------------------------------------------------------------
@@ -64,19 +65,44 @@ class _ArrowReader:
         self._ragged: dict[tuple[str, int], str] = {}
         self.dataset, self.files = self._open(check=check)
         names = self.dataset.schema.names
-        for role in LONG_COLUMNS:
+        self.one_series = self._one_series(names)
+        for role in self._roles():
             name = getattr(cols, role)
             if name not in names:
-                raise SourceError(
-                    f"{spec.describe} has no column {name!r} (columns: {', '.join(names)}); "
-                    f"pass {_OPTION[role]} to name the {role.replace('_', ' ')} column"
-                )
+                if role == "series_id" and not Path(spec.location).is_dir():
+                    raise SourceError(
+                        f"{spec.describe} has wrong columns ({', '.join(names)}); give "
+                        f"{', '.join(LONG_COLUMNS)} (long form, many series) or "
+                        f"{cols.timestamp}, {cols.value} (one series, named after the file), "
+                        "or pass --series-column, --timestamp-column, --value-column to name them"
+                    )
+                raise missing_column(spec.describe, name, role, names)
         self.types = {
-            role: self.dataset.schema.field(getattr(cols, role)).type for role in LONG_COLUMNS
+            role: self.dataset.schema.field(getattr(cols, role)).type for role in self._roles()
         }
+        if self.one_series is not None:
+            self.types["series_id"] = pa.string()
         self._check_types()
         if check:
             self._check_files()
+
+    def _one_series(self, names: list[str]) -> str | None:
+        """The id of the one series of a single file without a series id column, or None.
+
+        A file with the timestamp and value columns but no (unmapped) ``series_id``
+        column holds one series, named after the file (``latency.csv`` -> ``latency``).
+        """
+        cols = self.spec.columns
+        root = Path(self.spec.location)
+        if root.is_dir() or cols.series_id != "series_id" or cols.series_id in names:
+            return None
+        if cols.timestamp in names and cols.value in names:
+            return series_name(root)
+        return None
+
+    def _roles(self) -> tuple[str, ...]:
+        """The columns read from the data (a one-series file has no series id column)."""
+        return LONG_COLUMNS[1:] if self.one_series is not None else LONG_COLUMNS
 
     def _format(self) -> ds.FileFormat:
         spec = self.spec
@@ -185,6 +211,13 @@ class _ArrowReader:
                     files, format=fmt, partitioning=partitioning, partition_base_dir=str(root)
                 )
             else:
+                if root.stat().st_size == 0:
+                    raise SourceError(
+                        f"{spec.describe} is empty; it needs a header row "
+                        f"({', '.join(spec.columns.source_names())}, or "
+                        f"{spec.columns.timestamp}, {spec.columns.value} for one series) "
+                        "and data rows"
+                    )
                 files = [str(root)]
                 dataset = ds.dataset(str(root), format=fmt)
         except (pa.ArrowInvalid, pa.ArrowTypeError, pa.ArrowNotImplementedError) as exc:
@@ -203,8 +236,9 @@ class _ArrowReader:
                 f"a number ({detail}); fix those rows or pass {_OPTION['value']} to choose the "
                 "right column"
             )
+        name = "Parquet" if spec.kind == "parquet" else "CSV"
         return SourceError(
-            f"{spec.describe} cannot be read as {spec.kind}: {message}; check that the files "
+            f"{spec.describe} is not readable as {name}: {message}; check that the files "
             "are complete and of that format"
         )
 
@@ -220,7 +254,7 @@ class _ArrowReader:
             raise self._unreadable(exc) from None
         for path, schema in schemas:
             present = set(schema.names) | partition_names
-            for role in LONG_COLUMNS:
+            for role in self._roles():
                 name = getattr(spec.columns, role)
                 if name not in present:
                     raise SourceError(
@@ -278,6 +312,8 @@ class _ArrowReader:
         return _time_kind_of_text(pd.Series(sample.to_pylist(), dtype=object), self.spec)
 
     def _id_expr(self) -> ds.Expression:
+        if self.one_series is not None:
+            return ds.scalar(self.one_series)
         field = ds.field(self.spec.columns.series_id)
         dtype = self.types["series_id"]
         if pa.types.is_string(dtype) or pa.types.is_large_string(dtype):
@@ -285,6 +321,8 @@ class _ArrowReader:
         return field.cast(pa.string())
 
     def _id_filter(self, ids: Sequence[str]) -> ds.Expression:
+        if self.one_series is not None:
+            return ds.scalar(self.one_series in ids)
         dtype = self.types["series_id"]
         field = ds.field(self.spec.columns.series_id)
         # The range guard beside isin lets Parquet min/max statistics skip files

@@ -38,8 +38,10 @@ def _infer_kind(location: str) -> SourceKind:
         if kind is not None:
             return kind
         raise SourceError(
-            f"source file {location!r} is neither .parquet nor .csv; convert it or rename it "
-            "after its format"
+            f"source file {location!r} is neither .parquet nor .csv (unknown file type "
+            f"{path.suffix or '(no suffix)'!r}); give a file ending in "
+            f"{', '.join(PARQUET_SUFFIXES + CSV_SUFFIXES)} (convert it or rename it after its "
+            "format) or a folder of them"
         )
     names = [f.lower() for f in _data_files(path, PARQUET_SUFFIXES + CSV_SUFFIXES)]
     has_parquet = any(f.endswith(PARQUET_SUFFIXES) for f in names)
@@ -67,6 +69,16 @@ def file_format(path: Path) -> FileKind | None:
     if name.endswith(CSV_SUFFIXES):
         return "csv"
     return None
+
+
+def series_name(path: Path) -> str:
+    """The series id a one-series file stands for: its name without the format's suffix
+    (``write-latency.csv.gz`` -> ``write-latency``)."""
+    name = path.name
+    for suffix in sorted(CSV_SUFFIXES + PARQUET_SUFFIXES, key=len, reverse=True):
+        if name.lower().endswith(suffix):
+            return name[: len(name) - len(suffix)] or name
+    return path.stem
 
 
 def _data_files(root: Path, suffixes: tuple[str, ...]) -> list[str]:

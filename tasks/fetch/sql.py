@@ -24,6 +24,7 @@ from changekind.tasks.fetch.values import (
     SourceSpec,
     TimeKind,
     _is_number,
+    missing_column,
 )
 from changekind.tasks.persist.engines import our_driver
 
@@ -137,10 +138,7 @@ class _SqlReader:
         for role in LONG_COLUMNS:
             name = getattr(cols, role)
             if name not in available:
-                raise SourceError(
-                    f"{spec.describe} has no column {name!r} (columns: {', '.join(available)}); "
-                    f"pass {_OPTION[role]} to name the {role.replace('_', ' ')} column"
-                )
+                raise missing_column(spec.describe, name, role, available)
         return table
 
     def _col(self, role: str) -> sa.ColumnElement[Any]:

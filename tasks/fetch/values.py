@@ -6,7 +6,7 @@ from __future__ import annotations
 
 import math
 import os
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from datetime import date, datetime, timedelta
 from decimal import Decimal
@@ -15,7 +15,7 @@ from typing import Literal, TypeVar
 import numpy as np
 import pandas as pd
 
-from changekind.tasks.errors import ConfigError, mask_url
+from changekind.tasks.errors import ConfigError, SourceError, mask_url
 from changekind.tasks.timeaxis import ISO_EXAMPLE, parse_instant
 
 SourceKind = Literal["parquet", "csv", "sql"]
@@ -50,6 +50,14 @@ _OPTION = {
     "timestamp": "--timestamp-column",
     "value": "--value-column",
 }
+
+
+def missing_column(describe: str, name: str, role: str, present: Sequence[str]) -> SourceError:
+    """The error of a source without the column mapped to ``role`` (every reader's wording)."""
+    return SourceError(
+        f"{describe} has no column {name!r} (columns: {', '.join(present)}); "
+        f"pass {_OPTION[role]} to name the {role.replace('_', ' ')} column"
+    )
 
 
 # ---------------------------------------------------------------------------

@@ -23,24 +23,20 @@ __all__ = ["REACH_FLOOR", "effect_curve", "effect_reach", "unit_path"]
 REACH_FLOOR = 0.05
 """An effect has faded once its path stays below this share of its largest value."""
 
-_DRAWN_AS = {"VC": "LS"}
-"""Types drawn with another type's shape: a variance change is a step in the spreads."""
-
 
 def unit_path(event: Event, length: int, model: FittedModel | None = None) -> np.ndarray:
     """The path of a unit effect of the event's type over ``length`` points from the event.
 
     An IO needs the model's psi weights; without a model it is drawn as its
-    shock alone (a pulse), which the picture's words say.
+    shock alone (the psi weights of white noise, a pulse), which the picture's
+    words say.  A variance change is drawn as its registry path, a step in the
+    spreads.
     """
-    kind = _DRAWN_AS.get(event.event_type, event.event_type)
+    effect = EFFECTS[event.event_type]
     psi = None
-    if kind == "IO":
-        if model is None:
-            kind = "AO"
-        else:
-            psi = psi_weights(model, length)
-    return EFFECTS[kind].path(length, delta=event.decay, psi=psi)
+    if effect.needs_psi:
+        psi = psi_weights(model, length) if model is not None else np.eye(1, length)[0]
+    return effect.path(length, delta=event.decay, psi=psi)
 
 
 def effect_reach(event: Event, model: FittedModel | None = None, *, horizon: int) -> int | None:

@@ -23,6 +23,7 @@ import sqlalchemy as sa
 from sqlalchemy.exc import DBAPIError
 
 from changekind.tasks import persist
+from changekind.tasks.effects import EFFECTS, UNKNOWN
 from changekind.tasks.errors import ConfigError, ModelError, SeriesError, SourceError, mask_url
 from changekind.tasks.fetch import SourceSpec, read_series
 from changekind.tasks.report.files import PICTURE_PATTERN, write_report
@@ -218,6 +219,8 @@ def _write_incidents(
         out, found, series, labels=labels, states=states, facts=list(facts)
     )
     return len(found), page
+
+
 def _check_sqlite_file(db: str) -> None:
     """A report never creates a database: a SQLite file that is not there is an error."""
     try:
@@ -311,7 +314,7 @@ def windowed_values(event: Event, timestamps, values, window: str):
         summary = summarize_windows(event.series_id, timestamps, values, window)
     except SeriesError:
         return timestamps, values
-    series = summary.spread if event.event_type == "VC" else summary.median
+    series = summary.spread if EFFECTS.get(event.event_type, UNKNOWN).in_spread else summary.median
     return pd.Series(summary.index), pd.Series(series)
 
 

@@ -17,6 +17,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import pandas as pd
 
+from changekind.tasks.effects import EFFECTS, UNKNOWN
 from changekind.tasks.errors import SeriesError
 from changekind.tasks.report.axis import (
     TimeKind,
@@ -189,7 +190,7 @@ def _observed_words(event: Event) -> str:
     """What the top line shows: the raw series, or the window series a windowed event is in."""
     if event.window_start is None:
         return "observed"
-    return "window spread" if event.event_type == "VC" else "window median"
+    return "window spread" if EFFECTS.get(event.event_type, UNKNOWN).in_spread else "window median"
 
 
 def _draw_series(

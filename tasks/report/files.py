@@ -82,13 +82,7 @@ def write_report(
     verdicts = {v.key: v.verdict for v in views if v.verdict is not None}
     # Step 1: order and names (a bad sort is refused before anything is written).
     summary = summarize_events(events, sort=sort, verdicts=verdicts)
-    out = Path(out_dir)
-    try:
-        out.mkdir(parents=True, exist_ok=True)
-        for old in out.glob(PICTURE_PATTERN):
-            old.unlink()
-    except OSError as exc:
-        raise ConfigError(f"cannot write the report to {out}: {exc.strerror or exc}") from None
+    out = fresh_folder(out_dir, PICTURE_PATTERN)
     pictures: dict[EventKey, str] = {}
     notes: dict[EventKey, str] = {}
     # Step 2: pictures.
@@ -133,6 +127,19 @@ def write_report(
         labels=labels,
     )
     return write_page(out / INDEX_NAME, page)
+
+
+def fresh_folder(out_dir: str | Path, pattern: str) -> Path:
+    """The report folder, made if missing, without the earlier pictures matching
+    ``pattern``; a ConfigError naming the folder if it cannot be written."""
+    out = Path(out_dir)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+        for old in out.glob(pattern):
+            old.unlink()
+    except OSError as exc:
+        raise ConfigError(f"cannot write the report to {out}: {exc.strerror or exc}") from None
+    return out
 
 
 def write_page(path: Path, page: str) -> Path:

@@ -24,7 +24,7 @@ import pandas as pd
 
 from changekind.tasks.errors import ConfigError
 from changekind.tasks.incidents import Incident, IncidentMember
-from changekind.tasks.report.files import write_page
+from changekind.tasks.report.files import fresh_folder, write_page
 from changekind.tasks.report.style import (
     FALLBACK_STYLE,
     GRID_COLOUR,
@@ -235,13 +235,7 @@ def write_incident_report(
 
     Earlier incident pictures in ``out_dir`` are removed first.
     """
-    out = Path(out_dir)
-    try:
-        out.mkdir(parents=True, exist_ok=True)
-        for old in out.glob(INCIDENT_PICTURE_PATTERN):
-            old.unlink()
-    except OSError as exc:
-        raise ConfigError(f"cannot write the report to {out}: {exc.strerror or exc}") from None
+    out = fresh_folder(out_dir, INCIDENT_PICTURE_PATTERN)
     pictures: dict[str, str] = {}
     notes: dict[str, str] = {}
     for k, inc in enumerate(incidents, start=1):

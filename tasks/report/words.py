@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import math
 
+from changekind.tasks.effects import EFFECTS, UNKNOWN
 from changekind.tasks.report.views import Verdict
 from changekind.tasks.types import EVENT_NAMES, Event, FittedModel, format_duration, number
 
@@ -81,6 +82,6 @@ def describe_event(event: Event, model: FittedModel | None = None) -> list[str]:
     lines.append(f"model {event.model}")
     if model is not None and model.spec() != event.model:
         lines.append(f"curve drawn with the series' current model {model.spec()}")
-    if event.event_type == "IO" and model is None:
+    if EFFECTS.get(event.event_type, UNKNOWN).needs_psi and model is None:
         lines.append("no stored model: the IO is drawn as its shock alone")
     return lines

@@ -17,7 +17,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 import pandas as pd
 
-from changekind.tasks.effects import SEARCHED
+from changekind.tasks.effects import EFFECTS, SEARCHED, UNKNOWN
 from changekind.tasks.errors import SeriesError
 from changekind.tasks.results import local_level
 from changekind.tasks.types import DetectionResult, Event, FittedModel, format_duration
@@ -262,7 +262,7 @@ def detect_windowed(
         dropped: dict[str, int] = {}
         early = 0
         for ev in spread.events:
-            if ev.event_type != "LS":
+            if EFFECTS[ev.event_type].spread_twin is None:
                 dropped[ev.event_type] = dropped.get(ev.event_type, 0) + 1
             elif before[ev.position] < MIN_BEFORE_VC:
                 early += 1
@@ -411,7 +411,7 @@ def extreme_windows(
         else:
             windows, allowance = float(np.count_nonzero(ok)), ALLOWANCE
         crit = extremes_critical(z[ok], count, windows, allowance)
-    weights = tuple((k, 1.0 if k == "AO" else 0.0) for k in SEARCHED)
+    weights = tuple((k, 1.0 if EFFECTS[k].single_point else 0.0) for k in SEARCHED)
     out = []
     for pos in np.flatnonzero(np.abs(z) >= crit):
         pos = int(pos)
@@ -508,7 +508,9 @@ def screen_windowed(
     changes = [
         e
         for e in known
-        if e.event_type == "VC" and e.effect_pct is not None and e.effect_pct > -100.0
+        if EFFECTS.get(e.event_type, UNKNOWN).in_spread
+        and e.effect_pct is not None
+        and e.effect_pct > -100.0
     ]
     ratio = math.prod(1.0 + ev.effect_pct / 100.0 for ev in changes)
     level_model = replace(model, sigma2=model.sigma2 * ratio**2) if ratio != 1.0 else model
@@ -520,7 +522,7 @@ def screen_windowed(
         level_model,
         level_series,
         n_new,
-        known=[e for e in known if e.event_type != "VC"],
+        known=[e for e in known if not EFFECTS.get(e.event_type, UNKNOWN).in_spread],
         critical=critical,
         false_budget=family_budget(false_budget),
     )
@@ -547,7 +549,7 @@ def screen_windowed(
             events += [
                 _windowed(_as_variance_change(ev), width)
                 for ev in spread.events
-                if ev.event_type == "LS"
+                if EFFECTS[ev.event_type].spread_twin is not None
             ]
     old = set(np.flatnonzero(~new).tolist())
     spikes = extreme_windows(
@@ -564,7 +566,7 @@ def screen_windowed(
 def _one_per_window(events: Sequence[Event]) -> tuple[Event, ...]:
     """Events in window order, at most one per window (a level event before a VC)."""
     chosen: dict[pd.Timestamp, Event] = {}
-    for ev in sorted(events, key=lambda e: e.event_type == "VC"):
+    for ev in sorted(events, key=lambda e: EFFECTS[e.event_type].in_spread):
         chosen.setdefault(pd.Timestamp(ev.event_time), ev)
     return tuple(chosen[t] for t in sorted(chosen))
 
@@ -623,7 +625,7 @@ def _as_variance_change(ev: Event) -> Event:
     omega, se_log = ev.effect, ev.se
     before = math.exp(ev.level) if math.isfinite(ev.level) else float("nan")
     ratio = math.exp(omega)
-    weights = tuple(("VC" if k == "LS" else k, w) for k, w in ev.type_weights)
+    weights = tuple((EFFECTS[k].spread_twin or k, w) for k, w in ev.type_weights)
     return replace(
         ev,
         event_type="VC",

@@ -39,8 +39,8 @@ from statsmodels.tools.sm_exceptions import ConvergenceWarning
 from statsmodels.tsa.statespace.sarimax import SARIMAX
 from threadpoolctl import threadpool_limits
 
-from tests.benchmarks.simulate import (
-    EVENT_TYPES,
+from changekind.tasks.simulate import STUDY_TYPES as EVENT_TYPES
+from changekind.tasks.simulate import (
     TC_DELTA,
     ModelSpec,
     SimulatedSeries,

@@ -30,10 +30,10 @@ from collections.abc import Callable
 
 import numpy as np
 import pandas as pd
-from scipy.signal import lfilter
 
 from changekind.tasks.decompose import regularize
 from changekind.tasks.detect import analyse_series, screen_new_points
+from changekind.tasks.simulate import arma_filter
 
 STAGES = {
     "decomposition": ("decompose",),
@@ -52,7 +52,7 @@ Case = tuple[pd.DatetimeIndex, np.ndarray]
 
 
 def ar1(rng: np.random.Generator, n: int, phi: float = 0.6) -> np.ndarray:
-    return lfilter([1.0], [1.0, -phi], rng.normal(size=n))
+    return arma_filter(rng.normal(size=n), ar=(phi,))
 
 
 def simulated_480(rng: np.random.Generator, n: int = 480) -> Case:

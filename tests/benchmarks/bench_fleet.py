@@ -60,7 +60,8 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
-from scipy.signal import lfilter
+
+from changekind.tasks.simulate import arma_filter
 
 MINUTE_START = pd.Timestamp("2031-03-01 00:00")
 BACKFILL_START = pd.Timestamp("2031-05-01 00:00")
@@ -86,7 +87,7 @@ def fleet_values(
     noise = rng.normal(size=(n, points + 200))
     y = np.empty((n, points + 200))
     for i in range(n):  # lfilter per row: each series has its own phi
-        y[i] = lfilter([1.0], [1.0, -phi[i]], noise[i])
+        y[i] = arma_filter(noise[i], ar=(phi[i],))
     y = y[:, 200:] + rng.uniform(20.0, 100.0, size=(n, 1))
     last = points if events_before is None else events_before
     lo, hi = last // 5, last - max(5, last // 20)

@@ -25,7 +25,7 @@ timings are noisy.  The warm scan these costs are compared with (52.6 s for
 10,000 series) is quoted from tests/benchmarks/RESULTS.md, not measured here.
 
 Time errors (``--time-errors``).  The engine on simulated series with one
-injected event each (tests/benchmarks/simulate.py: ar1, arma11, arima011 and
+injected event each (changekind.tasks.simulate: ar1, arma11, arima011 and
 seasonal models, 3, 4 and 5 sigma, ``--replications`` per cell): for the
 detection nearest the injected time (within 12 samples), the distance in
 samples, by detected type.  These figures chose :data:`TIME_TOLERANCE`.
@@ -215,8 +215,8 @@ def grouping_cost(n_series: int, n_events: int, repeats: int, seed: int) -> None
 
 
 def _time_error(key):
+    from changekind.tasks.simulate import make_series
     from tests.benchmarks.montecarlo import _run_engine
-    from tests.benchmarks.simulate import make_series
 
     model, event_type, size, replicate, base_seed = key
     series = make_series(model, event_type, size, replicate, base_seed=base_seed)
@@ -228,8 +228,8 @@ def _time_error(key):
 
 
 def time_errors(replications: int, jobs: int, base_seed: int | None) -> None:
-    from tests.benchmarks.simulate import BASE_SEED, MODEL_NAMES, SIZES
-    from tests.benchmarks.simulate import EVENT_TYPES as SIM_TYPES
+    from changekind.tasks.simulate import BASE_SEED, MODEL_NAMES, SIZES
+    from changekind.tasks.simulate import STUDY_TYPES as SIM_TYPES
 
     base_seed = BASE_SEED if base_seed is None else base_seed
 

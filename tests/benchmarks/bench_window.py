@@ -35,7 +35,8 @@ import time
 
 import numpy as np
 import pandas as pd
-from scipy.signal import lfilter
+
+from changekind.tasks.simulate import arma_filter
 
 DAY = 86_400
 START = pd.Timestamp("2026-03-02")
@@ -58,7 +59,7 @@ def make_series(seed: int, days: int) -> tuple[pd.DatetimeIndex, np.ndarray]:
     when = injected(days)
     shocks = rng.normal(size=n + 200)
     shocks[200:] *= np.where(stamps >= when["VC"], 2.0, 1.0)
-    y = 50.0 + lfilter([1.0], [1.0, -0.5], shocks)[200:]
+    y = 50.0 + arma_filter(shocks, ar=(0.5,))[200:]
     y[stamps >= when["LS"]] += 3.0
     after = stamps >= when["TC"]
     y[after] += 6.0 * 0.5 ** (np.arange(after.sum()) / 300.0)
@@ -91,11 +92,7 @@ def child(mode: str, days: int, seed: int, window: str) -> dict:
     when_all = list(injected(days).values())
     for kind, when in injected(days).items():
         home = when.floor(tolerance) if mode != "raw" else when
-        near = [
-            e.event_type
-            for e in events
-            if abs(pd.Timestamp(e.event_time) - home) <= tolerance
-        ]
+        near = [e.event_type for e in events if abs(pd.Timestamp(e.event_time) - home) <= tolerance]
         found_types[kind] = near
     extra = sum(
         all(abs(pd.Timestamp(e.event_time) - w.floor(tolerance)) > tolerance for w in when_all)
@@ -119,8 +116,17 @@ def child(mode: str, days: int, seed: int, window: str) -> dict:
 
 def run(mode: str, days: int, seed: int, window: str, timeout: float) -> dict:
     cmd = [
-        sys.executable, "-m", "tests.benchmarks.bench_window", "--child", mode,
-        "--days", str(days), "--seed", str(seed), "--window", window,
+        sys.executable,
+        "-m",
+        "tests.benchmarks.bench_window",
+        "--child",
+        mode,
+        "--days",
+        str(days),
+        "--seed",
+        str(seed),
+        "--window",
+        window,
     ]
     try:
         done = subprocess.run(cmd, capture_output=True, text=True, timeout=timeout, check=False)
@@ -156,17 +162,26 @@ def main() -> None:
     for mode, days in plan:
         print(f"running {mode} on {days} day(s)...", file=sys.stderr, flush=True)
         rows.append(run(mode, days, args.seed, args.window, args.timeout))
-    print(f"\nSeries of 1 s samples; window {args.window}; seed {args.seed}; "
-          f"{os.cpu_count()} core(s); each run in a fresh process.\n")
-    print("| mode | days | raw points | points modelled | wall (s) | CPU (s) | peak RSS (MB) | "
-          "RSS growth in call (MB) | events | away from the injected | LS | TC | VC |")
+    print(
+        f"\nSeries of 1 s samples; window {args.window}; seed {args.seed}; "
+        f"{os.cpu_count()} core(s); each run in a fresh process.\n"
+    )
+    print(
+        "| mode | days | raw points | points modelled | wall (s) | CPU (s) | peak RSS (MB) | "
+        "RSS growth in call (MB) | events | away from the injected | LS | TC | VC |"
+    )
     print("|---|---|---|---|---|---|---|---|---|---|---|---|---|")
     for row in rows:
         if "timeout" in row or "error" in row:
-            what = (f"stopped after {row['timeout']:.0f} s" if "timeout" in row
-                    else f"failed: {row['error']}")
-            print(f"| {row['mode']} | {row['days']} | {row['days'] * DAY} | - | {what} "
-                  "| - | - | - | - | - | - | - | - |")
+            what = (
+                f"stopped after {row['timeout']:.0f} s"
+                if "timeout" in row
+                else f"failed: {row['error']}"
+            )
+            print(
+                f"| {row['mode']} | {row['days']} | {row['days'] * DAY} | - | {what} "
+                "| - | - | - | - | - | - | - | - |"
+            )
             continue
         types = ", ".join(f"{k} {v}" for k, v in sorted(row["by_type"].items())) or "none"
         print(

@@ -79,10 +79,8 @@ if __package__ in (None, ""):  # run as a script: make the repository root impor
 
     sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 
-from tests.benchmarks.baselines import band_events, esd_events, oracle_fit, oracle_type
-from tests.benchmarks.simulate import (
+from changekind.tasks.simulate import (
     BASE_SEED,
-    EVENT_TYPES,
     INNOVATIONS,
     MODEL_NAMES,
     MODELS,
@@ -92,6 +90,8 @@ from tests.benchmarks.simulate import (
     SimulatedSeries,
     study_keys,
 )
+from changekind.tasks.simulate import STUDY_TYPES as EVENT_TYPES
+from tests.benchmarks.baselines import band_events, esd_events, oracle_fit, oracle_type
 
 TOLERANCE = 2
 ENGINE = "engine"

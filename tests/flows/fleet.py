@@ -1,39 +1,32 @@
-"""A small invented fleet for the flow tests: hourly disks with known events."""
+"""A small invented fleet for the flow tests: hourly disks with known events
+(simulated by :func:`changekind.tasks.simulate.disk_fleet`)."""
 
 from __future__ import annotations
 
 from pathlib import Path
 
-import numpy as np
 import pandas as pd
-from scipy.signal import lfilter
+
+from changekind.tasks.simulate import disk_fleet
 
 
 def make_fleet(
     n_series: int = 8, *, hours: int = 24 * 21, seed: int = 0
 ) -> tuple[pd.DataFrame, pd.DataFrame]:
     """Hourly AR(1) series with known level shifts and spikes; returns (data, truth)."""
-    rng = np.random.default_rng(seed)
-    stamps = pd.date_range("2026-06-01", periods=hours, freq="h")
-    frames, truth = [], []
-    for i in range(n_series):
-        y = lfilter([1.0], [1.0, -0.5], rng.normal(size=hours)) + 40 + 3 * i
-        sid = f"shelf-{i // 4}/disk-{i % 4}"
-        if i % 3 == 0:
-            t = int(rng.integers(hours // 3, hours - 48))
-            y[t:] += 6.0
-            truth.append((sid, stamps[t], "LS"))
-        if i % 3 == 1:
-            t = int(rng.integers(48, hours - 48))
-            y[t] += 9.0
-            truth.append((sid, stamps[t], "AO"))
-        frames.append(pd.DataFrame({"series_id": sid, "timestamp": stamps, "value": y}))
-    if n_series >= 3:  # a series that cannot be analysed: constant
-        frames.append(
-            pd.DataFrame({"series_id": "shelf-x/stuck", "timestamp": stamps, "value": 7.0})
-        )
-    data = pd.concat(frames, ignore_index=True)
-    return data, pd.DataFrame(truth, columns=["series_id", "event_time", "event_type"])
+    fleet = disk_fleet(n_series, hours=hours, seed=seed)
+    return fleet.data, fleet.truth[["series_id", "event_time", "event_type"]]
+
+
+def found_in(events: pd.DataFrame, truth: pd.DataFrame, tolerance: str = "2h") -> int:
+    """Injected events (``truth``) with a stored event of the same type within the tolerance."""
+    hits = 0
+    for row in truth.itertuples():
+        mine = events[events.series_id == row.series_id]
+        times = pd.to_datetime(mine.event_time)
+        near = mine[(times - row.event_time).abs() <= pd.Timedelta(tolerance)]
+        hits += int((near.event_type == row.event_type).any())
+    return hits
 
 
 def write_source(data: pd.DataFrame, root: Path, *, until: str | None = None) -> Path:

@@ -1,4 +1,5 @@
-"""An invented fleet with attributes for the incident flow tests.
+"""An invented fleet with attributes for the incident flow tests
+(simulated by :func:`changekind.tasks.simulate.vault_fleet`).
 
 Hourly readings of 24 series: 4 racks (r1..r4) x 3 storage hosts x 2 metrics
 (``vault-r2-h1/commit-ms``, ``.../journal-len``), AR(1) noise around each
@@ -19,66 +20,25 @@ from __future__ import annotations
 
 from pathlib import Path
 
-import numpy as np
 import pandas as pd
-from scipy.signal import lfilter
 
-RACKS = ("r1", "r2", "r3", "r4")
-HOSTS = ("h1", "h2", "h3")
-METRICS = ("commit-ms", "journal-len")
-START = pd.Timestamp("2031-08-04")  # invented
-DAYS = 12
-ROLLOUT_AT = START + pd.Timedelta(days=8, hours=2)
-SPIKE_AT = START + pd.Timedelta(days=10, hours=13)
-SINGLES = (
-    ("vault-r1-h3/journal-len", START + pd.Timedelta(days=6, hours=9)),
-    ("vault-r4-h1/commit-ms", START + pd.Timedelta(days=11, hours=20)),
-)
+from changekind.tasks.simulate import VAULT_SINGLES as SINGLES
+from changekind.tasks.simulate import VAULT_SPIKE_AT as SPIKE_AT
+from changekind.tasks.simulate import VAULT_START as START
+from changekind.tasks.simulate import vault_fleet
+
+__all__ = ["SPIKE_AT", "START", "make_incident_fleet", "store_incident_fleet", "write_source"]
 
 
 def make_incident_fleet(seed: int = 5) -> tuple[pd.DataFrame, dict[str, object]]:
-    """(data, truth): long-form rows with ``rack`` and ``firmware``, and what was injected."""
-    rng = np.random.default_rng(seed)
-    stamps = pd.date_range(START, periods=24 * DAYS, freq="h")
-    frames = []
-    rollout, spike = set(), set()
-    upgrade = {}
-    for k, rack in enumerate(RACKS):
-        upgrade[f"vault-{rack}-h2"] = ROLLOUT_AT + pd.Timedelta(minutes=40 * k)
-    for i, (rack, host, metric) in enumerate(
-        (r, h, m) for r in RACKS for h in HOSTS for m in METRICS
-    ):
-        node = f"vault-{rack}-{host}"
-        sid = f"{node}/{metric}"
-        y = lfilter([1.0], [1.0, -0.5], rng.normal(size=len(stamps))) + 50 + 2 * i
-        firmware = np.full(len(stamps), "5.1", dtype=object)
-        if node in upgrade:
-            at = upgrade[node].floor("h")
-            t = int(np.searchsorted(stamps, at))
-            y[t:] += 8.0 * 1.15  # 8 sd of the AR(1) (sd 1.15)
-            firmware[t:] = "5.2"
-            rollout.add(sid)
-        if rack == "r3":
-            y[int(np.searchsorted(stamps, SPIKE_AT))] += 10.0 * 1.15
-            spike.add(sid)
-        for single, at in SINGLES:
-            if single == sid:
-                y[int(np.searchsorted(stamps, at))] += 10.0 * 1.15
-        frames.append(
-            pd.DataFrame(
-                {
-                    "series_id": sid,
-                    "timestamp": stamps,
-                    "value": y,
-                    "rack": rack,
-                    "firmware": firmware,
-                }
-            )
-        )
-    data = pd.concat(frames, ignore_index=True)
+    """(data, truth): long-form rows with ``rack`` and ``firmware``, and what was injected
+    (:func:`changekind.tasks.simulate.vault_fleet`)."""
+    fleet = vault_fleet(seed)
+    truth = fleet.truth
     singles = {(s, at.isoformat()) for s, at in SINGLES}
-    truth = {"rollout": rollout, "spike": spike, "singles": singles}
-    return data, truth
+    spike = set(truth.loc[truth["event_time"] == SPIKE_AT, "series_id"])
+    rollout = set(truth.loc[truth["event_type"] == "LS", "series_id"])
+    return fleet.data, {"rollout": rollout, "spike": spike, "singles": singles}
 
 
 def write_source(data: pd.DataFrame, root: Path, *, until: pd.Timestamp | None = None) -> Path:

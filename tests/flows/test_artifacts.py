@@ -32,7 +32,8 @@ from changekind.flows.scan import scan_flow
 from changekind.flows.settings import RunOptions
 from changekind.tasks import persist
 from changekind.tasks.types import EVENT_NAMES, EVENT_TYPES
-from tests.flows.fleet import make_fleet, write_source
+from tests.flows.fleet import found_in, make_fleet, write_source
+from tests.flows.prefect_api import artifacts_of
 from tests.tasks.test_report import check_page, png_size
 
 runner = CliRunner()
@@ -49,17 +50,6 @@ def _publish_in_a_flow(summary, db):
         return str(flow_run.id)
 
     return publish()
-
-
-def _artifacts_of(flow_run_id: str) -> dict[str, object]:
-    from prefect.client.orchestration import get_client
-    from prefect.client.schemas.filters import ArtifactFilter, ArtifactFilterFlowRunId
-
-    with get_client(sync_client=True) as client:
-        found = client.read_artifacts(
-            artifact_filter=ArtifactFilter(flow_run_id=ArtifactFilterFlowRunId(any_=[flow_run_id]))
-        )
-    return {a.key: a for a in found}
 
 
 @pytest.fixture(scope="module")
@@ -86,12 +76,9 @@ def scanned(prefect_server, tmp_path_factory):
 
 
 def _matches(rows: pd.DataFrame, truth: pd.DataFrame) -> int:
-    hits = 0
-    for t in truth.itertuples():
-        mine = rows[rows["series"] == t.series_id]
-        near = (pd.to_datetime(mine["time"]) - t.event_time).abs() <= pd.Timedelta("2h")
-        hits += int((mine[near]["type"] == t.event_type).any())
-    return hits
+    """:func:`found_in` over an artifact's table (columns series, time, type)."""
+    names = {"series": "series_id", "time": "event_time", "type": "event_type"}
+    return found_in(rows.rename(columns=names), truth)
 
 
 # --------------------------------------------------------------------------- artifacts
@@ -112,7 +99,7 @@ def test_artifact_keys_follow_prefects_rule():
 def test_scan_artifacts_hold_the_counts_and_the_runs_events(scanned):
     db = scanned["db"]
     for summary, publish_id, events_then in scanned["runs"]:
-        artifacts = _artifacts_of(publish_id)
+        artifacts = artifacts_of(publish_id)
         assert set(artifacts) == {"changekind-scan-summary", "changekind-scan-events"}
         markdown = artifacts["changekind-scan-summary"].data
         assert markdown == run_markdown(
@@ -153,7 +140,7 @@ def test_scan_artifacts_hold_the_counts_and_the_runs_events(scanned):
         assert (rows["t"].abs().diff().dropna() <= 0).all()  # strongest first
     # The first scan's table holds the injected events (reference: the truth).
     first_rows = pd.DataFrame(
-        json.loads(_artifacts_of(scanned["runs"][0][1])["changekind-scan-events"].data)
+        json.loads(artifacts_of(scanned["runs"][0][1])["changekind-scan-events"].data)
     )
     assert _matches(first_rows, scanned["truth"]) >= len(scanned["truth"]) - 1
 

@@ -22,14 +22,10 @@ import pytest
 from numpy.testing import assert_allclose
 from statsmodels.tsa.arima.model import ARIMA
 
-from changekind.flows.demo import (
-    EFFECT_SIGMAS,
-    TC_DECAY,
-    DemoFleet,
-    make_demo_fleet,
-    score_against_truth,
-)
+from changekind.flows.demo import score_against_truth
 from changekind.tasks.errors import ConfigError
+from changekind.tasks.simulate import DEMO_TC_DECAY as TC_DECAY
+from changekind.tasks.simulate import EFFECT_SIGMAS, DemoFleet, make_demo_fleet
 from changekind.tasks.types import Event
 
 PER_DAY = 288  # five-minute samples in a day

@@ -12,14 +12,9 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from changekind.flows.demo import (
-    NEW_FIRMWARE,
-    OLD_FIRMWARE,
-    make_demo_fleet,
-    score_rollout_incident,
-    with_labels,
-)
+from changekind.flows.demo import score_rollout_incident, with_labels
 from changekind.tasks.incidents import TIME_TOLERANCE, group_incidents
+from changekind.tasks.simulate import NEW_FIRMWARE, OLD_FIRMWARE, make_demo_fleet
 
 
 @pytest.fixture(scope="module")

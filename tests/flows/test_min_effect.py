@@ -14,11 +14,11 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import sqlalchemy as sa
-from scipy.signal import lfilter
 
 from changekind.flows.scan import scan_flow
 from changekind.flows.settings import RunOptions
 from changekind.tasks import persist
+from changekind.tasks.simulate import arma_filter
 from tests.flows.fleet import make_fleet, write_source
 
 SMALL = "shelf-9/disk-small"
@@ -30,7 +30,7 @@ def _data():
     data, truth = make_fleet(6, seed=3)
     rng = np.random.default_rng(11)
     stamps = pd.date_range("2026-06-01", periods=24 * 21, freq="h")
-    y = 50.0 + lfilter([1.0], [1.0, -0.5], rng.normal(size=stamps.size))
+    y = 50.0 + arma_filter(rng.normal(size=stamps.size), ar=(0.5,))
     y[SMALL_AT:] += SMALL_SIZE
     small = pd.DataFrame({"series_id": SMALL, "timestamp": stamps, "value": y})
     return pd.concat([data, small], ignore_index=True), truth, stamps[SMALL_AT]

@@ -22,23 +22,13 @@ from changekind.tasks.batch import AnalysisOptions, plan_batches
 from changekind.tasks.errors import ConfigError
 from changekind.tasks.types import Event
 from tests.flows.faults import subprocess_env
-from tests.flows.fleet import make_fleet, write_source
+from tests.flows.fleet import found_in, make_fleet, write_source
 
 OPTIONS = RunOptions(workers=2)
 
 
 def _events(db: str) -> pd.DataFrame:
     return persist.read_events(db).sort_values(["series_id", "event_time"]).reset_index(drop=True)
-
-
-def _matches(events: pd.DataFrame, truth: pd.DataFrame, tolerance: str = "2h") -> int:
-    hits = 0
-    for row in truth.itertuples():
-        mine = events[events.series_id == row.series_id]
-        times = pd.to_datetime(mine.event_time)
-        near = mine[(times - row.event_time).abs() <= pd.Timedelta(tolerance)]
-        hits += int((near.event_type == row.event_type).any())
-    return hits
 
 
 # -- pure planning -------------------------------------------------------------------
@@ -199,7 +189,7 @@ def test_scan_finds_events_and_a_repeated_scan_changes_nothing(prefect_server, f
     db = f"sqlite:///{tmp_path / 'scan.db'}"
     _scan_twice(db, data, source)
     events = _events(db)
-    assert _matches(events, truth) >= len(truth) - 1
+    assert found_in(events, truth) >= len(truth) - 1
     # The constant series landed in series_failures, not in a failed run.
     with persist.connect(db).connect() as conn:
         failures = conn.execute(persist.series_failures.select()).fetchall()
@@ -213,7 +203,7 @@ def test_scan_finds_events_and_a_repeated_scan_changes_nothing(prefect_server, f
 def test_repeated_scan_on_postgresql(prefect_server, fleet, pg_url):
     data, truth, source = fleet
     _scan_twice(pg_url, data, source)
-    assert _matches(_events(pg_url), truth) >= len(truth) - 1
+    assert found_in(_events(pg_url), truth) >= len(truth) - 1
 
 
 def test_overlapping_backfills_do_not_duplicate_or_lose_events(prefect_server, fleet, tmp_path):
@@ -236,7 +226,7 @@ def test_overlapping_backfills_do_not_duplicate_or_lose_events(prefect_server, f
     assert not events.duplicated(["series_id", "event_time"]).any()
     assert (pd.to_datetime(events.event_time) >= pd.Timestamp("2026-06-05")).all()
     inside = truth[truth.event_time >= pd.Timestamp("2026-06-05")]
-    assert _matches(events, inside) >= len(inside) - 1
+    assert found_in(events, inside) >= len(inside) - 1
     both()  # the same two overlapping backfills again: nothing changes
     assert persist.content_snapshot(db) == first
     whole = backfill_flow(
@@ -257,7 +247,7 @@ def test_refit_reestimates_and_keeps_events(prefect_server, fleet, tmp_path):
     after = persist.load_models(db)
     assert after["shelf-0/disk-0"].order == before["shelf-0/disk-0"].order
     assert after.keys() == before.keys()
-    assert _matches(_events(db), truth) >= len(truth) - 1
+    assert found_in(_events(db), truth) >= len(truth) - 1
 
 
 _BACKFILL = textwrap.dedent(

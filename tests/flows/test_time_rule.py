@@ -20,12 +20,12 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
-from scipy.signal import lfilter
 
 from changekind.flows.scan import scan_flow
 from changekind.flows.settings import RunOptions
 from changekind.tasks import persist
 from changekind.tasks.detect import analyse_series
+from changekind.tasks.simulate import arma_filter
 
 SID = "kiln-7/draught"
 N, COLD_UNTIL, SHIFT_AT, SPIKE_AT = 420, 360, 300, 390
@@ -34,7 +34,7 @@ OFFSET = timedelta(hours=5, minutes=30)
 
 
 def _values() -> np.ndarray:
-    y = lfilter([1.0], [1.0, -0.5], np.random.default_rng(11).normal(size=N)) + 40.0
+    y = arma_filter(np.random.default_rng(11).normal(size=N), ar=(0.5,)) + 40.0
     y[SHIFT_AT:] += 8.0
     y[SPIKE_AT] += 12.0
     return y

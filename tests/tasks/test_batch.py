@@ -20,7 +20,6 @@ import numpy as np
 import pandas as pd
 import pytest
 from numpy.testing import assert_allclose
-from scipy.signal import lfilter
 from statsmodels.tsa.arima.model import ARIMA
 
 from changekind.tasks.batch import (
@@ -32,6 +31,7 @@ from changekind.tasks.batch import (
 from changekind.tasks.decompose import regularize
 from changekind.tasks.detect import reestimate
 from changekind.tasks.fetch import open_source
+from changekind.tasks.simulate import arma_filter
 
 SID = "edge-004/node-17"
 HISTORY, NEW = 480, 60
@@ -43,7 +43,7 @@ def make_series(seed: int = 4, *, shift: bool = True) -> pd.DataFrame:
     """Invented minute latency: AR(1) (phi 0.6, sd 1) around 20, a +5 step 20 points into NEW."""
     rng = np.random.default_rng(seed)
     n = HISTORY + NEW
-    y = 20.0 + lfilter([1.0], [1.0, -0.6], rng.normal(size=n))
+    y = 20.0 + arma_filter(rng.normal(size=n), ar=(0.6,))
     if shift:
         y[SHIFT_AT:] += SHIFT
     stamps = pd.date_range("2031-03-01", periods=n, freq="min")

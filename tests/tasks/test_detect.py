@@ -20,11 +20,12 @@ from changekind.tasks.detect import (
     detect_events,
     screen_new_points,
 )
+from changekind.tasks.simulate import arma_filter
 from changekind.tasks.types import EVENT_TYPES
 
 
 def _ar1(rng: np.random.Generator, n: int, phi: float = 0.6, level: float = 50.0) -> np.ndarray:
-    return lfilter([1.0], [1.0, -phi], rng.normal(size=n)) + level
+    return arma_filter(rng.normal(size=n), ar=(phi,)) + level
 
 
 def _hourly(n: int, start: str = "2026-04-01") -> pd.DatetimeIndex:
@@ -105,7 +106,7 @@ def test_each_type_is_found_and_named(kind, expect):
     # phi = 0.3: with phi near 0.6 a TC of decay 0.7 and an IO are nearly the
     # same signal (shared method notes); that ambiguity is measured by the
     # Monte Carlo study, not here.
-    y = lfilter([1.0], [1.0, -0.3], e) + 20
+    y = arma_filter(e, ar=(0.3,)) + 20
     if kind == "AO":
         y[T] += omega
     elif kind == "LS":

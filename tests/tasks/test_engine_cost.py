@@ -6,7 +6,6 @@ import numpy as np
 import pandas as pd
 import pytest
 from numpy.testing import assert_allclose
-from scipy.signal import lfilter
 
 from changekind.tasks.arma import pi_weights, psi_weights
 from changekind.tasks.budget import WorkBudget
@@ -14,10 +13,11 @@ from changekind.tasks.decompose import regularize
 from changekind.tasks.detect import analyse_series
 from changekind.tasks.effects import EFFECTS, TC_DECAY
 from changekind.tasks.screen import screen_new_points
+from changekind.tasks.simulate import arma_filter
 
 
 def _ar1(rng, n, phi=0.5):
-    return lfilter([1.0], [1.0, -phi], rng.normal(size=n))
+    return arma_filter(rng.normal(size=n), ar=(phi,))
 
 
 def test_each_effect_filtered_by_pi_is_its_residual_pattern():

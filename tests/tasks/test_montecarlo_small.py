@@ -26,6 +26,14 @@ from numpy.testing import assert_allclose
 from statsmodels.tsa.arima_process import ArmaProcess
 from statsmodels.tsa.statespace.sarimax import SARIMAX
 
+from changekind.tasks.simulate import (
+    MODELS,
+    SeriesKey,
+    make_series,
+    study_keys,
+    unit_regressor,
+)
+from changekind.tasks.simulate import STUDY_TYPES as EVENT_TYPES
 from tests.benchmarks.baselines import (
     ORACLE_DELTA_GRID,
     TC_CHARGE,
@@ -47,14 +55,6 @@ from tests.benchmarks.montecarlo import (
     oracle_type_acc,
     pooled_stats,
     run_study,
-)
-from tests.benchmarks.simulate import (
-    EVENT_TYPES,
-    MODELS,
-    SeriesKey,
-    make_series,
-    study_keys,
-    unit_regressor,
 )
 
 # -- the data generator and the baselines, against outside references ----------
@@ -367,7 +367,7 @@ def test_student_t_innovations_have_unit_variance_and_heavy_tails():
     # P(|x| > 4) = 2 * t3.sf(4 sqrt(3)), about 0.0046 (Gaussian: 6e-5).
     from scipy import stats
 
-    from tests.benchmarks.simulate import innovations
+    from changekind.tasks.simulate import innovations
 
     x = innovations("t3", 400_000, np.random.default_rng(3))
     assert_allclose(np.var(x), 1.0, atol=0.05)
@@ -377,8 +377,8 @@ def test_student_t_innovations_have_unit_variance_and_heavy_tails():
 
 
 def test_calibration_table_and_its_error():
+    from changekind.tasks.simulate import SeriesKey
     from tests.benchmarks.montecarlo import Detection, MethodRun, SeriesOutcome, calibration
-    from tests.benchmarks.simulate import SeriesKey
 
     def outcome(true: str, called: str, weight: float) -> SeriesOutcome:
         weights = tuple((k, weight if k == called else (1 - weight) / 3) for k in EVENT_TYPES)

@@ -26,7 +26,6 @@ import numpy as np
 import pandas as pd
 import pytest
 from numpy.testing import assert_allclose
-from scipy.signal import lfilter
 from scipy.stats import median_abs_deviation
 from typer.testing import CliRunner
 
@@ -34,6 +33,7 @@ from changekind.flows.cli import app
 from changekind.flows.cli import detect as cli_window  # the windowed detect helpers
 from changekind.tasks.errors import ConfigError, SeriesError, SourceError, TooShortError
 from changekind.tasks.fetch import open_source
+from changekind.tasks.simulate import arma_filter
 from changekind.tasks.types import EVENT_NAMES, EVENT_TYPES, FittedModel
 from changekind.tasks.window.detection import detect_windowed, screen_windowed, windowed_model
 from changekind.tasks.window.drill import drill
@@ -71,7 +71,7 @@ def make_second_series(seed: int, *, days: int = 3) -> pd.DataFrame:
     scale = np.where(stamps >= VC_AT, 2.0, 1.0)
     shocks = rng.normal(size=n + 200)
     shocks[200:] *= scale
-    y = 50.0 + lfilter([1.0], [1.0, -0.5], shocks)[200:]
+    y = 50.0 + arma_filter(shocks, ar=(0.5,))[200:]
     y[stamps >= LS_AT] += LS_SIZE
     after = stamps >= TC_AT
     y[after] += TC_SIZE * 0.5 ** (np.arange(after.sum()) / TC_HALF_LIFE_S)
@@ -608,7 +608,6 @@ def test_a_spike_inside_a_window_is_an_ao_naming_the_window():
     # A 13-sigma single-point spike in a day of 1 s AR(1) points barely moves
     # its 1-minute window's median; the window's extreme against the spread
     # around it (normalized MADs, which one spike does not move) finds it.
-    from scipy.signal import lfilter
 
     from changekind.tasks.window.detection import detect_windowed, extreme_windows
     from changekind.tasks.window.summary import summarize_windows
@@ -616,7 +615,7 @@ def test_a_spike_inside_a_window_is_an_ao_naming_the_window():
     rng = np.random.default_rng(1)
     n = 86_400
     stamps = pd.date_range("2026-03-01", periods=n, freq="s")
-    y = 50 + lfilter([1.0], [1.0, -0.5], rng.normal(size=n))
+    y = 50 + arma_filter(rng.normal(size=n), ar=(0.5,))
     sd = 1 / np.sqrt(1 - 0.25)  # the AR(1)'s standard deviation
     y[40_000] += 13 * sd
     result = detect_windowed("s", stamps, y, "1min")
@@ -674,7 +673,7 @@ def test_false_budget_in_windowed_mode_is_shared_by_the_three_families():
     rng = np.random.default_rng(5)
     n = 86_400
     stamps = pd.date_range("2026-03-01", periods=n, freq="s")
-    y = 50 + lfilter([1.0], [1.0, -0.5], rng.normal(size=n))
+    y = 50 + arma_filter(rng.normal(size=n), ar=(0.5,))
     sd = 1 / np.sqrt(1 - 0.25)
     for i, size in enumerate((4.8, 5.2, 5.6, 6.0, 6.4, 9.0)):
         y[5_000 + 13_000 * i] += size * sd
@@ -709,8 +708,8 @@ def test_window_extremes_follow_the_points_own_tail():
     rng = np.random.default_rng(7)
     n = 86_400
     stamps = pd.date_range("2026-03-01", periods=n, freq="s")
-    heavy = 50 + lfilter([1.0], [1.0, -0.5], rng.standard_t(3, size=n) / np.sqrt(3))
-    gauss = 50 + lfilter([1.0], [1.0, -0.5], rng.normal(size=n))
+    heavy = 50 + arma_filter(rng.standard_t(3, size=n) / np.sqrt(3), ar=(0.5,))
+    gauss = 50 + arma_filter(rng.normal(size=n), ar=(0.5,))
     summary = summarize_windows("s", stamps, heavy, "1min")
     gaussian_line = norm.isf(0.2 / (2 * 1440 * 60))
     assert critical_value(1440 * 60.0) == pytest.approx(gaussian_line)

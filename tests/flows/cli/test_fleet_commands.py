@@ -35,7 +35,8 @@ from changekind.flows.cli import app
 from changekind.flows.demo import score_against_truth
 from changekind.tasks import persist
 from changekind.tasks.report import picture_name
-from tests.flows.fleet import make_fleet, write_source
+from tests.flows.fleet import found_in, make_fleet, write_source
+from tests.flows.prefect_api import artifacts_of
 from tests.tasks.test_report import check_page, png_size
 
 runner = CliRunner()
@@ -65,29 +66,6 @@ FIRST_SCAN_UNTIL = "2026-06-19"  # the small fleet runs 2026-06-01 .. 2026-06-21
 
 def _invoke(*args: str):
     return runner.invoke(app, list(args))
-
-
-def _artifacts_of(flow_run_id: str) -> dict[str, object]:
-    """The artifacts of one flow run, by key, read back from the Prefect API."""
-    from prefect.client.orchestration import get_client
-    from prefect.client.schemas.filters import ArtifactFilter, ArtifactFilterFlowRunId
-
-    with get_client(sync_client=True) as client:
-        found = client.read_artifacts(
-            artifact_filter=ArtifactFilter(flow_run_id=ArtifactFilterFlowRunId(any_=[flow_run_id]))
-        )
-    return {a.key: a for a in found}
-
-
-def _found(events: pd.DataFrame, truth: pd.DataFrame, tolerance: str = "2h") -> int:
-    """Injected events with a stored event of the same type within the tolerance."""
-    hits = 0
-    for row in truth.itertuples():
-        mine = events[events.series_id == row.series_id]
-        times = pd.to_datetime(mine.event_time)
-        near = mine[(times - row.event_time).abs() <= pd.Timedelta(tolerance)]
-        hits += int((near.event_type == row.event_type).any())
-    return hits
 
 
 @pytest.fixture(scope="module")
@@ -150,7 +128,7 @@ def test_scan_prints_what_it_stored(scanned):
     truth = scanned["truth"]
     inside = truth[truth.event_time < pd.Timestamp(FIRST_SCAN_UNTIL)]
     assert len(inside) >= 3
-    assert _found(stored, inside) >= len(inside) - 1
+    assert found_in(stored, inside) >= len(inside) - 1
     # The strongest event of the run heads its table.
     strongest = stored.loc[stored["t_stat"].abs().idxmax()]
     table = result.stdout.split("Strongest events of the run", 1)[1]
@@ -187,7 +165,7 @@ def test_triage_survives_later_scans_and_a_repeated_scan_changes_nothing(scanned
     ]
     assert kept["triage_state"].tolist() == ["dismissed"]
     assert kept["triage_reason"].tolist() == ["CHG-42"]
-    assert _found(after, scanned["truth"]) >= len(scanned["truth"]) - 1
+    assert found_in(after, scanned["truth"]) >= len(scanned["truth"]) - 1
 
     # Nothing new: a third scan reports nothing and leaves the tables as they were.
     snap = persist.content_snapshot(db)
@@ -314,7 +292,7 @@ def test_backfill_then_refit(prefect_server, small_fleet, tmp_path):
     times = pd.to_datetime(stored.event_time)
     assert ((times >= pd.Timestamp("2026-06-05")) & (times < pd.Timestamp("2026-06-15"))).all()
     inside = truth[(truth.event_time >= "2026-06-05") & (truth.event_time < "2026-06-15")]
-    assert _found(stored, inside) >= len(inside) - 1
+    assert found_in(stored, inside) >= len(inside) - 1
 
     # The same span again: nothing to do, and the summary, the run record and the
     # run's artifact say so with the same counts.
@@ -328,7 +306,7 @@ def test_backfill_then_refit(prefect_server, small_fleet, tmp_path):
     record = next(r for r in persist.table_snapshot(db)["scan_runs"] if r[0] == repeat["run_id"])
     assert (record[4], record[5], record[6]) == ("completed", 6, 6)  # status, total, ok
     assert said in record[-1]
-    markdown = _artifacts_of(repeat["run_id"])["changekind-backfill-summary"].data
+    markdown = artifacts_of(repeat["run_id"])["changekind-backfill-summary"].data
     assert "| total | 6 |" in markdown and "| up to date (nothing to analyse) | 6 |" in markdown
     assert said in markdown
     assert persist.read_events(db).equals(stored)  # and nothing changed
@@ -607,7 +585,8 @@ def test_demo_runs_the_pipeline_and_scores_the_stored_events(prefect_server, tmp
 
 
 def test_day_files_hold_one_utc_day_each_and_the_whole_fleet_together(tmp_path):
-    from changekind.flows.demo import make_demo_fleet, write_day_files
+    from changekind.flows.demo import write_day_files
+    from changekind.tasks.simulate import make_demo_fleet
 
     fleet = make_demo_fleet(np.random.default_rng(0), n_controllers=2, days=4, step="1h")
     early = write_day_files(fleet.data, tmp_path, last=3)

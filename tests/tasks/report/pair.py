@@ -12,9 +12,9 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-from scipy.signal import lfilter
 
 from changekind.tasks import persist
+from changekind.tasks.simulate import arma_filter
 from changekind.tasks.types import Event, FittedModel
 
 SERIES = "broker-3/queue-depth"
@@ -28,7 +28,7 @@ LEVEL, SHIFT, GLITCH = 40.0, 1.4, 6.0
 def pair_series(seed: int = 5) -> pd.DataFrame:
     """The long-form rows (series_id, timestamp, value) of the invented series."""
     rng = np.random.default_rng(seed)
-    y = LEVEL + lfilter([1.0], [1.0, -0.5], rng.normal(scale=0.3, size=N))
+    y = LEVEL + arma_filter(rng.normal(scale=0.3, size=N), ar=(0.5,))
     y[T_DOWN:] -= SHIFT
     y[T_UP:] += SHIFT
     y[T_GLITCH] += GLITCH
