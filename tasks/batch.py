@@ -710,10 +710,17 @@ def _last_observed(values: np.ndarray) -> int:
 
 
 def start_worker() -> int:
-    """Do nothing but load this module (and so the engine) where the task runs.
+    """Do nothing but load this module and the engine's libraries where the task runs.
 
     The flows submit one per worker before they plan: a process or Dask
     worker spends seconds on its imports, which then overlap the planning
-    instead of delaying the first batch.  Returns the worker's process id.
+    instead of delaying the first batch.  The engine imports scipy's filters,
+    optimizer and FFT where it uses them (start-up of commands that need
+    none); a worker will, so it loads them here.  Returns the worker's
+    process id.
     """
+    import scipy.fft
+    import scipy.optimize
+    import scipy.signal  # noqa: F401  (loaded for the batches to come)
+
     return os.getpid()
