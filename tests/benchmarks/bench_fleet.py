@@ -504,9 +504,10 @@ def engine_profile(db: str, source: Path, sample: int) -> None:
     from changekind.flows.pipeline import plan_works
     from changekind.flows.records import stored_state
     from changekind.flows.settings import RunOptions
-    from changekind.tasks.batch import run_batch
+    from changekind.tasks.batch import run_batch, start_worker
     from changekind.tasks.fetch import list_series, open_source
 
+    start_worker()  # the libraries a worker loads before its first batch
     options = RunOptions().analysis()
     spec = open_source(str(source))
     ids = list_series(spec)[:sample]
