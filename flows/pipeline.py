@@ -17,6 +17,7 @@ from contextvars import ContextVar
 from dataclasses import dataclass, field, replace
 
 import pandas as pd
+from prefect.context import FlowRunContext
 from prefect.futures import as_completed
 from prefect.runtime import flow_run
 from prefect.task_runners import ProcessPoolTaskRunner, ThreadPoolTaskRunner
@@ -128,6 +129,15 @@ def make_task_runner(runner: str, *, workers: int, dask_address: str | None = No
 def start_workers(workers: int) -> list:
     """Submit one :func:`~changekind.tasks.batch.start_worker` per worker; wait with ``.wait()``."""
     return [start_worker_task.submit() for _ in range(max(1, workers))]
+
+
+def local_task_runner() -> bool:
+    """Whether the running flow's task runner is a pool on this machine (threads or
+    processes), whose work the flow's own process can do as well; not a Dask
+    cluster, whose workers may be the only machines that reach the source."""
+    context = FlowRunContext.get()
+    runner = getattr(context, "task_runner", None)
+    return isinstance(runner, ThreadPoolTaskRunner | ProcessPoolTaskRunner)
 
 
 def small_run(expected_seconds: float, batch_seconds: float) -> bool:
