@@ -12,7 +12,6 @@ as one frame, for the incidents' label shares
 
 from __future__ import annotations
 
-import math
 from collections.abc import Sequence
 from datetime import datetime
 from typing import Any
@@ -21,6 +20,7 @@ import pandas as pd
 import sqlalchemy as sa
 
 from changekind.tasks.errors import ConfigError
+from changekind.tasks.incidents.values import label_text
 from changekind.tasks.persist.convert import _chunks, _now, _upsert
 from changekind.tasks.persist.engines import _engine
 from changekind.tasks.persist.schema import (
@@ -155,9 +155,6 @@ def read_fleet_labels(conn: sa.Connection) -> pd.DataFrame:
 
 
 def _text_or_none(value: Any) -> str | None:
-    if value is None or value is pd.NA or value is pd.NaT:
-        return None
-    if isinstance(value, float) and math.isnan(value):
-        return None
-    text = str(value)
-    return text if text.strip() else None
+    """A label value as stored here: :func:`label_text`, and blank text is missing too."""
+    text = label_text(value)
+    return text if text is not None and text.strip() else None
