@@ -17,6 +17,7 @@ from contextvars import ContextVar
 from dataclasses import dataclass, field, replace
 
 import pandas as pd
+from prefect.context import FlowRunContext
 from prefect.futures import as_completed
 from prefect.runtime import flow_run
 from prefect.task_runners import ProcessPoolTaskRunner, ThreadPoolTaskRunner
@@ -32,7 +33,7 @@ from changekind.tasks.batch import (
     SeriesWork,
     WorkBatch,
     plan_batches,
-    warm_context,
+    warm_contexts,
 )
 from changekind.tasks.fetch import SourceProblem, SourceSpec
 from changekind.tasks.types import REPORTED_TYPES, Event, FittedModel
@@ -130,6 +131,15 @@ def start_workers(workers: int) -> list:
     return [start_worker_task.submit() for _ in range(max(1, workers))]
 
 
+def local_task_runner() -> bool:
+    """Whether the running flow's task runner is a pool on this machine (threads or
+    processes), whose work the flow's own process can do as well; not a Dask
+    cluster, whose workers may be the only machines that reach the source."""
+    context = FlowRunContext.get()
+    runner = getattr(context, "task_runner", None)
+    return isinstance(runner, ThreadPoolTaskRunner | ProcessPoolTaskRunner)
+
+
 def small_run(expected_seconds: float, batch_seconds: float) -> bool:
     """Whether work expected to take ``expected_seconds`` runs in the flow's own process.
 
@@ -174,6 +184,13 @@ def plan_works(
     """
     works = []
     end_bound = time_key(end, time_kind)
+    # Each warm series' filter memory, computed for all of them at once.
+    filters = {
+        sid: models[sid]
+        for sid in series_ids
+        if sid in models and sid not in rewind and watermarks.get(sid) is not None
+    }
+    contexts = dict(zip(filters, warm_contexts(list(filters.values()), options), strict=True))
     for sid in series_ids:
         model = models.get(sid)
         mark = watermarks.get(sid)
@@ -198,7 +215,7 @@ def plan_works(
                     if e.status == "provisional"
                 ]
             )
-            lags = warm_context(model, options) - 1
+            lags = contexts[sid] - 1
             if time_kind == "numeric":
                 start = first - lags * (model.step_seconds or 1.0)
             else:

@@ -29,6 +29,7 @@ from changekind.flows.pipeline import (
     RunSummary,
     current_run_id,
     execute,
+    local_task_runner,
     nothing_to_do,
     plan_reach,
     plan_works,
@@ -160,8 +161,10 @@ def _locked_run(
     ids = list(series) if series else survey.series_ids
     # Worker imports overlap the planning, unless a scan's fleet is small even if
     # every series is warm (pipeline.small_run): then no worker is started at all.
-    # Backfills and refits, long runs of cold fits, always use the task runner.
-    in_process = kind == "scan" and small_run(len(ids) * WARM_SECONDS, options.batch_seconds)
+    # Backfills and refits, long runs of cold fits, always use the task runner,
+    # and so do runs on a Dask cluster.
+    may_stay = kind == "scan" and local_task_runner()
+    in_process = may_stay and small_run(len(ids) * WARM_SECONDS, options.batch_seconds)
     starting = [] if in_process else start_workers(options.workers)
     problems: list[SourceProblem] = list(survey.problems)
     notes: list[str] = []
@@ -236,7 +239,7 @@ def _locked_run(
                 reach=reach,
                 workers=options.workers,
                 batch_seconds=options.batch_seconds,
-                small_in_process=kind == "scan",
+                small_in_process=may_stay,
                 logger=logger,
                 before_write=lock.check,
                 problems=problems,

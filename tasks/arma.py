@@ -80,6 +80,43 @@ def pi_weights(model: FittedModel, n: int) -> np.ndarray:
     return linear_filter(ar, ma, impulse)  # no MA part: the AR polynomial itself
 
 
+def impulse_responses(filters: Sequence[tuple[np.ndarray, np.ndarray]], n: int) -> np.ndarray:
+    """``lfilter(b, a, impulse)`` for many filters at once, row by row: shape (len(filters), n).
+
+    The same arithmetic in the same order as ``scipy.signal.lfilter``'s direct
+    form II transposed (coefficients divided by ``a[0]``, then per step
+    ``y = z_0 + b_0 x`` and ``z_i = z_{i+1} + b_{i+1} x - a_{i+1} y``), so each
+    row equals lfilter's output bit for bit (tests/tasks/test_fit.py), with
+    numpy over the filters instead of one call each.  What a scan's planning
+    needs for every series' filter memory: 10,000 filters in a few
+    milliseconds, and no scipy.signal import (0.7 s) for a small scan.
+    """
+    out = np.zeros((len(filters), n))
+    groups: dict[int, list[int]] = {}
+    for row, (b, a) in enumerate(filters):
+        groups.setdefault(max(len(b), len(a)), []).append(row)
+    for size, rows in groups.items():
+        B, A = np.zeros((len(rows), size)), np.zeros((len(rows), size))
+        for k, row in enumerate(rows):
+            b, a = filters[row]
+            B[k, : len(b)], A[k, : len(a)] = b, a
+        a0 = A[:, :1].copy()
+        B, A = B / a0, A / a0
+        if size == 1:
+            if n:
+                out[rows, 0] = B[:, 0] * 1.0
+            continue
+        Z = np.zeros((len(rows), size - 1))
+        for t in range(n):
+            x = 1.0 if t == 0 else 0.0
+            y = Z[:, 0] + B[:, 0] * x
+            for i in range(size - 2):
+                Z[:, i] = Z[:, i + 1] + x * B[:, i + 1] - y * A[:, i + 1]
+            Z[:, size - 2] = x * B[:, size - 1] - y * A[:, size - 1]
+            out[rows, t] = y
+    return out
+
+
 def psi_weights(model: FittedModel, n: int) -> np.ndarray:
     """Coefficients of psi(B) = theta(B) / (phi(B) alpha(B)), lag 0 first."""
     ar, ma = polynomials(model)

@@ -27,9 +27,16 @@ from scipy.special import ndtr
 from changekind.tasks.critical import CLIP, SPREAD_TYPES, Thresholds
 from changekind.tasks.effects import EFFECTS, SEARCHED
 
-DELTA_GRID = (0.2, 0.35, 0.5, 0.6, 0.7, 0.8, 0.9)
+DELTA_GRID = (0.35, 0.5, 0.6, 0.7, 0.8, 0.9)
 """TC decay rates profiled during the search; the final decay is refined
-continuously in (0.05, 0.95)."""
+continuously within DELTA_BOUNDS."""
+
+DELTA_BOUNDS = (0.3, 0.95)
+"""Range of a TC's decay.  Below 0.3 the half-life is under 0.6 samples: the
+effect is gone by the next point, which is an AO, and a TC free to take such a
+decay takes AOs from the AO type (in the Monte Carlo with the charge below, 19
+of 144 AOs were called TC with the decay free down to 0.05 and 0.2 in the
+search's grid, 13 with this range; 4 sigma AO type accuracy 0.80 and 0.82)."""
 
 TC_PENALTY = 0.4
 """Log-likelihood units charged to a TC for its estimated decay when the types
@@ -470,7 +477,7 @@ def weights_at(
 
         res = minimize_scalar(
             lambda d: -abs(tc_tau(d)),
-            bounds=(0.05, 0.95),
+            bounds=DELTA_BOUNDS,
             method="bounded",
             options={"xatol": 1e-3},
         )

@@ -504,9 +504,10 @@ def engine_profile(db: str, source: Path, sample: int) -> None:
     from changekind.flows.pipeline import plan_works
     from changekind.flows.records import stored_state
     from changekind.flows.settings import RunOptions
-    from changekind.tasks.batch import run_batch
+    from changekind.tasks.batch import run_batch, start_worker
     from changekind.tasks.fetch import list_series, open_source
 
+    start_worker()  # the libraries a worker loads before its first batch
     options = RunOptions().analysis()
     spec = open_source(str(source))
     ids = list_series(spec)[:sample]
@@ -552,11 +553,12 @@ def engine_profile(db: str, source: Path, sample: int) -> None:
 # not call each other); "file.py:name" picks one module's function.
 WARM_STAGES = {
     "regularize (grid, gaps)": ("regularize",),
-    "screen_new_points: filter + search (inner loop, joint)": ("_inner_loop", "_joint"),
+    "screen_new_points: search (inner loop, joint)": ("inner_loop",),
     "screen_new_points: pi weights": ("pi_weights",),
+    "screen_new_points: robust residual scale": ("robust_sigma",),
     "screen_new_points: removing known events' effects": ("known_effects",),
-    "screen_new_points: type weights of events found": ("_weights_for",),
-    "screen_new_points: default critical value": ("default_critical",),
+    "screen_new_points: type weights of events found": ("weights_for",),
+    "screen_new_points: critical values": ("series_thresholds",),
     "refit decision (drift test, age, LS)": ("_needs_refit",),
     "watermark / event placement": ("_after_watermark", "_position", "_last_observed"),
     "BLAS one-thread limit, set and restored per call (threadpoolctl)": (

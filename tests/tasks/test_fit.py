@@ -168,3 +168,59 @@ def test_kpss_statistic_equals_statsmodels():
         np.r_[rng.normal(size=150), rng.normal(size=150) + 5],
     ):
         assert_allclose(kpss_stat(z), kpss(z, regression="c", nlags="auto")[0], rtol=1e-10)
+
+
+def test_impulse_responses_equal_scipy_lfilter_bit_for_bit():
+    """Reference: scipy.signal.lfilter on an impulse, for random ARMA filters (differenced,
+    seasonal-length, unnormalized a[0]) computed together; every row equals it exactly."""
+    from changekind.tasks.arma import impulse_responses
+
+    rng = np.random.default_rng(14)
+    filters = []
+    for trial in range(300):
+        b = np.r_[1.0, rng.uniform(-0.9, 0.9, rng.integers(0, 5))]
+        a = np.r_[1.0, rng.uniform(-0.6, 0.6, rng.integers(0, 4))]
+        if trial % 7 == 0:
+            b = np.convolve(b, [1.0, -1.0])  # a difference
+        if trial % 11 == 0:
+            a = np.r_[a, np.zeros(10), 0.3]  # a seasonal MA term
+        if trial % 13 == 0:
+            a = a * 1.7  # lfilter divides by a[0]
+        filters.append((b, a))
+    got = impulse_responses(filters, 120)
+    impulse = np.r_[1.0, np.zeros(119)]
+    for (b, a), row in zip(filters, got, strict=True):
+        np.testing.assert_array_equal(row, lfilter(b, a, impulse))
+    assert impulse_responses(filters[:3], 0).shape == (3, 0)
+
+
+def test_warm_contexts_equal_the_filter_memory_from_lfilter():
+    """The lags after which a model's |pi| weights sum below the tolerance, against the
+    same rule on scipy.signal.lfilter's pi weights, one model at a time."""
+    from changekind.tasks.arma import polynomials
+    from changekind.tasks.batch import MEMORY_TOLERANCE, MIN_CONTEXT, AnalysisOptions, warm_contexts
+
+    options = AnalysisOptions(context_points=240)
+    models = [
+        FittedModel(
+            "x", order, (0, 0, 0, 0), "n", (*params, ("sigma2", 1.0)), 1.0, 100, "mle", True
+        )
+        for params, order in [
+            ((("ar.L1", 0.6),), (1, 0, 0)),
+            ((("ma.L1", -0.4),), (0, 1, 1)),
+            ((("ma.L1", -0.98),), (0, 1, 1)),
+            ((("ar.L1", 0.5), ("ma.L1", 0.95)), (1, 0, 1)),
+            ((("ar.L1", 0.3), ("ma.L1", -0.7), ("ma.L2", 0.1)), (1, 1, 2)),
+        ]
+    ]
+    expected = []
+    for model in models:
+        ar, ma = polynomials(model)
+        weights = np.abs(lfilter(ar, ma, np.r_[1.0, np.zeros(240)]))
+        remaining = np.cumsum(weights[::-1])[::-1]
+        negligible = np.flatnonzero(remaining < MEMORY_TOLERANCE)
+        memory = int(negligible[0]) if negligible.size else 240
+        expected.append(max(MIN_CONTEXT, min(memory, 240)))
+    assert warm_contexts(models, options) == expected
+    assert expected[0] == MIN_CONTEXT and expected[2] == 240  # short and capped memories
+    assert MIN_CONTEXT < expected[1] < 240  # and one between
