@@ -35,8 +35,8 @@ import math
 from collections.abc import Sequence
 from typing import Any
 
-from changekind.tasks.incident_store import ConfirmedEvent, IncidentRefresh
 from changekind.tasks.incidents import IncidentChange
+from changekind.tasks.persist import ConfirmedEvent, IncidentRefresh
 
 __all__ = [
     "MAX_RELATED",

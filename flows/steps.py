@@ -25,7 +25,7 @@ from prefect import task
 from prefect.cache_policies import NO_CACHE
 
 from changekind.flows import records
-from changekind.tasks import batch, incident_store, persist
+from changekind.tasks import batch, persist
 from changekind.tasks.errors import is_transient
 from changekind.tasks.report import data as report_data
 from changekind.tasks.runlock import RunLock
@@ -84,8 +84,8 @@ start_run_task = _database("start-run")(persist.start_run)
 finish_run_task = _database("finish-run")(persist.finish_run)
 record_source_problems_task = _database("record-source-problems")(persist.record_source_problems)
 stored_state_task = _database("read-stored-state")(records.stored_state)
-write_labels_task = _database("store-labels")(incident_store.write_labels)
-refresh_incidents_task = _database("update-incidents")(incident_store.refresh_incidents)
+write_labels_task = _database("store-labels")(persist.write_labels)
+refresh_incidents_task = _database("update-incidents")(persist.refresh_incidents)
 
 
 @_database("take-run-lock")

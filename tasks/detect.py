@@ -33,7 +33,7 @@ from changekind.tasks.effects import EFFECTS
 from changekind.tasks.estimation import EstimationError, filtered_residuals, refit
 from changekind.tasks.fit import choose_model
 from changekind.tasks.patterns import MAX_PATTERNS, absorb_pattern, find_period, regular_period
-from changekind.tasks.results import to_event
+from changekind.tasks.results import detection_result
 from changekind.tasks.screen import known_effects, reestimate, screen_new_points
 from changekind.tasks.search import (
     LS_MARGIN,
@@ -293,27 +293,21 @@ def detect_events(
         periods=decomp.periods,
         profiles=tuple(tuple(float(v) for v in prof) for prof in decomp.profiles),
     )
-    events = tuple(
-        to_event(series, final_model, c, weights, delta)
-        for c, (weights, delta) in zip(cands, support, strict=True)
-    )
     if final_model.fallback:
         notes.append(final_model.fallback)
     if crit.heavy:
         notes.append(heavy_note(crit))
     notes.extend(spend.notes())
-    return DetectionResult(
-        series_id=series.series_id,
-        events=events,
-        model=final_model,
-        critical=crit.gaussian,
-        pulse_critical=crit.single if crit.heavy else None,
-        nobs=n,
-        n_missing=series.n_missing,
+    return detection_result(
+        series,
+        final_model,
+        cands,
+        support,
+        crit,
         converged=converged,
         n_iter=n_iter,
-        patterns=tuple(patterns),
-        notes=tuple(notes),
+        patterns=patterns,
+        notes=notes,
         n_fits=n_fits,
         budget_spent=bool(spend.spent_at),
     )

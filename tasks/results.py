@@ -3,12 +3,21 @@
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 
 import numpy as np
 
+from changekind.tasks.critical import Thresholds
 from changekind.tasks.effects import EFFECTS, SEARCHED
-from changekind.tasks.search import Candidate
-from changekind.tasks.types import Event, FittedModel, RegularSeries, round_sig
+from changekind.tasks.search import Candidate, Support
+from changekind.tasks.types import (
+    DetectionResult,
+    Event,
+    FittedModel,
+    Pattern,
+    RegularSeries,
+    round_sig,
+)
 
 SETTLE = 8
 """An event with fewer observations after it than this (or than two decay
@@ -48,6 +57,49 @@ def to_event(
         model=model.spec(),
         effect_sigma=round_sig(abs(c.omega) / model.sigma) if model.sigma2 > 0 else None,
         duration=_duration(series, c.kind, after, delta),
+    )
+
+
+def detection_result(
+    series: RegularSeries,
+    model: FittedModel,
+    found: Sequence[Candidate],
+    support: Support,
+    crit: Thresholds,
+    *,
+    converged: bool,
+    n_iter: int,
+    patterns: Sequence[Pattern] = (),
+    notes: Sequence[str] = (),
+    n_fits: int = 0,
+    budget_spent: bool = False,
+    resid_scale: float | None = None,
+) -> DetectionResult:
+    """One analysis of a series as reported, cold (detect) or warm (screen).
+
+    The candidates become events (:func:`to_event`, with their types' support);
+    the critical values are those the analysis used (the single-point one only
+    where the residuals' tails are heavy).
+    """
+    events = tuple(
+        to_event(series, model, c, weights, delta)
+        for c, (weights, delta) in zip(found, support, strict=True)
+    )
+    return DetectionResult(
+        series_id=series.series_id,
+        events=events,
+        model=model,
+        critical=crit.gaussian,
+        pulse_critical=crit.single if crit.heavy else None,
+        nobs=series.nobs,
+        n_missing=series.n_missing,
+        converged=converged,
+        n_iter=n_iter,
+        patterns=tuple(patterns),
+        notes=tuple(notes),
+        n_fits=n_fits,
+        resid_scale=resid_scale,
+        budget_spent=budget_spent,
     )
 
 

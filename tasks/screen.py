@@ -25,7 +25,7 @@ from changekind.tasks.critical import Thresholds, check_budget, check_critical, 
 from changekind.tasks.decompose import profile_at
 from changekind.tasks.effects import EFFECTS
 from changekind.tasks.estimation import EstimationError, refit
-from changekind.tasks.results import to_event
+from changekind.tasks.results import detection_result
 from changekind.tasks.search import design, inner_loop, joint, robust_sigma, weights_for
 from changekind.tasks.threads import single_blas_thread
 from changekind.tasks.types import DetectionResult, Event, FittedModel, RegularSeries
@@ -108,10 +108,6 @@ def screen_new_points(
     found = joint(e, w, pi, sigma, crit, found)
     e_clean = e - (design(found, pi, n) @ np.array([c.omega for c in found])) * w if found else e
     support = weights_for(e_clean, w, pi, sigma, found, ls_from=start)
-    events = tuple(
-        to_event(series, model, c, weights, delta)
-        for c, (weights, delta) in zip(found, support, strict=True)
-    )
     tested = e[start:][w[start:] > 0]
     scale = None
     if tested.size >= 5:
@@ -119,18 +115,8 @@ def screen_new_points(
         # variance from about 22, which set off the drift test for 5 % of the
         # series of a clean fleet (tests/benchmarks/bench_fleet.py).
         scale = float(f"{robust_sigma(tested) / sigma:.4g}")
-    return DetectionResult(
-        series_id=series.series_id,
-        events=events,
-        model=model,
-        critical=crit.gaussian,
-        pulse_critical=crit.single if crit.heavy else None,
-        nobs=n,
-        n_missing=series.n_missing,
-        converged=True,
-        n_iter=1,
-        patterns=(),
-        resid_scale=scale,
+    return detection_result(
+        series, model, found, support, crit, converged=True, n_iter=1, resid_scale=scale
     )
 
 

@@ -39,7 +39,7 @@ from changekind.flows.demo import (
     write_day_files,
 )
 from changekind.flows.settings import RunOptions
-from changekind.tasks import incident_store, persist
+from changekind.tasks import persist
 from changekind.tasks.errors import ConfigError
 from changekind.tasks.fetch import open_source
 from changekind.tasks.simulate import LABEL_COLUMNS, make_demo_fleet
@@ -228,8 +228,8 @@ def demo(
         # Step 4: what the table holds, against the truth.
 
         stored = persist.read_events(url)
-        incidents = incident_store.read_incidents(url)
-        states = incident_store.incident_states(url)
+        incidents = persist.read_incidents(url)
+        states = persist.incident_states(url)
     (out / "events.json").write_text(
         json.dumps(event_json_records(stored), indent=2, allow_nan=False) + "\n"
     )

@@ -22,7 +22,7 @@ from changekind.flows.cli.output import (
     events_table,
     verdicts_table,
 )
-from changekind.tasks import incident_store, persist
+from changekind.tasks import persist
 from changekind.tasks.errors import ConfigError
 from changekind.tasks.timeaxis import parse_instant
 
@@ -229,7 +229,7 @@ def sort_events(frame: pd.DataFrame, key: str) -> pd.DataFrame:
 def _series_labels(url: str) -> dict[str, dict[str, str | None]]:
     """The series' attributes (none in a database from before them: its next run adds them)."""
     try:
-        return incident_store.read_labels(url)
+        return persist.read_labels(url)
     except sa.exc.DBAPIError:
         return {}
 

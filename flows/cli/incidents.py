@@ -24,7 +24,7 @@ from changekind.flows.cli.app import app, fail_usage, out_console, usage_errors
 from changekind.flows.cli.config import database_url, has_table, require_tables
 from changekind.flows.cli.options import DbOpt
 from changekind.flows.cli.output import TABLE_ROWS
-from changekind.tasks import incident_store
+from changekind.tasks import persist
 from changekind.tasks.errors import ConfigError
 from changekind.tasks.types import number
 
@@ -124,7 +124,7 @@ def incidents_table(records: Sequence[Mapping[str, Any]], *, title: str) -> Tabl
 
 
 def _require_incident_tables(url: str) -> None:
-    if not has_table(url, incident_store.incidents.name):
+    if not has_table(url, persist.schema.incidents.name):
         raise ConfigError(
             "the database has no incidents table yet (it was written by an older changekind); "
             "run a scan or backfill on it, which updates its tables and its incidents"
@@ -168,8 +168,8 @@ def incidents(
         url = database_url(db)
         require_tables(url)
         _require_incident_tables(url)
-        found = incident_store.read_incidents(url, since=since, open_only=open_only)
-        states = incident_store.incident_states(url)
+        found = persist.read_incidents(url, since=since, open_only=open_only)
+        states = persist.incident_states(url)
     records = incident_records(found, states)
     if as_json:
         sys.stdout.write(json.dumps(records, indent=2, allow_nan=False) + "\n")

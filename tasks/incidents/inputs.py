@@ -17,7 +17,7 @@ from changekind.tasks.incidents.values import (
     REQUIRED_COLUMNS,
     FleetLabels,
     _first_rows,
-    _label_text,
+    label_text,
 )
 from changekind.tasks.types import REPORTED_TYPES
 
@@ -54,9 +54,9 @@ def fleet_labels(
         frame = labels
         if "series_id" in frame.columns:
             frame = frame.set_index("series_id")
-        ids = [_label_text(s) for s in frame.index]
+        ids = [label_text(s) for s in frame.index]
         names = [str(c) for c in frame.columns]
-        columns = [[_label_text(v) for v in frame[c].tolist()] for c in frame.columns]
+        columns = [[label_text(v) for v in frame[c].tolist()] for c in frame.columns]
         rows = {}
         for i, sid in enumerate(ids):
             if sid is None:
@@ -69,14 +69,14 @@ def fleet_labels(
     elif isinstance(labels, Mapping):
         rows = {}
         for sid, row in labels.items():
-            if _label_text(sid) is None:
+            if label_text(sid) is None:
                 raise ConfigError("labels has an empty series id; give every row its series id")
             if not isinstance(row, Mapping):
                 raise ConfigError(
                     f"labels of series {sid!r} is a {type(row).__name__}, not a mapping "
                     "label -> value; give {} for a series without labels"
                 )
-            rows[str(sid)] = {str(n): _label_text(v) for n, v in row.items()}
+            rows[str(sid)] = {str(n): label_text(v) for n, v in row.items()}
         names = sorted({n for row in rows.values() for n in row})
     else:
         raise ConfigError(
@@ -130,8 +130,8 @@ def _check_events(events: pd.DataFrame) -> _Rows:
             "changekind.tasks.persist.read_events(..., include_retracted=True) returns them)"
         )
     n = len(events)
-    series = np.array([_label_text(s) for s in events["series_id"].tolist()], dtype=object)
-    times = np.array([_label_text(t) for t in events["event_time"].tolist()], dtype=object)
+    series = np.array([label_text(s) for s in events["series_id"].tolist()], dtype=object)
+    times = np.array([label_text(t) for t in events["event_time"].tolist()], dtype=object)
     bad = np.array([s is None for s in series], dtype=bool) | np.array(
         [t is None for t in times], dtype=bool
     )

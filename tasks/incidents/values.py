@@ -510,7 +510,7 @@ def _anchor_order(m: IncidentMember) -> tuple[pd.Timestamp, str, str]:
     return (m.event_ts, m.series_id, m.event_time)
 
 
-def _label_text(value: Any) -> str | None:
+def label_text(value: Any) -> str | None:
     """A label value as stored: text, or None when missing."""
     if value is None or value is pd.NA or value is pd.NaT:
         return None

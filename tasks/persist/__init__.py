@@ -1,4 +1,5 @@
-"""Persistence: the event table, its revision log, the model cache and run records.
+"""Persistence: the event table, its revision log, the model cache, run records,
+series labels and fleet incidents.
 
 Every table sits on one SQLAlchemy Core :data:`metadata`; the Alembic migrations
 under ``infra/migrations`` build exactly that schema (a test checks it on SQLite
@@ -25,8 +26,10 @@ functions are taken to be UTC; values read back are timezone-aware UTC.
 Modules: ``schema`` (the tables), ``convert`` (values in, and the one upsert),
 ``engines`` (connect, migrate), ``events``,
 ``models`` (model cache, watermarks, the batch write), ``runs`` (run records),
-``snapshots`` (table contents, for tests).  Nothing here imports Prefect: the
-flows wrap these functions in tasks (``flows/steps.py``).
+``labels`` (series attributes and their changes), ``incidents`` (stored
+incidents and their update after a run), ``snapshots`` (table contents, for
+tests).  Nothing here imports Prefect: the flows wrap these functions in tasks
+(``flows/steps.py``).
 """
 
 from __future__ import annotations
@@ -42,6 +45,14 @@ from changekind.tasks.persist.events import (
     set_triage,
     write_events,
 )
+from changekind.tasks.persist.incidents import (
+    ConfirmedEvent,
+    IncidentRefresh,
+    incident_states,
+    read_incidents,
+    refresh_incidents,
+)
+from changekind.tasks.persist.labels import read_fleet_labels, read_labels, write_labels
 from changekind.tasks.persist.models import (
     Coverage,
     load_coverage,
@@ -68,6 +79,8 @@ from changekind.tasks.persist.schema import (
     EVENT_COLUMNS,
     EVENT_EXTRA_COLUMNS,
     EVENT_STATUSES,
+    INCIDENT_CHANGES,
+    INCIDENT_STATES,
     REVISION_CHANGES,
     RUN_KINDS,
     RUN_STATUSES,
@@ -96,6 +109,8 @@ __all__ = [
     "EVENT_COLUMNS",
     "EVENT_EXTRA_COLUMNS",
     "EVENT_STATUSES",
+    "INCIDENT_CHANGES",
+    "INCIDENT_STATES",
     "REVISION_CHANGES",
     "RUN_KINDS",
     "RUN_STATUSES",
@@ -103,8 +118,10 @@ __all__ = [
     "TRIAGE_NONE",
     "TRIAGE_STATES",
     "VERSION_TABLE",
+    "ConfirmedEvent",
     "Coverage",
     "Database",
+    "IncidentRefresh",
     "RunKind",
     "RunSource",
     "TriageState",
@@ -115,6 +132,7 @@ __all__ = [
     "count_events",
     "event_revisions",
     "finish_run",
+    "incident_states",
     "init_db",
     "latest_source",
     "load_coverage",
@@ -125,10 +143,14 @@ __all__ = [
     "migrate",
     "migrations_dir",
     "read_events",
+    "read_fleet_labels",
+    "read_incidents",
+    "read_labels",
     "read_triage_history",
     "record_failures",
     "record_refused_run",
     "record_source_problems",
+    "refresh_incidents",
     "run_locks",
     "save_models",
     "scan_runs",
@@ -144,8 +166,5 @@ __all__ = [
     "update_watermarks",
     "write_batch",
     "write_events",
+    "write_labels",
 ]
-
-# The tables of series attributes and fleet incidents live on the same MetaData
-# (changekind.tasks.incident_store); importing it here registers them.
-from changekind.tasks import incident_store as _incident_store  # noqa: F401

@@ -36,6 +36,8 @@ RUN_KINDS: tuple[str, ...] = ("scan", "backfill", "refit")
 RUN_STATUSES: tuple[str, ...] = ("running", "completed", "failed", "abandoned")
 """``abandoned``: a run that ended without recording its end (killed, or its
 database went away), closed by the next run (see :func:`close_stale_runs`)."""
+INCIDENT_STATES: tuple[str, ...] = ("open", "settled")
+INCIDENT_CHANGES: tuple[str, ...] = ("new", "grown", "shrunk", "changed", "gone")
 
 RunKind = Literal["scan", "backfill", "refit"]
 TriageState = Literal["acknowledged", "dismissed", "explained"]
@@ -272,6 +274,144 @@ series_failures = sa.Table(
     sa.Index("ix_series_failures_series_id", "series_id"),
 )
 """Series a run could not analyse, with the stage and the message."""
+
+
+# --------------------------------------------------------------------------- labels, incidents
+# (written by changekind.tasks.persist.labels and changekind.tasks.persist.incidents)
+
+series_labels = sa.Table(
+    "series_labels",
+    metadata,
+    sa.Column("series_id", sa.Text, nullable=False),
+    sa.Column("label", sa.Text, nullable=False),
+    sa.Column("value", sa.Text, nullable=True),
+    sa.Column("observed_at", sa.Text, nullable=True),
+    sa.Column("last_run_id", sa.Text, nullable=False),
+    sa.Column("last_seen", UtcDateTime, nullable=False),
+    sa.PrimaryKeyConstraint("series_id", "label"),
+    sa.Index("ix_series_labels_label_value", "label", "value"),
+)
+"""The current value of each label of each series (NULL: the source left it empty).
+
+``observed_at`` is the source time of the row the value was read from (the
+series' latest row in the data the run read)."""
+
+series_label_changes = sa.Table(
+    "series_label_changes",
+    metadata,
+    sa.Column("change_id", sa.Integer, primary_key=True, autoincrement=True),
+    sa.Column("series_id", sa.Text, nullable=False),
+    sa.Column("label", sa.Text, nullable=False),
+    sa.Column("old_value", sa.Text, nullable=True),
+    sa.Column("new_value", sa.Text, nullable=True),
+    sa.Column("observed_at", sa.Text, nullable=True),
+    sa.Column("run_id", sa.Text, nullable=False),
+    sa.Column("changed_at", UtcDateTime, nullable=False),
+    sa.Index("ix_series_label_changes_series", "series_id", "label"),
+)
+"""Every change of a series' label: one row per run that changed it."""
+
+incidents = sa.Table(
+    "incidents",
+    metadata,
+    sa.Column("incident_id", sa.Text, primary_key=True),
+    sa.Column("quantity", sa.Text, nullable=False),
+    sa.Column("direction", sa.Text, nullable=False),
+    sa.Column("start_ts", UtcDateTime, nullable=False),
+    sa.Column("end_ts", UtcDateTime, nullable=False),
+    sa.Column("n_series", sa.Integer, nullable=False),
+    sa.Column("fleet_size", sa.Integer, nullable=False),
+    sa.Column("share_of_fleet", sa.Float, nullable=False),
+    sa.Column("dominant_type", sa.Text, nullable=False),
+    sa.Column("type_counts", sa.Text, nullable=False),
+    sa.Column("median_effect_pct", sa.Float, nullable=True),
+    sa.Column("n_provisional", sa.Integer, nullable=False),
+    sa.Column("shared_labels", sa.Text, nullable=False),
+    sa.Column("state", sa.Text, nullable=False),
+    sa.Column("first_run_id", sa.Text, nullable=False),
+    sa.Column("last_run_id", sa.Text, nullable=False),
+    sa.Column("first_seen", UtcDateTime, nullable=False),
+    sa.Column("last_seen", UtcDateTime, nullable=False),
+    sa.CheckConstraint("quantity IN ('level', 'spread')", name="quantity"),
+    sa.CheckConstraint("direction IN ('up', 'down')", name="direction"),
+    sa.CheckConstraint(_in("dominant_type", REPORTED_TYPES), name="dominant_type"),
+    sa.CheckConstraint(_in("state", INCIDENT_STATES), name="state"),
+    sa.Index("ix_incidents_start_ts", "start_ts"),
+    sa.Index("ix_incidents_end_ts", "end_ts"),
+)
+"""One row per incident: events of several series that changed the same way together.
+
+``type_counts`` is a JSON object (type -> members); ``shared_labels`` a JSON
+object (label -> value) of the values found shared (see ``incident_labels``)."""
+
+incident_members = sa.Table(
+    "incident_members",
+    metadata,
+    sa.Column("incident_id", sa.Text, nullable=False),
+    sa.Column("series_id", sa.Text, nullable=False),
+    sa.Column("event_time", sa.Text, nullable=False),
+    sa.Column("event_ts", UtcDateTime, nullable=False),
+    sa.Column("event_type", sa.Text, nullable=False),
+    sa.Column("effect", sa.Float, nullable=False),
+    sa.Column("effect_pct", sa.Float, nullable=True),
+    sa.Column("t_stat", sa.Float, nullable=False),
+    sa.Column("status", sa.Text, nullable=False),
+    sa.PrimaryKeyConstraint("incident_id", "series_id"),
+    sa.ForeignKeyConstraint(["incident_id"], ["incidents.incident_id"], ondelete="CASCADE"),
+    sa.Index("ix_incident_members_event", "series_id", "event_time"),
+)
+"""The member events of each incident (one per series)."""
+
+incident_labels = sa.Table(
+    "incident_labels",
+    metadata,
+    sa.Column("incident_id", sa.Text, nullable=False),
+    sa.Column("label", sa.Text, nullable=False),
+    sa.Column("value", sa.Text, nullable=False),
+    sa.Column("members_with", sa.Integer, nullable=False),
+    sa.Column("members_known", sa.Integer, nullable=False),
+    sa.Column("fleet_with", sa.Integer, nullable=False),
+    sa.Column("fleet_known", sa.Integer, nullable=False),
+    sa.Column("p_value", sa.Float, nullable=False),
+    sa.Column("p_adjusted", sa.Float, nullable=False),
+    sa.Column("shared", sa.Boolean, nullable=False),
+    sa.PrimaryKeyConstraint("incident_id", "label", "value"),
+    sa.ForeignKeyConstraint(["incident_id"], ["incidents.incident_id"], ondelete="CASCADE"),
+)
+"""Every label value tested for an incident: carriers among members and fleet,
+the hypergeometric upper tail ``p_value``, Holm's ``p_adjusted``, ``shared``."""
+
+incident_revisions = sa.Table(
+    "incident_revisions",
+    metadata,
+    sa.Column("revision_id", sa.Integer, primary_key=True, autoincrement=True),
+    sa.Column("incident_id", sa.Text, nullable=False),
+    sa.Column("run_id", sa.Text, nullable=False),
+    sa.Column("change", sa.Text, nullable=False),
+    sa.Column("n_series", sa.Integer, nullable=True),
+    sa.Column("added", sa.Text, nullable=False),
+    sa.Column("removed", sa.Text, nullable=False),
+    sa.Column("supersedes", sa.Text, nullable=False),
+    sa.Column("superseded_by", sa.Text, nullable=False),
+    sa.Column("changed_at", UtcDateTime, nullable=False),
+    sa.CheckConstraint(_in("change", INCIDENT_CHANGES), name="change"),
+    sa.Index("ix_incident_revisions_incident_id", "incident_id"),
+    sa.Index("ix_incident_revisions_run_id", "run_id"),
+)
+"""Every change of an incident; ``added``/``removed`` JSON lists of [series, time],
+``supersedes``/``superseded_by`` JSON lists of incident ids."""
+
+incident_sync = sa.Table(
+    "incident_sync",
+    metadata,
+    sa.Column("name", sa.Text, primary_key=True),
+    sa.Column("revision_id", sa.Integer, nullable=False),
+    sa.Column("observed_start", UtcDateTime, nullable=True),
+    sa.Column("observed_end", UtcDateTime, nullable=True),
+)
+"""How far the incidents are up to date: the last ``event_revisions`` id taken
+into account and the observed record they were computed for."""
+
 
 EVENT_COLUMNS: tuple[str, ...] = (
     "series_id",

@@ -178,10 +178,8 @@ def write_stored_report(
 
 def _stored_labels(db: str) -> dict[str, dict[str, str | None]]:
     """The series' attributes (none for a database from before them)."""
-    from changekind.tasks import incident_store
-
     try:
-        return incident_store.read_labels(db)
+        return persist.read_labels(db)
     except DBAPIError:
         return {}
 
@@ -198,12 +196,11 @@ def _write_incidents(
 ) -> tuple[int, Path | None]:
     """The incidents page beside the events' page (incidents with a selected member,
     or all since ``since``); no page when there is no incident."""
-    from changekind.tasks import incident_store
     from changekind.tasks.report.incidents import read_member_series, write_incident_report
 
     try:
-        found = incident_store.read_incidents(db, since=since)
-        states = incident_store.incident_states(db)
+        found = persist.read_incidents(db, since=since)
+        states = persist.incident_states(db)
     except DBAPIError:  # a database from before the incidents (it is migrated by any scan)
         return 0, None
     if keep is not None:

@@ -29,7 +29,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from changekind.tasks import incident_store, persist
+from changekind.tasks import persist
 from changekind.tasks.types import Event, FittedModel
 from tests.benchmarks.bench_incidents import START, STEP, WARM_SCAN_SECONDS, make_events, make_fleet
 
@@ -106,7 +106,7 @@ def main() -> None:
             )
             persist.write_events(engine, "history", _events(events))
             labels = fleet.reset_index()
-            wl, cl, changed = _timed(lambda: incident_store.write_labels(engine, "history", labels))
+            wl, cl, changed = _timed(lambda: persist.write_labels(engine, "history", labels))
             print(
                 f"{args.series:,} series, {len(events):,} stored events over {args.days} days, "
                 f"database {engine.url.get_backend_name()}\n"
@@ -114,7 +114,7 @@ def main() -> None:
             print(
                 f"labels stored the first time: {changed:,} values, {wl:.2f} s wall, {cl:.2f} s CPU"
             )
-            wf, cf, first = _timed(lambda: incident_store.refresh_incidents(engine, "history"))
+            wf, cf, first = _timed(lambda: persist.refresh_incidents(engine, "history"))
             print(
                 f"first update (whole history): {len(first.changes)} incidents, "
                 f"{wf:.2f} s wall, {cf:.2f} s CPU"
@@ -126,9 +126,9 @@ def main() -> None:
             later = end + pd.Timedelta(hours=1)
             persist.write_events(engine, "scan", _events(hour))
             persist.update_watermarks(engine, dict.fromkeys(ids, later.isoformat()))
-            wu, cu, done = _timed(lambda: incident_store.refresh_incidents(engine, "scan"))
-            ws, cs, _ = _timed(lambda: incident_store.write_labels(engine, "scan", labels))
-            wr, cr, again = _timed(lambda: incident_store.refresh_incidents(engine, "rerun"))
+            wu, cu, done = _timed(lambda: persist.refresh_incidents(engine, "scan"))
+            ws, cs, _ = _timed(lambda: persist.write_labels(engine, "scan", labels))
+            wr, cr, again = _timed(lambda: persist.refresh_incidents(engine, "rerun"))
         finally:
             engine.dispose()
     print(

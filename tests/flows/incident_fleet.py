@@ -75,7 +75,7 @@ def store_incident_fleet(url: str, folder: Path) -> tuple[Path, dict[str, object
     """The fleet as a Parquet source and, in the database at ``url``, its injected
     events (the rollout's level shifts at each host's upgrade hour, the rack spike),
     the series' models and labels, and the incidents that follow.  (source, truth)"""
-    from changekind.tasks import incident_store, persist
+    from changekind.tasks import persist
     from changekind.tasks.types import FittedModel
 
     data, truth = make_incident_fleet()
@@ -107,6 +107,6 @@ def store_incident_fleet(url: str, folder: Path) -> tuple[Path, dict[str, object
     end = data["timestamp"].max().isoformat()
     persist.save_models(url, models, watermarks=dict.fromkeys(ids, end))
     last = data.sort_values("timestamp").groupby("series_id").tail(1)
-    incident_store.write_labels(url, "run-1", last[["series_id", "rack", "firmware"]])
-    incident_store.refresh_incidents(url, "run-1")
+    persist.write_labels(url, "run-1", last[["series_id", "rack", "firmware"]])
+    persist.refresh_incidents(url, "run-1")
     return source, truth

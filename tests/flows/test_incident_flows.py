@@ -15,7 +15,6 @@ from prefect.events.worker import EventsWorker
 
 from changekind.flows.scan import backfill_flow, scan_flow
 from changekind.flows.settings import RunOptions
-from changekind.tasks import incident_store as store
 from changekind.tasks import persist
 from changekind.tasks.errors import ConfigError
 from tests.flows.incident_fleet import START, make_incident_fleet, write_source
@@ -47,7 +46,7 @@ def _ours(worker) -> list:
 
 
 def _incident_of(db: str, series: set[str]):
-    found = store.read_incidents(db)
+    found = persist.read_incidents(db)
     return max(found, key=lambda i: len(set(i.series_ids) & series)) if found else None
 
 
@@ -62,7 +61,7 @@ def _check_incidents(db: str, truth) -> None:
     assert spike.shared_labels == {"rack": "r3"}
     # The injected single spikes join no incident (chance coincidences of false
     # events may: two events within a link of each other in a quiet fleet are one).
-    members = {(m.series_id, m.event_time) for i in store.read_incidents(db) for m in i.members}
+    members = {(m.series_id, m.event_time) for i in persist.read_incidents(db) for m in i.members}
     found = {
         (s, t)
         for s, t in persist.read_events(db)[["series_id", "event_time"]].itertuples(index=False)
@@ -83,7 +82,7 @@ def test_scan_stores_labels_and_incidents_and_emits_events(
     db = f"sqlite:///{tmp_path / 'ck.db'}"
     summary = _run(scan_flow, source, db)
     assert summary.labelled == 24
-    labels = store.read_labels(db)
+    labels = persist.read_labels(db)
     assert labels["vault-r2-h2/commit-ms"] == {"firmware": "5.2", "rack": "r2"}
     assert labels["vault-r2-h1/commit-ms"] == {"firmware": "5.1", "rack": "r2"}
     _check_incidents(db, truth)
@@ -146,7 +145,7 @@ def test_overlapping_backfills_give_the_incidents_of_one_scan(
         warmup="5D",
     )
     _check_incidents(pg_url, truth)
-    first = [i.to_record() for i in store.read_incidents(pg_url)]
+    first = [i.to_record() for i in persist.read_incidents(pg_url)]
     once = f"sqlite:///{tmp_path / 'once.db'}"
     _run(backfill_flow, source, once, start=start, end=end, chunk="2D", warmup="5D")
     # The incidents of the events each database holds are the grouping of those events:
@@ -154,7 +153,7 @@ def test_overlapping_backfills_give_the_incidents_of_one_scan(
     a = persist.read_events(pg_url)[["series_id", "event_time", "event_type", "status"]]
     b = persist.read_events(once)[["series_id", "event_time", "event_type", "status"]]
     if a.reset_index(drop=True).equals(b.reset_index(drop=True)):
-        assert first == [i.to_record() for i in store.read_incidents(once)]
+        assert first == [i.to_record() for i in persist.read_incidents(once)]
 
 
 def test_a_missing_label_column_is_refused_before_anything_runs(prefect_server, fleet, tmp_path):

@@ -27,8 +27,8 @@ from changekind.flows.notify import (
     run_events,
     size_band,
 )
-from changekind.tasks.incident_store import ConfirmedEvent, IncidentRefresh
 from changekind.tasks.incidents import IncidentChange, group_incidents
+from changekind.tasks.persist import ConfirmedEvent, IncidentRefresh
 from tests.tasks.incidents.test_incidents import STEP, make_events, make_labels
 
 AUTOMATIONS = Path(__file__).resolve().parents[2] / "infra" / "automation-incidents.yaml"

@@ -21,6 +21,18 @@ from changekind.tasks.detect import analyse_series
 from changekind.tasks.search import robust_sigma
 from changekind.tasks.simulate import arma_filter
 
+HOURS = pd.date_range("2026-01-01", periods=480, freq="h")
+
+
+def _t3_ar1(rng: np.random.Generator, *, kick: tuple[int, float] | None = None) -> np.ndarray:
+    """480 hourly points of AR(1), phi 0.6, level 50, with Student-t(3)
+    innovations scaled to unit variance; ``kick`` (position, size) adds to one
+    innovation."""
+    shocks = rng.standard_t(3, size=HOURS.size) / math.sqrt(3)
+    if kick is not None:
+        shocks[kick[0]] += kick[1]
+    return arma_filter(shocks, ar=(0.6,)) + 50
+
 
 def test_critical_value_is_the_bonferroni_bound_over_the_tests():
     # Reference: scipy.stats.norm quantiles.  480 points x 4 types, 0.2 false
@@ -65,11 +77,9 @@ def test_heavy_tailed_clean_series_give_few_false_events():
     # with a Gaussian critical value such series gave about 40 times the false
     # events of Gaussian ones (shared method notes).
     rng = np.random.default_rng(8)
-    stamps = pd.date_range("2026-01-01", periods=480, freq="h")
     total = 0
     for _ in range(10):
-        shocks = rng.standard_t(3, size=480) / math.sqrt(3)
-        result = analyse_series("t3", stamps, arma_filter(shocks, ar=(0.6,)) + 50)
+        result = analyse_series("t3", HOURS, _t3_ar1(rng))
         total += len(result.events)
         assert result.model.tail is not None
     assert total <= 3
@@ -116,13 +126,11 @@ def test_heavy_tails_keep_level_shifts_findable():
     # values found it in 9 of 10 series; holding every type to the
     # single-residual value (the earlier rule) found it in 6.
     rng = np.random.default_rng(5)
-    stamps = pd.date_range("2026-01-01", periods=480, freq="h")
     found = 0
     for _ in range(10):
-        shocks = rng.standard_t(3, size=480) / math.sqrt(3)
-        y = arma_filter(shocks, ar=(0.6,)) + 50
+        y = _t3_ar1(rng)
         y[360:] += 5.0 / math.sqrt(1 - 0.36)
-        result = analyse_series("t3", stamps, y)
+        result = analyse_series("t3", HOURS, y)
         found += any(e.event_type == "LS" and abs(e.position - 360) <= 1 for e in result.events)
     assert found >= 8
 
@@ -146,11 +154,8 @@ def test_a_lone_large_residual_near_the_end_is_not_a_level_shift_under_heavy_tai
     # end of 480 hourly points: clipped at 3 sigma for the spread types, it
     # cannot pass for a shift (an AO or IO if anything).
     rng = np.random.default_rng(9)
-    stamps = pd.date_range("2026-01-01", periods=480, freq="h")
     for _ in range(8):
-        shocks = rng.standard_t(3, size=480) / math.sqrt(3)
-        shocks[470] += 12.0
-        result = analyse_series("t3", stamps, arma_filter(shocks, ar=(0.6,)) + 50)
+        result = analyse_series("t3", HOURS, _t3_ar1(rng, kick=(470, 12.0)))
         assert not [
             e for e in result.events if e.event_type in ("LS", "TC") and abs(e.position - 470) <= 2
         ]

@@ -3,7 +3,7 @@
 The database holds the invented fleet of tests/flows/incident_fleet.py (its
 injected events, models and labels; incidents from ``refresh_incidents``).
 References: the injected truth (members, shared attribute, effect sizes) and
-the stored rows read back through ``incident_store.read_incidents``.
+the stored rows read back through ``persist.read_incidents``.
 """
 
 from __future__ import annotations

@@ -1,22 +1,13 @@
-"""Storage of series attributes and fleet incidents (tables, reads, the update after a run).
+"""Fleet incidents in the database: reading them back, and the update after a run.
 
-Series attributes
------------------
-``series_labels`` holds the current value of each label of each series (long
-form: one row per series and label, so a fleet can add a label without a
-schema change); ``series_label_changes`` logs every change (old value, new
-value, run).  :func:`write_labels` writes what a run read, and only what
-changed: writing the same labels again changes nothing.
-
-Incidents
----------
 ``incidents`` holds one row per incident (the summary of
 :class:`~changekind.tasks.incidents.Incident`), ``incident_members`` its
 member events, ``incident_labels`` every label value tested with its
 hypergeometric tail and Holm-adjusted p-value (``shared`` marks the shared
 ones), ``incident_revisions`` every change an update made (new, grown,
 shrunk, changed, gone, with the members added or removed and the ids
-superseded).  :func:`refresh_incidents` is the update after a run: it finds
+superseded); the tables are in :mod:`changekind.tasks.persist.schema`.
+:func:`refresh_incidents` is the update after a run: it finds
 what the runs changed since the last update from ``event_revisions`` (every
 revision with a larger id than the last one processed, kept in
 ``incident_sync``) and from the growth of the observed record, recomputes the
@@ -30,6 +21,10 @@ backfills end with the incidents that one backfill of the union gives.
 An incident is *open* while it can still change on its own: a member is
 provisional, or its end lies within the grouping margin of the newest
 observed time (later scans may add members); otherwise it is *settled*.
+
+Top to bottom: reading stored incidents; the values an update returns; what
+an update reads (sampling intervals, the observed record, events); writing
+one incident; :func:`refresh_incidents`.
 """
 
 from __future__ import annotations
@@ -46,8 +41,6 @@ import numpy as np
 import pandas as pd
 import sqlalchemy as sa
 
-from changekind.tasks import persist
-from changekind.tasks.errors import ConfigError
 from changekind.tasks.incidents import (
     REQUIRED_COLUMNS,
     GroupingRule,
@@ -59,303 +52,31 @@ from changekind.tasks.incidents import (
 )
 from changekind.tasks.persist.convert import _as_datetime, _chunks, _now, _upsert
 from changekind.tasks.persist.engines import _engine
-from changekind.tasks.persist.schema import Database, UtcDateTime, metadata
+from changekind.tasks.persist.labels import read_fleet_labels, read_labels
+from changekind.tasks.persist.schema import (
+    INCIDENT_CHANGES,
+    Database,
+    event_revisions,
+    incident_labels,
+    incident_members,
+    incident_revisions,
+    incident_sync,
+    incidents,
+    series_events,
+    series_models,
+)
 from changekind.tasks.types import REPORTED_TYPES
 
 __all__ = [
-    "INCIDENT_CHANGES",
-    "INCIDENT_STATES",
     "ConfirmedEvent",
     "IncidentRefresh",
-    "incident_labels",
-    "incident_members",
-    "incident_revisions",
-    "incident_sync",
-    "incidents",
-    "read_fleet_labels",
+    "incident_states",
     "read_incidents",
-    "read_labels",
     "refresh_incidents",
-    "series_label_changes",
-    "series_labels",
-    "write_labels",
 ]
 
-INCIDENT_STATES: tuple[str, ...] = ("open", "settled")
-INCIDENT_CHANGES: tuple[str, ...] = ("new", "grown", "shrunk", "changed", "gone")
 _SYNC_NAME = "fleet"
-
-
-def _in(column: str, values: Sequence[str]) -> str:
-    return f"{column} IN ({', '.join(repr(v) for v in values)})"
-
-
-# --------------------------------------------------------------------------- schema
-
-series_labels = sa.Table(
-    "series_labels",
-    metadata,
-    sa.Column("series_id", sa.Text, nullable=False),
-    sa.Column("label", sa.Text, nullable=False),
-    sa.Column("value", sa.Text, nullable=True),
-    sa.Column("observed_at", sa.Text, nullable=True),
-    sa.Column("last_run_id", sa.Text, nullable=False),
-    sa.Column("last_seen", UtcDateTime, nullable=False),
-    sa.PrimaryKeyConstraint("series_id", "label"),
-    sa.Index("ix_series_labels_label_value", "label", "value"),
-)
-"""The current value of each label of each series (NULL: the source left it empty).
-
-``observed_at`` is the source time of the row the value was read from (the
-series' latest row in the data the run read)."""
-
-series_label_changes = sa.Table(
-    "series_label_changes",
-    metadata,
-    sa.Column("change_id", sa.Integer, primary_key=True, autoincrement=True),
-    sa.Column("series_id", sa.Text, nullable=False),
-    sa.Column("label", sa.Text, nullable=False),
-    sa.Column("old_value", sa.Text, nullable=True),
-    sa.Column("new_value", sa.Text, nullable=True),
-    sa.Column("observed_at", sa.Text, nullable=True),
-    sa.Column("run_id", sa.Text, nullable=False),
-    sa.Column("changed_at", UtcDateTime, nullable=False),
-    sa.Index("ix_series_label_changes_series", "series_id", "label"),
-)
-"""Every change of a series' label: one row per run that changed it."""
-
-incidents = sa.Table(
-    "incidents",
-    metadata,
-    sa.Column("incident_id", sa.Text, primary_key=True),
-    sa.Column("quantity", sa.Text, nullable=False),
-    sa.Column("direction", sa.Text, nullable=False),
-    sa.Column("start_ts", UtcDateTime, nullable=False),
-    sa.Column("end_ts", UtcDateTime, nullable=False),
-    sa.Column("n_series", sa.Integer, nullable=False),
-    sa.Column("fleet_size", sa.Integer, nullable=False),
-    sa.Column("share_of_fleet", sa.Float, nullable=False),
-    sa.Column("dominant_type", sa.Text, nullable=False),
-    sa.Column("type_counts", sa.Text, nullable=False),
-    sa.Column("median_effect_pct", sa.Float, nullable=True),
-    sa.Column("n_provisional", sa.Integer, nullable=False),
-    sa.Column("shared_labels", sa.Text, nullable=False),
-    sa.Column("state", sa.Text, nullable=False),
-    sa.Column("first_run_id", sa.Text, nullable=False),
-    sa.Column("last_run_id", sa.Text, nullable=False),
-    sa.Column("first_seen", UtcDateTime, nullable=False),
-    sa.Column("last_seen", UtcDateTime, nullable=False),
-    sa.CheckConstraint("quantity IN ('level', 'spread')", name="quantity"),
-    sa.CheckConstraint("direction IN ('up', 'down')", name="direction"),
-    sa.CheckConstraint(_in("dominant_type", REPORTED_TYPES), name="dominant_type"),
-    sa.CheckConstraint(_in("state", INCIDENT_STATES), name="state"),
-    sa.Index("ix_incidents_start_ts", "start_ts"),
-    sa.Index("ix_incidents_end_ts", "end_ts"),
-)
-"""One row per incident: events of several series that changed the same way together.
-
-``type_counts`` is a JSON object (type -> members); ``shared_labels`` a JSON
-object (label -> value) of the values found shared (see ``incident_labels``)."""
-
-incident_members = sa.Table(
-    "incident_members",
-    metadata,
-    sa.Column("incident_id", sa.Text, nullable=False),
-    sa.Column("series_id", sa.Text, nullable=False),
-    sa.Column("event_time", sa.Text, nullable=False),
-    sa.Column("event_ts", UtcDateTime, nullable=False),
-    sa.Column("event_type", sa.Text, nullable=False),
-    sa.Column("effect", sa.Float, nullable=False),
-    sa.Column("effect_pct", sa.Float, nullable=True),
-    sa.Column("t_stat", sa.Float, nullable=False),
-    sa.Column("status", sa.Text, nullable=False),
-    sa.PrimaryKeyConstraint("incident_id", "series_id"),
-    sa.ForeignKeyConstraint(["incident_id"], ["incidents.incident_id"], ondelete="CASCADE"),
-    sa.Index("ix_incident_members_event", "series_id", "event_time"),
-)
-"""The member events of each incident (one per series)."""
-
-incident_labels = sa.Table(
-    "incident_labels",
-    metadata,
-    sa.Column("incident_id", sa.Text, nullable=False),
-    sa.Column("label", sa.Text, nullable=False),
-    sa.Column("value", sa.Text, nullable=False),
-    sa.Column("members_with", sa.Integer, nullable=False),
-    sa.Column("members_known", sa.Integer, nullable=False),
-    sa.Column("fleet_with", sa.Integer, nullable=False),
-    sa.Column("fleet_known", sa.Integer, nullable=False),
-    sa.Column("p_value", sa.Float, nullable=False),
-    sa.Column("p_adjusted", sa.Float, nullable=False),
-    sa.Column("shared", sa.Boolean, nullable=False),
-    sa.PrimaryKeyConstraint("incident_id", "label", "value"),
-    sa.ForeignKeyConstraint(["incident_id"], ["incidents.incident_id"], ondelete="CASCADE"),
-)
-"""Every label value tested for an incident: carriers among members and fleet,
-the hypergeometric upper tail ``p_value``, Holm's ``p_adjusted``, ``shared``."""
-
-incident_revisions = sa.Table(
-    "incident_revisions",
-    metadata,
-    sa.Column("revision_id", sa.Integer, primary_key=True, autoincrement=True),
-    sa.Column("incident_id", sa.Text, nullable=False),
-    sa.Column("run_id", sa.Text, nullable=False),
-    sa.Column("change", sa.Text, nullable=False),
-    sa.Column("n_series", sa.Integer, nullable=True),
-    sa.Column("added", sa.Text, nullable=False),
-    sa.Column("removed", sa.Text, nullable=False),
-    sa.Column("supersedes", sa.Text, nullable=False),
-    sa.Column("superseded_by", sa.Text, nullable=False),
-    sa.Column("changed_at", UtcDateTime, nullable=False),
-    sa.CheckConstraint(_in("change", INCIDENT_CHANGES), name="change"),
-    sa.Index("ix_incident_revisions_incident_id", "incident_id"),
-    sa.Index("ix_incident_revisions_run_id", "run_id"),
-)
-"""Every change of an incident; ``added``/``removed`` JSON lists of [series, time],
-``supersedes``/``superseded_by`` JSON lists of incident ids."""
-
-incident_sync = sa.Table(
-    "incident_sync",
-    metadata,
-    sa.Column("name", sa.Text, primary_key=True),
-    sa.Column("revision_id", sa.Integer, nullable=False),
-    sa.Column("observed_start", UtcDateTime, nullable=True),
-    sa.Column("observed_end", UtcDateTime, nullable=True),
-)
-"""How far the incidents are up to date: the last ``event_revisions`` id taken
-into account and the observed record they were computed for."""
-
-
-# --------------------------------------------------------------------------- labels
-
-
-def write_labels(
-    db: Database,
-    run_id: str,
-    labels: pd.DataFrame,
-    *,
-    at: datetime | None = None,
-) -> int:
-    """Store the labels a run read; log each change.  Returns the number of changes.
-
-    Parameters
-    ----------
-    labels : pandas.DataFrame
-        One row per series: ``series_id``, optionally ``observed_at`` (text),
-        and one column per label (values as text; None or NaN for empty).  A
-        label that a series already has and the frame gives again with the
-        same value is left untouched (bookkeeping included).
-    """
-    if not isinstance(labels, pd.DataFrame) or "series_id" not in labels.columns:
-        raise ConfigError("labels must be a DataFrame with a series_id column and a label each")
-    names = [c for c in labels.columns if c not in ("series_id", "observed_at")]
-    if not names or labels.empty:
-        return 0
-    when = _now(at)
-    rows: dict[tuple[str, str], dict[str, Any]] = {}
-    sids = [str(s) for s in labels["series_id"].tolist()]
-    if "observed_at" in labels.columns:
-        seen = [_text_or_none(v) for v in labels["observed_at"].tolist()]
-    else:
-        seen = [None] * len(sids)
-    for name in names:
-        values = [_text_or_none(v) for v in labels[name].tolist()]
-        for sid, value, at in zip(sids, values, seen, strict=True):
-            rows[(sid, str(name))] = {
-                "series_id": sid,
-                "label": str(name),
-                "value": value,
-                "observed_at": at,
-            }
-    series = sorted({k[0] for k in rows})
-    changes: list[dict[str, Any]] = []
-    with _engine(db) as engine, engine.begin() as conn:
-        # One read of the whole table (a row per series and label: small), not
-        # thousands of IN lists when a run covers the fleet.
-        wanted = set(series)
-        stored: dict[tuple[str, str], Any] = {
-            (sid, label): value
-            for sid, label, value in conn.execute(
-                sa.select(series_labels.c.series_id, series_labels.c.label, series_labels.c.value)
-            )
-            if sid in wanted
-        }
-        upserts = []
-        for key, row in rows.items():
-            if key in stored and stored[key] == row["value"]:
-                continue
-            upserts.append({**row, "last_run_id": run_id, "last_seen": when})
-            changes.append(
-                {
-                    "series_id": key[0],
-                    "label": key[1],
-                    "old_value": stored.get(key),
-                    "new_value": row["value"],
-                    "observed_at": row["observed_at"],
-                    "run_id": run_id,
-                    "changed_at": when,
-                }
-            )
-        _upsert(
-            conn,
-            series_labels,
-            upserts,
-            keys=("series_id", "label"),
-            update=("value", "observed_at", "last_run_id", "last_seen"),
-        )
-        if changes:
-            conn.execute(sa.insert(series_label_changes), changes)
-    return len(changes)
-
-
-def read_labels(
-    db: Database, series_ids: Sequence[str] | None = None
-) -> dict[str, dict[str, str | None]]:
-    """The current labels: ``series_id -> {label: value}`` (only series that have labels)."""
-    query = sa.select(series_labels.c.series_id, series_labels.c.label, series_labels.c.value)
-    out: dict[str, dict[str, str | None]] = {}
-    with _engine(db) as engine, engine.connect() as conn:
-        if series_ids is None:
-            rows = list(conn.execute(query))
-        else:
-            rows = []
-            for chunk in _chunks(sorted(set(series_ids))):
-                rows.extend(conn.execute(query.where(series_labels.c.series_id.in_(chunk))))
-    for sid, label, value in sorted(rows, key=lambda r: (r[0], r[1])):
-        out.setdefault(sid, {})[label] = value
-    return out
-
-
-def read_fleet_labels(conn: sa.Connection) -> pd.DataFrame:
-    """The fleet (every series with a model, a label or an event) and its labels.
-
-    One row per series (index ``series_id``), one column per label; None where
-    a series has no value.
-    """
-    ids: set[str] = set(conn.execute(sa.select(persist.series_models.c.series_id)).scalars())
-    ids |= set(conn.execute(sa.select(series_labels.c.series_id).distinct()).scalars())
-    ids |= set(conn.execute(sa.select(persist.series_events.c.series_id).distinct()).scalars())
-    rows = conn.execute(
-        sa.select(series_labels.c.series_id, series_labels.c.label, series_labels.c.value)
-    ).all()
-    index = pd.Index(sorted(ids), name="series_id")
-    if not rows:
-        return pd.DataFrame(index=index)
-    long = pd.DataFrame([tuple(r) for r in rows], columns=["series_id", "label", "value"])
-    wide = long.pivot(index="series_id", columns="label", values="value")
-    frame = wide.reindex(index).astype(object)
-    frame = frame.where(frame.notna(), None)
-    frame.columns = [str(c) for c in frame.columns]
-    return frame
-
-
-def _text_or_none(value: Any) -> str | None:
-    if value is None or value is pd.NA or value is pd.NaT:
-        return None
-    if isinstance(value, float) and math.isnan(value):
-        return None
-    text = str(value)
-    return text if text.strip() else None
+"""The one row of ``incident_sync``."""
 
 
 # --------------------------------------------------------------------------- incidents: read
@@ -512,9 +233,7 @@ class IncidentRefresh:
 def _steps(conn: sa.Connection) -> dict[str, float]:
     """Each series' sampling interval in seconds (the window for windowed models)."""
     out: dict[str, float] = {}
-    for sid, text in conn.execute(
-        sa.select(persist.series_models.c.series_id, persist.series_models.c.model_json)
-    ):
+    for sid, text in conn.execute(sa.select(series_models.c.series_id, series_models.c.model_json)):
         try:
             data = json.loads(text)
         except (TypeError, ValueError):
@@ -534,9 +253,7 @@ def _steps(conn: sa.Connection) -> dict[str, float]:
 
 def _observed(conn: sa.Connection) -> tuple[pd.Timestamp, pd.Timestamp] | None:
     """The span the event record covers: first analysed time (or event) to the newest watermark."""
-    rows = conn.execute(
-        sa.select(persist.series_models.c.analysed_from, persist.series_models.c.watermark)
-    ).all()
+    rows = conn.execute(sa.select(series_models.c.analysed_from, series_models.c.watermark)).all()
 
     def parsed(texts: set[Any]) -> pd.Series:  # each distinct text once (most are equal)
         values = pd.Series(sorted(t for t in texts if t is not None), dtype=object)
@@ -546,7 +263,7 @@ def _observed(conn: sa.Connection) -> tuple[pd.Timestamp, pd.Timestamp] | None:
     ends = parsed({r[1] for r in rows})
     if ends.notna().sum() == 0:
         return None
-    first_event = conn.execute(sa.select(sa.func.min(persist.series_events.c.event_ts))).scalar()
+    first_event = conn.execute(sa.select(sa.func.min(series_events.c.event_ts))).scalar()
     candidates = [t for t in (starts.min(), first_event) if t is not None and not pd.isna(t)]
     end = pd.Timestamp(ends.max())
     start = min((pd.Timestamp(t) for t in candidates), default=end)
@@ -555,7 +272,7 @@ def _observed(conn: sa.Connection) -> tuple[pd.Timestamp, pd.Timestamp] | None:
 
 
 def _read_events(conn: sa.Connection, span: tuple[pd.Timestamp, pd.Timestamp]) -> pd.DataFrame:
-    table = persist.series_events
+    table = series_events
     query = sa.select(*(table.c[n] for n in REQUIRED_COLUMNS)).where(
         table.c.event_ts >= span[0].to_pydatetime(), table.c.event_ts <= span[1].to_pydatetime()
     )
@@ -563,6 +280,13 @@ def _read_events(conn: sa.Connection, span: tuple[pd.Timestamp, pd.Timestamp]) -
     frame = pd.DataFrame(rows, columns=list(REQUIRED_COLUMNS))
     frame["event_ts"] = pd.to_datetime(frame["event_ts"], utc=True)
     return frame
+
+
+def _drop_incident(conn: sa.Connection, iid: str) -> None:
+    """Delete one incident's rows (members, label shares, summary)."""
+    conn.execute(sa.delete(incident_members).where(incident_members.c.incident_id == iid))
+    conn.execute(sa.delete(incident_labels).where(incident_labels.c.incident_id == iid))
+    conn.execute(sa.delete(incidents).where(incidents.c.incident_id == iid))
 
 
 def _write_incident(
@@ -576,9 +300,7 @@ def _write_incident(
 ) -> None:
     """Replace one incident's rows (summary, members, label shares)."""
     iid = inc.incident_id
-    conn.execute(sa.delete(incident_members).where(incident_members.c.incident_id == iid))
-    conn.execute(sa.delete(incident_labels).where(incident_labels.c.incident_id == iid))
-    conn.execute(sa.delete(incidents).where(incidents.c.incident_id == iid))
+    _drop_incident(conn, iid)
     first_run, first_seen = first if first is not None else (run_id, when)
     conn.execute(
         sa.insert(incidents),
@@ -643,12 +365,6 @@ def _write_incident(
         )
 
 
-def _drop_incident(conn: sa.Connection, iid: str) -> None:
-    conn.execute(sa.delete(incident_members).where(incident_members.c.incident_id == iid))
-    conn.execute(sa.delete(incident_labels).where(incident_labels.c.incident_id == iid))
-    conn.execute(sa.delete(incidents).where(incidents.c.incident_id == iid))
-
-
 def _state(inc: Incident, observed_end: pd.Timestamp, margin: pd.Timedelta) -> str:
     return "open" if inc.n_provisional > 0 or inc.end >= observed_end - margin else "settled"
 
@@ -700,7 +416,7 @@ def refresh_incidents(
     t0 = time.perf_counter()
     rule = GroupingRule() if rule is None else rule
     when = _now(at)
-    ev, rev = persist.series_events, persist.event_revisions
+    ev, rev = series_events, event_revisions
     with _engine(db) as engine, engine.begin() as conn:
         # Step 1
         sync = (

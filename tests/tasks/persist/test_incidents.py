@@ -1,7 +1,8 @@
-"""Stored series attributes and incidents, on a real SQLite file and the real PostgreSQL server.
+"""Stored incidents (``persist.refresh_incidents``/``read_incidents``), on a real
+SQLite file and the real PostgreSQL server.
 
 The fleet and its day are the invented cold-storage cluster of
-tests/tasks/test_incidents.py (a firmware rollout, a rack-wide spike,
+tests/tasks/incidents/test_incidents.py (a firmware rollout, a rack-wide spike,
 unrelated single events).  References: the injected truth (which series each
 story touched, which attribute it shares) and the pure grouping
 (``group_incidents`` over the same events and labels), which the stored
@@ -16,12 +17,16 @@ import math
 from datetime import UTC, datetime, timedelta
 
 import pandas as pd
-import pytest
 import sqlalchemy as sa
 
-from changekind.tasks import incident_store as store
 from changekind.tasks import persist
 from changekind.tasks.incidents import group_incidents
+from changekind.tasks.persist.schema import (
+    incident_labels,
+    incident_members,
+    incident_revisions,
+    incidents,
+)
 from changekind.tasks.types import Event, FittedModel
 from tests.tasks.incidents.test_incidents import (
     DAY,
@@ -30,30 +35,8 @@ from tests.tasks.incidents.test_incidents import (
     make_events,
     make_labels,
 )
-from tests.tasks.persist.tables import insert_legacy_event
 
 T0 = datetime(2031, 5, 7, 1, 0, tzinfo=UTC)
-NEW_TABLES = {
-    "series_labels",
-    "series_label_changes",
-    "incidents",
-    "incident_members",
-    "incident_labels",
-    "incident_revisions",
-    "incident_sync",
-}
-
-
-@pytest.fixture(params=["sqlite", pytest.param("postgresql", marks=pytest.mark.postgres)])
-def url(request: pytest.FixtureRequest) -> str:
-    return request.getfixturevalue("sqlite_url" if request.param == "sqlite" else "pg_url")
-
-
-@pytest.fixture
-def engine(url: str):
-    eng = persist.init_db(url)
-    yield eng
-    eng.dispose()
 
 
 def _events(frame: pd.DataFrame) -> list[Event]:
@@ -128,105 +111,19 @@ def _labels_frame() -> pd.DataFrame:
 
 def _stored_records(engine) -> list[dict]:
     return [
-        i.to_record() for i in sorted(store.read_incidents(engine), key=lambda i: i.incident_id)
+        i.to_record() for i in sorted(persist.read_incidents(engine), key=lambda i: i.incident_id)
     ]
-
-
-# --------------------------------------------------------------------------- migration
-
-
-def test_migration_0005_adds_tables_and_views_and_keeps_rows(url: str) -> None:
-    engine = persist.connect(url)
-    try:
-        persist.migrate(engine, revision="0004")
-        # Today's event table (half_life a number since 0007) does not apply at
-        # 0004: rows written with the columns every revision has.
-        with engine.begin() as conn:
-            for hour in range(3):
-                insert_legacy_event(conn, f"2024-03-01T1{hour}:00:00Z")
-        before = persist.table_snapshot(engine)
-        persist.migrate(engine, revision="0005")  # 0006 adds event columns of its own
-        after = persist.table_snapshot(engine)
-        assert {k: v for k, v in after.items() if k not in NEW_TABLES} == before
-        assert {k: after[k] for k in NEW_TABLES} == {k: [] for k in NEW_TABLES}
-        with engine.connect() as conn:
-            views = set(sa.inspect(conn).get_view_names())
-        assert {"open_incidents", "event_labels"} <= views
-        from alembic import command
-
-        from changekind.tasks.persist.engines import _alembic_config
-
-        config = _alembic_config()
-
-        with engine.begin() as conn:
-            config.attributes["connection"] = conn
-            command.downgrade(config, "0004")
-        with engine.connect() as conn:
-            tables = set(sa.inspect(conn).get_table_names())
-            views = set(sa.inspect(conn).get_view_names())
-        assert not tables & NEW_TABLES
-        assert not views & {"open_incidents", "event_labels"}
-        assert persist.table_snapshot(engine) == before
-    finally:
-        engine.dispose()
-
-
-# --------------------------------------------------------------------------- labels
-
-
-def test_labels_are_stored_once_and_changes_logged(engine) -> None:
-    frame = pd.DataFrame(
-        {
-            "series_id": ["a", "b", "c"],
-            "observed_at": ["2031-05-06T10:00:00", "2031-05-06T10:00:00", None],
-            "rack": ["r1", "r1", "r2"],
-            "firmware": ["9.3", None, float("nan")],
-        }
-    )
-    assert store.write_labels(engine, "run-1", frame, at=T0) == 6
-    before = persist.table_snapshot(engine)
-    assert store.write_labels(engine, "run-2", frame, at=T0 + timedelta(hours=1)) == 0
-    assert persist.table_snapshot(engine) == before
-    assert store.read_labels(engine) == {
-        "a": {"firmware": "9.3", "rack": "r1"},
-        "b": {"firmware": None, "rack": "r1"},
-        "c": {"firmware": None, "rack": "r2"},
-    }
-    changed = frame.assign(firmware=["9.4", "9.4", None])
-    assert store.write_labels(engine, "run-3", changed, at=T0 + timedelta(hours=2)) == 2
-    with engine.connect() as conn:
-        log = conn.execute(
-            sa.select(
-                store.series_label_changes.c.series_id,
-                store.series_label_changes.c.old_value,
-                store.series_label_changes.c.new_value,
-                store.series_label_changes.c.run_id,
-            )
-            .where(store.series_label_changes.c.label == "firmware")
-            .order_by(store.series_label_changes.c.change_id)
-        ).all()
-    assert [tuple(r) for r in log] == [
-        ("a", None, "9.3", "run-1"),
-        ("b", None, None, "run-1"),
-        ("c", None, None, "run-1"),
-        ("a", "9.3", "9.4", "run-3"),
-        ("b", None, "9.4", "run-3"),
-    ]
-    assert store.read_labels(engine, ["a"]) == {"a": {"firmware": "9.4", "rack": "r1"}}
-
-
-# --------------------------------------------------------------------------- incidents
 
 
 def test_incidents_of_the_day_are_stored_as_the_grouping_gives_them(engine) -> None:
     events, truth = make_events()
     labels = make_labels()
-    store.write_labels(engine, "run-1", _labels_frame(), at=T0)
+    persist.write_labels(engine, "run-1", _labels_frame(), at=T0)
     end = DAY + pd.Timedelta(days=1)
     _write_day(engine, events, until=end, run="run-1")
-    done = store.refresh_incidents(engine, "run-1", at=T0)
+    done = persist.refresh_incidents(engine, "run-1", at=T0)
     assert done.counts()["new"] == 2 and len(done.changes) == 2
-    stored = store.read_incidents(engine)
+    stored = persist.read_incidents(engine)
     # Reference: the injected truth.
     by_series = {frozenset(i.series_ids): i for i in stored}
     rollout = by_series[frozenset(truth["rollout"])]
@@ -243,19 +140,19 @@ def test_incidents_of_the_day_are_stored_as_the_grouping_gives_them(engine) -> N
     # Newest first; the spike (provisional members) is open, the rollout settled
     # only once it lies a margin behind the newest scan.
     assert [i.incident_id for i in stored] == [spike.incident_id, rollout.incident_id]
-    states = store.incident_states(engine)
+    states = persist.incident_states(engine)
     assert states[spike.incident_id] == "open"
     with engine.connect() as conn:
         shared = conn.execute(
-            sa.select(store.incident_labels.c.label, store.incident_labels.c.value).where(
-                store.incident_labels.c.incident_id == rollout.incident_id,
-                store.incident_labels.c.shared.is_(True),
+            sa.select(incident_labels.c.label, incident_labels.c.value).where(
+                incident_labels.c.incident_id == rollout.incident_id,
+                incident_labels.c.shared.is_(True),
             )
         ).all()
         opened = conn.execute(sa.text("SELECT incident_id FROM open_incidents")).scalars().all()
         head = conn.execute(
-            sa.select(store.incidents.c.shared_labels).where(
-                store.incidents.c.incident_id == rollout.incident_id
+            sa.select(incidents.c.shared_labels).where(
+                incidents.c.incident_id == rollout.incident_id
             )
         ).scalar_one()
     assert [tuple(r) for r in shared] == [("firmware", ROLLOUT_FIRMWARE)]
@@ -264,7 +161,7 @@ def test_incidents_of_the_day_are_stored_as_the_grouping_gives_them(engine) -> N
     # A rerun that changes no event writes nothing.
     before = persist.content_snapshot(engine)
     _write_day(engine, events, until=end, run="run-2")
-    again = store.refresh_incidents(engine, "run-2", at=T0 + timedelta(hours=1))
+    again = persist.refresh_incidents(engine, "run-2", at=T0 + timedelta(hours=1))
     assert again.changes == () and again.n_revisions == 0
     assert persist.content_snapshot(engine) == before
 
@@ -275,22 +172,22 @@ def test_overlapping_runs_end_with_the_incidents_of_one_run(url: str, tmp_path) 
     end = DAY + pd.Timedelta(days=1)
     # One run over the whole day.
     once = persist.init_db(f"sqlite:///{tmp_path / 'once.db'}")
-    store.write_labels(once, "run", _labels_frame(), at=T0)
+    persist.write_labels(once, "run", _labels_frame(), at=T0)
     _write_day(once, events, until=end, run="run")
-    store.refresh_incidents(once, "run", at=T0)
+    persist.refresh_incidents(once, "run", at=T0)
     expected = _stored_records(once)
     once.dispose()
     # Hourly pieces on the database under test: scans to 11:00 (mid-rollout), to 17:00,
     # then the whole day again (an overlapping backfill), each followed by an update.
     engine = persist.init_db(url)
     try:
-        store.write_labels(engine, "scan", _labels_frame(), at=T0)
+        persist.write_labels(engine, "scan", _labels_frame(), at=T0)
         kinds = []
         for k, until in enumerate(
             (DAY + pd.Timedelta(hours=11), DAY + pd.Timedelta(hours=17), end, end)
         ):
             _write_day(engine, events, until=until, run=f"run-{k}")
-            done = store.refresh_incidents(engine, f"run-{k}", at=T0)
+            done = persist.refresh_incidents(engine, f"run-{k}", at=T0)
             kinds.append(sorted(c.kind for c in done.changes))
         assert _stored_records(engine) == expected
         # Mid-rollout the incident was new, later it grew; the last rerun changed nothing.
@@ -298,14 +195,14 @@ def test_overlapping_runs_end_with_the_incidents_of_one_run(url: str, tmp_path) 
         assert "grown" in kinds[1] and "new" in kinds[1]
         assert kinds[3] == []
         rollout = next(
-            i for i in store.read_incidents(engine) if set(i.series_ids) == truth["rollout"]
+            i for i in persist.read_incidents(engine) if set(i.series_ids) == truth["rollout"]
         )
         with engine.connect() as conn:
             changes = (
                 conn.execute(
-                    sa.select(store.incident_revisions.c.change)
-                    .where(store.incident_revisions.c.incident_id == rollout.incident_id)
-                    .order_by(store.incident_revisions.c.revision_id)
+                    sa.select(incident_revisions.c.change)
+                    .where(incident_revisions.c.incident_id == rollout.incident_id)
+                    .order_by(incident_revisions.c.revision_id)
                 )
                 .scalars()
                 .all()
@@ -318,21 +215,19 @@ def test_overlapping_runs_end_with_the_incidents_of_one_run(url: str, tmp_path) 
 def test_retracting_members_shrinks_or_removes_the_incident(engine) -> None:
     events, truth = make_events()
     end = DAY + pd.Timedelta(days=1)
-    store.write_labels(engine, "run-1", _labels_frame(), at=T0)
+    persist.write_labels(engine, "run-1", _labels_frame(), at=T0)
     _write_day(engine, events, until=end, run="run-1")
-    store.refresh_incidents(engine, "run-1", at=T0)
-    spike = next(i for i in store.read_incidents(engine) if set(i.series_ids) == truth["spike"])
+    persist.refresh_incidents(engine, "run-1", at=T0)
+    spike = next(i for i in persist.read_incidents(engine) if set(i.series_ids) == truth["spike"])
     # All but one member retracted: a lone event is not an incident.
     gone = [m.key for m in spike.members[1:]]
     persist.write_events(engine, "run-2", [], retract=gone, at=T0)
-    done = store.refresh_incidents(engine, "run-2", at=T0)
+    done = persist.refresh_incidents(engine, "run-2", at=T0)
     assert [(c.kind, c.incident_id) for c in done.changes] == [("gone", spike.incident_id)]
-    assert spike.incident_id not in store.incident_states(engine)
+    assert spike.incident_id not in persist.incident_states(engine)
     with engine.connect() as conn:
         left = conn.execute(
-            sa.select(sa.func.count()).where(
-                store.incident_members.c.incident_id == spike.incident_id
-            )
+            sa.select(sa.func.count()).where(incident_members.c.incident_id == spike.incident_id)
         ).scalar()
     assert left == 0
 
@@ -340,9 +235,9 @@ def test_retracting_members_shrinks_or_removes_the_incident(engine) -> None:
 def test_newly_confirmed_events_are_reported_once(engine) -> None:
     events, _ = make_events()
     end = DAY + pd.Timedelta(days=1)
-    store.write_labels(engine, "run-1", _labels_frame(), at=T0)
+    persist.write_labels(engine, "run-1", _labels_frame(), at=T0)
     _write_day(engine, events, until=end, run="run-1")
-    first = store.refresh_incidents(engine, "run-1", at=T0)
+    first = persist.refresh_incidents(engine, "run-1", at=T0)
     live = events[events["status"] == "confirmed"]
     assert {(c.series_id, c.event_time) for c in first.confirmed} == set(
         zip(live["series_id"], live["event_time"], strict=True)
@@ -352,10 +247,10 @@ def test_newly_confirmed_events_are_reported_once(engine) -> None:
     # The spike's provisional events become confirmed in a later run: reported then only.
     spike = events[events["status"] == "provisional"].assign(status="confirmed")
     persist.write_events(engine, "run-2", _events(spike), at=T0)
-    second = store.refresh_incidents(engine, "run-2", at=T0)
+    second = persist.refresh_incidents(engine, "run-2", at=T0)
     assert {(c.series_id, c.event_time) for c in second.confirmed} == set(
         zip(spike["series_id"], spike["event_time"], strict=True)
     )
     assert [c.kind for c in second.changes] == ["changed"]  # its members are no longer provisional
-    third = store.refresh_incidents(engine, "run-3", at=T0)
+    third = persist.refresh_incidents(engine, "run-3", at=T0)
     assert third.confirmed == () and third.changes == ()
