@@ -236,7 +236,13 @@ def test_prefect_deploy_all_then_a_worker_runs_the_scan(prefect_server, tmp_path
             # Pausing drops the runs the scheduler made, so the worker below
             # picks up only the run created here.
             client.pause_deployment(deployment.id)
-        run = client.create_flow_run_from_deployment(stored["hourly-scan"].id)
+        # Five series are less than one batch of work, which a scan runs in the
+        # flow's own process (pipeline.small_run); a batch of 0.01 s makes this
+        # run take the worker processes' path that a fleet's scan takes.
+        options = {**stored["hourly-scan"].parameters["options"], "batch_seconds": 0.01}
+        run = client.create_flow_run_from_deployment(
+            stored["hourly-scan"].id, parameters={"options": options}
+        )
 
     # One polling round of a process worker picks the run up and runs it to the end.
     _cli("worker", "start", "--pool", POOL, "--run-once", env=env, timeout=300)
