@@ -28,7 +28,7 @@ from changekind.tasks.fetch import open_source, read_series
 from changekind.tasks.fetch.inputs import SeriesInput, read_series_file
 from changekind.tasks.simulate import arma_filter, injected, innovations
 from changekind.tasks.types import EVENT_TYPES
-from tests.flows.cli.contract import RECORD_FIELDS
+from tests.contract import RECORD_FIELDS
 from tests.fresh import run_python
 
 N, T_SHIFT, PHI, SHIFT = 300, 150, 0.5, 8.0  # shift of 8 innovation sds at t = 150

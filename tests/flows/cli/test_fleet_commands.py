@@ -35,7 +35,7 @@ from changekind.flows.cli import app
 from changekind.flows.demo import score_against_truth
 from changekind.tasks import persist
 from changekind.tasks.report import picture_name
-from tests.flows.cli.contract import RECORD_FIELDS
+from tests.contract import RECORD_FIELDS
 from tests.flows.fleet import found_in, make_fleet, write_source
 from tests.flows.prefect_api import artifacts_of
 from tests.tasks.test_report import check_page, png_size
