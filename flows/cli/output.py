@@ -80,6 +80,11 @@ def shorten_middle(text: str, width: int) -> str:
     return f"{text[:head]}…{text[len(text) - (keep - head) :]}"
 
 
+def _shown(column: Column, cell: str, id_width: int | None) -> str:
+    """The cell as the table shows it: an id shortened in the middle to ``id_width``."""
+    return shorten_middle(cell, id_width) if column.shorten and id_width is not None else cell
+
+
 def _build(
     columns: Sequence[Column],
     rows: Sequence[Sequence[str]],
@@ -99,12 +104,7 @@ def _build(
     for column in columns:
         table.add_column(column.name, justify=column.justify, no_wrap=True)
     for row in rows:
-        table.add_row(
-            *(
-                shorten_middle(cell, id_width) if c.shorten and id_width is not None else cell
-                for c, cell in zip(columns, row, strict=True)
-            )
-        )
+        table.add_row(*(_shown(c, cell, id_width) for c, cell in zip(columns, row, strict=True)))
     return table
 
 
@@ -124,10 +124,7 @@ def _width(columns: Sequence[Column], rows: Sequence[Sequence[str]], id_width: i
     for i, column in enumerate(columns):
         widest = cell_len(column.name)
         for row in rows:
-            text = row[i]
-            if column.shorten and id_width is not None and len(text) > id_width:
-                text = shorten_middle(text, id_width)
-            widest = max(widest, cell_len(text))
+            widest = max(widest, cell_len(_shown(column, row[i], id_width)))
         total += widest
     return total
 

@@ -12,7 +12,7 @@ import os
 import sys
 import time
 import traceback
-from collections.abc import Iterator, Mapping
+from collections.abc import Callable, Iterator, Mapping
 from contextlib import contextmanager
 from typing import TYPE_CHECKING, Annotated, Any
 
@@ -270,21 +270,19 @@ def scan(
     Series without a model are fitted on the history they have and every event
     in it is reported.  Events, models and the run's record go to --db.
     """
-    prefect_defaults()
-    with usage_errors(), waiting("scan") as bar:
-        with refusals_recorded("scan", db):
-            config = fleet_config(**fleet_arguments(locals()))
-            until = check_time(until, "--until", config.time_kind)
-            _say(bar, "loading Prefect")
-            # Deliberately here: the flows import Prefect (seconds of start-up).
-            from changekind.flows.scan import scan_flow
+    given = locals()
 
-            arguments = flow_arguments(
-                scan_flow, config, until=until, series=series or None, report_dir=path_text(report)
-            )
-        t0 = time.perf_counter()
-        summary = run_fleet_flow(scan_flow, arguments, config, label="scan", bar=bar)
-    finish(summary, as_json=as_json, wall=time.perf_counter() - t0)
+    def prepare(config: FleetConfig, bar: ProgressBar | None) -> tuple[Any, dict[str, Any]]:
+        bound = check_time(until, "--until", config.time_kind)
+        _say(bar, "loading Prefect")
+        # Deliberately here: the flows import Prefect (seconds of start-up).
+        from changekind.flows.scan import scan_flow
+
+        return scan_flow, flow_arguments(
+            scan_flow, config, until=bound, series=series or None, report_dir=path_text(report)
+        )
+
+    run_fleet_command("scan", given, prepare, as_json=as_json)
 
 
 @app.command()
@@ -343,30 +341,28 @@ def backfill(
     Times are ISO 8601 (2026-06-01, 2026-06-01T12:00:00Z) and durations such as
     7D or 6h; sources with numeric timestamps take numbers for all four.
     """
-    prefect_defaults()
-    with usage_errors(), waiting("backfill") as bar:
-        with refusals_recorded("backfill", db):
-            config = fleet_config(**fleet_arguments(locals()))
-            check_time(start, "--start", config.time_kind)
-            check_time(end, "--end", config.time_kind)
-            _say(bar, "loading Prefect")
-            # Deliberately here: the flows import Prefect (seconds of start-up).
-            from changekind.flows.scan import backfill_flow, split_span
+    given = locals()
 
-            split_span(start, end, chunk, warmup)  # a bad span or duration: ConfigError here
-            arguments = flow_arguments(
-                backfill_flow,
-                config,
-                start=start,
-                end=end,
-                chunk=chunk,
-                warmup=warmup,
-                series=series or None,
-                report_dir=path_text(report),
-            )
-        t0 = time.perf_counter()
-        summary = run_fleet_flow(backfill_flow, arguments, config, label="backfill", bar=bar)
-    finish(summary, as_json=as_json, wall=time.perf_counter() - t0)
+    def prepare(config: FleetConfig, bar: ProgressBar | None) -> tuple[Any, dict[str, Any]]:
+        check_time(start, "--start", config.time_kind)
+        check_time(end, "--end", config.time_kind)
+        _say(bar, "loading Prefect")
+        # Deliberately here: the flows import Prefect (seconds of start-up).
+        from changekind.flows.scan import backfill_flow, split_span
+
+        split_span(start, end, chunk, warmup)  # a bad span or duration: ConfigError here
+        return backfill_flow, flow_arguments(
+            backfill_flow,
+            config,
+            start=start,
+            end=end,
+            chunk=chunk,
+            warmup=warmup,
+            series=series or None,
+            report_dir=path_text(report),
+        )
+
+    run_fleet_command("backfill", given, prepare, as_json=as_json)
 
 
 @app.command()
@@ -392,17 +388,38 @@ def refit(
     as_json: JsonOpt = False,
 ) -> None:
     """Estimate the models of all (or the --series given) again on all their history."""
-    prefect_defaults()
-    with usage_errors(), waiting("refit") as bar:
-        with refusals_recorded("refit", db):
-            config = fleet_config(**fleet_arguments(locals()))
-            _say(bar, "loading Prefect")
-            # Deliberately here: the flows import Prefect (seconds of start-up).
-            from changekind.flows.scan import refit_flow
+    given = locals()
 
-            arguments = flow_arguments(refit_flow, config, series=series or None)
+    def prepare(config: FleetConfig, bar: ProgressBar | None) -> tuple[Any, dict[str, Any]]:
+        _say(bar, "loading Prefect")
+        # Deliberately here: the flows import Prefect (seconds of start-up).
+        from changekind.flows.scan import refit_flow
+
+        return refit_flow, flow_arguments(refit_flow, config, series=series or None)
+
+    run_fleet_command("refit", given, prepare, as_json=as_json)
+
+
+def run_fleet_command(
+    label: str,
+    given: Mapping[str, Any],
+    prepare: Callable[[FleetConfig, ProgressBar | None], tuple[Any, dict[str, Any]]],
+    *,
+    as_json: bool,
+) -> None:
+    """The common course of scan, backfill and refit.
+
+    ``given`` are the command's parameters (its ``locals()``); ``prepare`` checks
+    what is the command's own, imports its flow and returns the flow with its
+    arguments.  A configuration error up to there is recorded as a refusal.
+    """
+    prefect_defaults()
+    with usage_errors(), waiting(label) as bar:
+        with refusals_recorded(label, given["db"]):
+            config = fleet_config(**fleet_arguments(given))
+            flow, arguments = prepare(config, bar)
         t0 = time.perf_counter()
-        summary = run_fleet_flow(refit_flow, arguments, config, label="refit", bar=bar)
+        summary = run_fleet_flow(flow, arguments, config, label=label, bar=bar)
     finish(summary, as_json=as_json, wall=time.perf_counter() - t0)
 
 

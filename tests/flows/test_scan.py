@@ -102,16 +102,22 @@ def test_plan_works_warm_after_watermark_and_skip_when_done():
     # White noise needs no memory: the 24 points up to the watermark are read (MIN_CONTEXT).
     assert works[0].start == pd.Timestamp("2026-06-09T01:00:00") and not works[0].refit
     assert works[1].model is None and works[1].refit
+
+    def plan_a(model_a, *, known=None, options=None, **kw):
+        """plan_works for series "a" alone, its watermark at 2026-06-10T00:00."""
+        return plan_works(
+            ["a"],
+            models={"a": model_a},
+            watermarks={"a": "2026-06-10T00:00:00"},
+            known=known or {},
+            options=options or AnalysisOptions(),
+            time_kind="datetime",
+            **kw,
+        )
+
     # An MA(1) with theta -0.9: pi_k = 0.9^k stays above 1e-10 past 25 lags, so the cap holds.
     ma = replace(model, order=(0, 0, 1), params=(("ma.L1", -0.9), ("sigma2", 1.0)))
-    (long,) = plan_works(
-        ["a"],
-        models={"a": ma},
-        watermarks={"a": "2026-06-10T00:00:00"},
-        known={},
-        options=AnalysisOptions(context_points=25),
-        time_kind="datetime",
-    )
+    (long,) = plan_a(ma, options=AnalysisOptions(context_points=25))
     assert long.start == pd.Timestamp("2026-06-09T00:00:00")
     # A provisional event older than the watermark is read with its own memory before it.
     seen = Event(
@@ -130,34 +136,11 @@ def test_plan_works_warm_after_watermark_and_skip_when_done():
         level=30.0,
         model="",
     )
-    (back,) = plan_works(
-        ["a"],
-        models={"a": model},
-        watermarks={"a": "2026-06-10T00:00:00"},
-        known={"a": (seen,)},
-        options=AnalysisOptions(context_points=25),
-        time_kind="datetime",
-    )
+    (back,) = plan_a(model, known={"a": (seen,)}, options=AnalysisOptions(context_points=25))
     assert back.start == pd.Timestamp("2026-06-08T21:00:00")
-    done = plan_works(
-        ["a"],
-        models={"a": model},
-        watermarks={"a": "2026-06-10T00:00:00"},
-        known={},
-        options=AnalysisOptions(),
-        time_kind="datetime",
-        end="2026-06-10T00:30:00",
-    )
+    done = plan_a(model, end="2026-06-10T00:30:00")
     assert [w.series_id for w in done] == ["a"]  # the 00:00 point is tested; 00:30 may hold more
-    past = plan_works(
-        ["a"],
-        models={"a": model},
-        watermarks={"a": "2026-06-10T00:00:00"},
-        known={},
-        options=AnalysisOptions(),
-        time_kind="datetime",
-        end="2026-06-10T00:00:00",
-    )
+    past = plan_a(model, end="2026-06-10T00:00:00")
     assert past == []
 
 

@@ -17,22 +17,10 @@ import pytest
 from typer.testing import CliRunner
 
 from changekind.flows.cli import app
+from tests.contract import INCIDENT_FIELDS, INCIDENT_MEMBER_FIELDS
 from tests.flows.incident_fleet import SPIKE_AT, store_incident_fleet
 
 runner = CliRunner()
-
-CONTRACT = {
-    "incident_id",
-    "start",
-    "end",
-    "n_series",
-    "share_of_fleet",
-    "dominant_type",
-    "median_effect_pct",
-    "shared_labels",
-    "members",
-}
-MEMBER = {"series_id", "event_time", "event_type", "effect"}
 
 
 @pytest.fixture
@@ -48,8 +36,8 @@ def test_json_prints_only_the_incidents_newest_first(db):
     records = json.loads(done.stdout)  # nothing but the JSON array on stdout
     assert isinstance(records, list) and len(records) == 2
     for rec in records:
-        assert set(rec) >= CONTRACT
-        assert all(set(m) >= MEMBER for m in rec["members"])
+        assert set(rec) >= INCIDENT_FIELDS
+        assert all(set(m) >= INCIDENT_MEMBER_FIELDS for m in rec["members"])
         assert rec["state"] in ("open", "settled")
     spike, rollout = records  # newest first
     assert spike["start"] == SPIKE_AT.tz_localize("UTC").isoformat()

@@ -44,6 +44,7 @@ from changekind.tasks.incidents import (
     reconcile_incidents,
     update_incidents,
 )
+from tests.contract import INCIDENT_FIELDS, INCIDENT_MEMBER_FIELDS
 
 STEP = 300.0  # five-minute sampling
 DAY = pd.Timestamp("2031-05-06", tz="UTC")  # an invented Tuesday
@@ -736,19 +737,8 @@ def test_record_round_trip(scenario):
     for inc in result.incidents:
         assert Incident.from_record(json.loads(json.dumps(inc.to_record()))) == inc
         record = inc.to_record()
-        for key in (
-            "incident_id",
-            "start",
-            "end",
-            "n_series",
-            "share_of_fleet",
-            "dominant_type",
-            "median_effect_pct",
-            "shared_labels",
-            "members",
-        ):
-            assert key in record
-        assert set(record["members"][0]) >= {"series_id", "event_time", "event_type", "effect"}
+        assert set(record) >= INCIDENT_FIELDS
+        assert set(record["members"][0]) >= INCIDENT_MEMBER_FIELDS
 
 
 # --------------------------------------------------------------------------- bad input
