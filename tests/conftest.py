@@ -12,8 +12,10 @@
 
 Markers (pyproject.toml): ``integration`` for tests that start processes,
 servers or clusters (subprocess, Dask, deployment, crash and fault tests);
-``slow`` for the Monte Carlo checks of the engine.  The unit tier is
-``-m "not slow and not integration"``; ``.ci/run`` runs every tier.
+``multirun`` for tests that run whole fleet flows several times and compare
+them; ``slow`` for the Monte Carlo checks of the engine.  The unit tier is
+``-m "not slow and not integration and not multirun"``; ``.ci/run`` runs every
+tier.
 """
 
 from __future__ import annotations

@@ -80,6 +80,7 @@ def _check_both_orders(source: Path, url_later_first: str, url_earlier_first: st
     assert (pd.to_datetime(events.event_time) >= pd.Timestamp(UNION[0])).all()
 
 
+@pytest.mark.multirun
 def test_backfills_in_either_order_equal_one_over_the_union_sqlite(
     prefect_server, source, union_sqlite, tmp_path
 ):
@@ -91,6 +92,7 @@ def test_backfills_in_either_order_equal_one_over_the_union_sqlite(
     )
 
 
+@pytest.mark.multirun
 @pytest.mark.postgres
 def test_backfills_in_either_order_equal_one_over_the_union_postgresql(
     prefect_server, source, union_sqlite, pg_url, tmp_path
@@ -118,6 +120,7 @@ def _check_earlier_then_later_pg(source: Path, pg_url: str, union_pg) -> None:
     assert current_state(pg_url) == union_pg
 
 
+@pytest.mark.multirun
 def test_a_gap_between_analysed_and_given_span_is_analysed_not_skipped(
     prefect_server, source, tmp_path
 ):

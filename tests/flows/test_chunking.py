@@ -49,10 +49,12 @@ def _check(make_db, tmp_path) -> None:
         assert events == whole, (key, sorted(events ^ whole))
 
 
+@pytest.mark.multirun
 def test_chunking_does_not_change_confirmed_events(prefect_server, tmp_path):
     _check(lambda name: f"sqlite:///{tmp_path / (name + '.db')}", tmp_path)
 
 
+@pytest.mark.multirun
 @pytest.mark.postgres
 def test_chunking_does_not_change_confirmed_events_on_postgresql(
     prefect_server, pg_url_factory, tmp_path

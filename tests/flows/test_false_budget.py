@@ -99,6 +99,7 @@ def _found(run, truth, only=None):
     return hits
 
 
+@pytest.mark.multirun
 def test_default_budget_holds_over_hourly_scans_and_keeps_3_sigma_shifts(fleet):
     run, false, expected, truth = _run(fleet, FALSE_BUDGET)
     limit = stats.poisson.ppf(0.999, expected)

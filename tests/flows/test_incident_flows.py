@@ -118,6 +118,7 @@ def test_scan_stores_labels_and_incidents_and_emits_events(
     assert persist.content_snapshot(db) == before
 
 
+@pytest.mark.multirun
 def test_overlapping_backfills_give_the_incidents_of_one_scan(
     prefect_server, fleet, pg_url, tmp_path
 ):

@@ -189,6 +189,7 @@ def test_repeated_scan_on_postgresql(prefect_server, fleet, pg_url):
     assert found_in(_events(pg_url), truth) >= len(truth) - 1
 
 
+@pytest.mark.multirun
 def test_overlapping_backfills_do_not_duplicate_or_lose_events(prefect_server, fleet, tmp_path):
     data, truth, source = fleet
     write_source(data, source)

@@ -502,6 +502,7 @@ def test_dask_runner_without_a_prefect_server_says_how_to_start_one(good_source,
 # --------------------------------------------------------------------------- demo
 
 
+@pytest.mark.multirun
 def test_demo_runs_the_pipeline_and_scores_the_stored_events(prefect_server, tmp_path):
     out = tmp_path / "demo"
     args = ["demo", "--controllers", "5", "--days", "4", "--seed", "2031", "--out", str(out)]
