@@ -145,7 +145,7 @@ def small_run(expected_seconds: float, batch_seconds: float) -> bool:
 
     Work of at most one batch (``batch_seconds``) gains nothing from the task
     runner: a worker process spends 3-7 s on its imports and each submitted
-    batch 0.2-0.4 s of orchestration (measured, /work/shared/PREFECT-NOTES.md),
+    batch 0.2-0.4 s of orchestration (measured on the 2-core test machine),
     against 8 ms per warm series.  Its batches are then called as tasks in the
     flow's process, one after the other (same retries, same records).
     """

@@ -211,13 +211,14 @@ def _zero_nan(x: np.ndarray) -> np.ndarray:
     return np.where(np.isnan(x), 0.0, x)
 
 
+def _support(kind: str, t):
+    """Log-likelihood support tau^2/2 of a type, a decaying one charged TC_PENALTY."""
+    return 0.5 * t * t - (TC_PENALTY if EFFECTS[kind].decays else 0.0)
+
+
 def _scores(taus: dict, where: np.ndarray | int) -> dict[str, np.ndarray]:
-    """Log-likelihood support tau^2/2 (TC charged TC_PENALTY) at positions."""
-    out = {}
-    for kind in EVENT_TYPES:
-        t = _zero_nan(taus[kind][1][where])
-        out[kind] = 0.5 * t * t - (TC_PENALTY if EFFECTS[kind].decays else 0.0)
-    return out
+    """:func:`_support` of every type at positions."""
+    return {kind: _support(kind, _zero_nan(taus[kind][1][where])) for kind in EVENT_TYPES}
 
 
 def inner_loop(
@@ -485,9 +486,7 @@ def weights_at(
     else:
         delta = max(DELTA_GRID, key=lambda d: abs(tc_tau(d)))
     taus["TC"] = tc_tau(delta)
-    scores = {
-        k: 0.5 * taus[k] ** 2 - (TC_PENALTY if EFFECTS[k].decays else 0.0) for k in EVENT_TYPES
-    }
+    scores = {k: _support(k, taus[k]) for k in EVENT_TYPES}
     top = max(scores.values())
     raw = {k: math.exp(v - top) for k, v in scores.items()}
     total = sum(raw.values())
